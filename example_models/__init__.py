@@ -1,0 +1,172 @@
+"""Small trained recurrent models to try hidden-state analyses on.
+
+Two invented tasks:
+
+* **Sorting line** (:mod:`example_models.sorting_line`): fruit crates pass a colour scanner on
+  a conveyor. The scanner flashes a crate's tag (red, green or yellow; one-hot on channels
+  0-2) for one step; 5 to 40 steps later the diverter-gate cue arrives on channel 3 and the
+  network must name the bin, i.e. the tag colour, at that step. Belt vibration streams in on
+  channel 4 and all channels carry a little sensor noise. A classification task that needs
+  memory; inputs (B, T, 5), logits (B, T, 3).
+* **Greenhouse** (:mod:`example_models.greenhouse`): from sunlight, vent opening and heater
+  power, predict the air temperature, a leaky integrator (time constant ~20 steps) of these
+  drivers with a slow soil-heat store. A regression task; inputs (B, T, 3), outputs (B, T, 1).
+
+Every model holds exactly one batch-first recurrent layer (``model.rnn``) and a linear readout
+(``model.readout``). The shipped runs:
+
+================  ====================================================================
+``rnn-gain0.5``   sorting line, tanh ``nn.RNN`` (32 states), recurrent init gain 0.5
+``rnn-gain1.0``   same, gain 1.0
+``rnn-gain2.0``   same, gain 2.0
+``gru``           sorting line, ``nn.GRU`` (32 states), gain 1.0
+``greenhouse-lstm`` greenhouse, ``nn.LSTM`` (32 states)
+================  ====================================================================
+
+The three ``rnn-gain*`` runs differ only in the gain g of the recurrent initialisation
+(W_hh drawn from N(0, g**2 / 32)) and were trained briefly, so the gain still shows in the
+trained dynamics. Retrain with ``python -m example_models.train``.
+
+Examples
+--------
+>>> import torch
+>>> from example_models import load_run, sorting_line
+>>> model = load_run("rnn-gain1.0")
+>>> x = torch.from_numpy(sorting_line.make_inputs(4, 100, seed=1))
+>>> model(x).shape
+torch.Size([4, 100, 3])
+"""
+
+from __future__ import annotations
+
+import importlib
+from collections.abc import Callable, Mapping
+from pathlib import Path
+from types import MappingProxyType
+from typing import NamedTuple
+
+import numpy as np
+import torch
+from torch import nn
+
+__all__ = [
+    "RUNS",
+    "Run",
+    "list_runs",
+    "load_run",
+    "make_run_inputs",
+    "probe_inputs_path",
+    "weights_path",
+]
+
+_HERE = Path(__file__).resolve().parent
+
+
+class Run(NamedTuple):
+    """Where a shipped run comes from.
+
+    Attributes
+    ----------
+    factory : str
+        ``"module:function"`` of a factory that builds the untrained model with no arguments.
+    weights : str
+        File name of the trained ``state_dict`` in ``example_models/weights``.
+    """
+
+    factory: str
+    weights: str
+
+
+RUNS: Mapping[str, Run] = MappingProxyType(
+    {
+        "rnn-gain0.5": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain0.5.pt"),
+        "rnn-gain1.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain1.0.pt"),
+        "rnn-gain2.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain2.0.pt"),
+        "gru": Run("example_models.sorting_line:make_gru", "gru.pt"),
+        "greenhouse-lstm": Run("example_models.greenhouse:make_model", "greenhouse.pt"),
+    }
+)
+
+# Module whose make_inputs feeds each run.
+_TASKS: Mapping[str, str] = MappingProxyType(
+    {
+        "rnn-gain0.5": "example_models.sorting_line",
+        "rnn-gain1.0": "example_models.sorting_line",
+        "rnn-gain2.0": "example_models.sorting_line",
+        "gru": "example_models.sorting_line",
+        "greenhouse-lstm": "example_models.greenhouse",
+    }
+)
+
+
+def list_runs() -> list[str]:
+    """Names of the shipped runs, in the order of :data:`RUNS`."""
+    return list(RUNS)
+
+
+def _run(name: str) -> Run:
+    if not isinstance(name, str):
+        raise TypeError(f"run name must be a str, got {type(name).__name__}; pass e.g. 'gru'")
+    try:
+        return RUNS[name]
+    except KeyError:
+        raise KeyError(
+            f"no example run named {name!r}; available runs: {', '.join(RUNS)}"
+        ) from None
+
+
+def weights_path(name: str) -> Path:
+    """Path of the trained ``state_dict`` of run ``name`` (the file may be missing if the
+    run was never trained; ``python -m example_models.train --only NAME`` writes it)."""
+    return _HERE / "weights" / _run(name).weights
+
+
+def probe_inputs_path() -> Path:
+    """Path of ``data/sorting_line_inputs.npz``: key ``"inputs"``, shape (16, 200, 5), float32,
+    equal to ``sorting_line.make_inputs(16, 200, seed=0)``."""
+    return _HERE / "data" / "sorting_line_inputs.npz"
+
+
+def _import_factory(path: str) -> Callable[[], nn.Module]:
+    module_name, _, attr = path.partition(":")
+    return getattr(importlib.import_module(module_name), attr)
+
+
+def load_run(name: str) -> nn.Module:
+    """Build run ``name`` and load its trained weights; returned in eval mode.
+
+    Weights are read with ``torch.load(..., weights_only=True)``; torch's global random stream
+    is not used.
+
+    Raises
+    ------
+    KeyError
+        If ``name`` is not one of :func:`list_runs`.
+    FileNotFoundError
+        If the weights file is missing.
+    """
+    run = _run(name)
+    path = weights_path(name)
+    if not path.is_file():
+        raise FileNotFoundError(
+            f"weights of run {name!r} not found at {path}; "
+            f"create them with `python -m example_models.train --only {name}`"
+        )
+    model = _import_factory(run.factory)()
+    state = torch.load(path, map_location="cpu", weights_only=True)
+    model.load_state_dict(state)
+    return model.eval()
+
+
+def make_run_inputs(
+    name: str, n_sequences: int = 16, n_steps: int | None = None, *, seed: int = 0
+) -> np.ndarray:
+    """Inputs (B, T, I) float32 suited to run ``name``, from its task's ``make_inputs``.
+
+    ``n_steps=None`` uses the task's default length (200 sorting line, 300 greenhouse).
+    """
+    _run(name)
+    task = importlib.import_module(_TASKS[name])
+    if n_steps is None:
+        return task.make_inputs(n_sequences, seed=seed)
+    return task.make_inputs(n_sequences, n_steps, seed=seed)

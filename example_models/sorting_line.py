@@ -1,0 +1,204 @@
+"""Sorting line: remember a crate's colour tag until the diverter-gate cue arrives.
+
+Fruit crates ride a conveyor past a colour scanner. When a crate passes, the scanner flashes
+its tag for one step on one of three channels (one-hot). A variable number of steps later the
+diverter-gate cue arrives on channel 3, and at that step the network must name the bin, which
+is the tag colour. Meanwhile belt vibration streams in on channel 4, and every channel carries
+a little sensor noise. Crates follow each other along the sequence, so one sequence holds
+several decisions.
+
+Channels of the inputs (B, T, 5): 0-2 tag flash (red, green, yellow), 3 gate cue, 4 belt
+vibration. Targets (B, T): the bin index at cue steps, ``IGNORE`` (-1) at every other step.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import numpy as np
+import torch
+
+from ._nets import RecurrentReadout
+
+__all__ = [
+    "BINS",
+    "IGNORE",
+    "N_INPUTS",
+    "SortingLineData",
+    "SortingLineNet",
+    "accuracy",
+    "make_dataset",
+    "make_gru",
+    "make_inputs",
+    "make_tanh_rnn",
+]
+
+BINS: tuple[str, ...] = ("red", "green", "yellow")
+N_INPUTS = 5
+IGNORE = -1
+
+_CUE = 3
+_VIBRATION = 4
+_VIBRATION_PERSISTENCE = 0.9  # AR(1) coefficient of the belt vibration
+_VIBRATION_STD = 0.5
+_SENSOR_NOISE_STD = 0.05
+_GAP = (2, 8)  # steps between one crate's cue and the next crate's tag (inclusive)
+
+
+class SortingLineData(NamedTuple):
+    """One batch of sorting-line sequences.
+
+    Attributes
+    ----------
+    inputs : ndarray of shape (B, T, 5), float32
+        Tag flash (channels 0-2), gate cue (3) and belt vibration (4), plus sensor noise.
+    targets : ndarray of shape (B, T), int64
+        Bin index (0, 1, 2) at each cue step, ``IGNORE`` (-1) elsewhere.
+    delays : ndarray of shape (B, T), int64
+        Steps from tag flash to cue at each cue step, 0 elsewhere.
+    """
+
+    inputs: np.ndarray
+    targets: np.ndarray
+    delays: np.ndarray
+
+
+def _check_count(name: str, value: object, minimum: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        raise ValueError(f"{name}={value!r} is not an integer >= {minimum}; pass e.g. {name}=16")
+    return int(value)
+
+
+def make_dataset(
+    n_sequences: int = 16,
+    n_steps: int = 200,
+    *,
+    seed: int = 0,
+    min_delay: int = 5,
+    max_delay: int = 40,
+) -> SortingLineData:
+    """Draw sorting-line sequences with their targets.
+
+    Parameters
+    ----------
+    n_sequences, n_steps : int
+        Batch size B and length T.
+    seed : int
+        Seed of the private ``np.random.default_rng``; the same seed gives the same data.
+    min_delay, max_delay : int
+        Range (inclusive) of the steps between a tag flash and its gate cue.
+
+    Returns
+    -------
+    SortingLineData
+        ``inputs`` (B, T, 5) float32, ``targets`` (B, T) int64, ``delays`` (B, T) int64.
+    """
+    n_seq = _check_count("n_sequences", n_sequences, 1)
+    n_t = _check_count("n_steps", n_steps, 1)
+    lo = _check_count("min_delay", min_delay, 1)
+    hi = _check_count("max_delay", max_delay, 1)
+    if hi < lo:
+        raise ValueError(
+            f"max_delay={hi} is below min_delay={lo}; pass max_delay >= min_delay"
+        )
+    rng = np.random.default_rng(seed)
+    inputs = np.zeros((n_seq, n_t, N_INPUTS))  # (B, T, I)
+    targets = np.full((n_seq, n_t), IGNORE, dtype=np.int64)  # (B, T)
+    delays = np.zeros((n_seq, n_t), dtype=np.int64)  # (B, T)
+    for b in range(n_seq):
+        t = int(rng.integers(1, _GAP[1] + 1))
+        while True:
+            delay = int(rng.integers(lo, hi + 1))
+            if t + delay >= n_t:
+                break
+            colour = int(rng.integers(len(BINS)))
+            inputs[b, t, colour] = 1.0
+            inputs[b, t + delay, _CUE] = 1.0
+            targets[b, t + delay] = colour
+            delays[b, t + delay] = delay
+            t += delay + int(rng.integers(_GAP[0], _GAP[1] + 1))
+
+    shocks = rng.standard_normal((n_seq, n_t))  # (B, T)
+    scale = _VIBRATION_STD * np.sqrt(1.0 - _VIBRATION_PERSISTENCE**2)
+    vibration = np.empty((n_seq, n_t))  # (B, T)
+    vibration[:, 0] = _VIBRATION_STD * shocks[:, 0]
+    for t in range(1, n_t):
+        vibration[:, t] = _VIBRATION_PERSISTENCE * vibration[:, t - 1] + scale * shocks[:, t]
+    inputs[:, :, _VIBRATION] += vibration
+    inputs += _SENSOR_NOISE_STD * rng.standard_normal(inputs.shape)
+    return SortingLineData(inputs.astype(np.float32), targets, delays)
+
+
+def make_inputs(n_sequences: int = 16, n_steps: int = 200, *, seed: int = 0) -> np.ndarray:
+    """Sorting-line inputs of shape (B, T, 5), float32; see :func:`make_dataset`."""
+    return make_dataset(n_sequences, n_steps, seed=seed).inputs
+
+
+class SortingLineNet(RecurrentReadout):
+    """Recurrent layer plus a linear readout giving 3 bin logits per step.
+
+    Parameters
+    ----------
+    cell : {"rnn", "gru"}
+        ``"rnn"`` is a tanh ``nn.RNN``; ``"gru"`` an ``nn.GRU``. ``"lstm"`` works as well.
+    hidden_size : int
+        State size S.
+    gain : float, keyword-only
+        Recurrent weight blocks start as N(0, gain**2 / S); see ``RecurrentReadout``.
+    seed : int, keyword-only
+        Seed of the private initialisation generator.
+
+    ``forward(x)`` maps inputs (B, T, 5) to logits (B, T, 3); the prediction counts only at
+    cue steps.
+    """
+
+    def __init__(
+        self, cell: str = "rnn", hidden_size: int = 32, *, gain: float = 1.0, seed: int = 0
+    ) -> None:
+        super().__init__(
+            N_INPUTS, len(BINS), cell=cell, hidden_size=hidden_size, gain=gain, seed=seed
+        )
+
+
+def make_tanh_rnn(*, gain: float = 1.0, seed: int = 0) -> SortingLineNet:
+    """Untrained tanh ``nn.RNN`` sorting-line model with 32 states."""
+    return SortingLineNet("rnn", 32, gain=gain, seed=seed)
+
+
+def make_gru(*, gain: float = 1.0, seed: int = 0) -> SortingLineNet:
+    """Untrained ``nn.GRU`` sorting-line model with 32 states."""
+    return SortingLineNet("gru", 32, gain=gain, seed=seed)
+
+
+@torch.no_grad()
+def accuracy(
+    model: torch.nn.Module,
+    inputs: np.ndarray,
+    targets: np.ndarray,
+    *,
+    where: np.ndarray | None = None,
+) -> float:
+    """Fraction of cue steps at which the largest logit names the right bin.
+
+    Parameters
+    ----------
+    model : nn.Module
+        Maps (B, T, 5) to (B, T, 3). Run as given; switch it to eval mode yourself.
+    inputs : ndarray of shape (B, T, 5)
+    targets : ndarray of shape (B, T)
+        As from :func:`make_dataset`; steps holding ``IGNORE`` do not count.
+    where : ndarray of shape (B, T), bool, optional
+        Count only the cue steps where this is True, e.g. ``data.delays >= 30``.
+    """
+    targets = np.asarray(targets)
+    mask = targets != IGNORE  # (B, T)
+    if where is not None:
+        mask &= np.asarray(where, dtype=bool)
+    if not mask.any():
+        raise ValueError(
+            "no cue step to score; pass longer sequences (n_steps >= 50) or a wider `where`"
+        )
+    dtype = next(model.parameters()).dtype
+    logits = model(torch.as_tensor(np.asarray(inputs), dtype=dtype))  # (B, T, 3)
+    predicted = logits.argmax(dim=-1).numpy()  # (B, T)
+    return float(np.mean(predicted[mask] == targets[mask]))

@@ -1,0 +1,161 @@
+"""Record the hidden states of a recurrent model or system along input sequences."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import warnings
+from typing import Any
+
+import numpy as np
+import torch
+
+from ._systems import RecurrentSystem, wrap
+from ._trace import Trace
+from ._validation import as_float_tensor, as_sequences, check_finite, describe
+from ._version import __version__
+
+__all__ = ["record", "as_system", "initial_states", "NonFiniteStateWarning"]
+
+
+class NonFiniteStateWarning(RuntimeWarning):
+    """States became NaN or Inf during a run (exploding dynamics: a finding, not a crash)."""
+
+
+def as_system(model_or_system: Any, **wrap_options: Any) -> RecurrentSystem:
+    """Return a system unchanged, or :func:`wrap` a model or step function with ``wrap_options``."""
+    if isinstance(model_or_system, RecurrentSystem):
+        if wrap_options:
+            raise TypeError(f"options {sorted(wrap_options)} apply when wrapping a model; this is "
+                            "already a RecurrentSystem")
+        return model_or_system
+    return wrap(model_or_system, **wrap_options)
+
+
+def initial_states(system: RecurrentSystem, h0: Any, batch: int) -> torch.Tensor:
+    """Validate ``h0`` and return flat initial states (B, S) in the system's dtype.
+
+    Accepted: None (zeros); flat (S,) or (B, S); for module systems also PyTorch's own layout,
+    (num_layers, B, H) for RNN/GRU and a tuple (h0, c0) of those for LSTM.
+    """
+    S = system.state_size
+    if h0 is None:
+        return system.zeros(batch)
+    if isinstance(h0, (tuple, list)):
+        if not (system.kind == "lstm" and len(h0) == 2):
+            raise TypeError("a tuple h0 is accepted only as (h0, c0) for an LSTM; otherwise pass "
+                            f"flat states of shape ({batch}, {S})")
+        h, c = (as_float_tensor(a, n, system.dtype) for a, n in zip(h0, ("h0[0]", "h0[1]")))
+        return _from_native(system, batch, h, c)
+    t = as_float_tensor(h0, "h0", system.dtype)
+    if t.ndim == 1 and t.shape[0] == S:
+        t = t.expand(batch, S).clone()
+    elif t.ndim == 3 and system.layers and system.kind != "lstm":
+        t = _from_native(system, batch, t, None)
+    if tuple(t.shape) != (batch, S):
+        extra = ""
+        if system.layers:
+            L, H = len(system.layers), system.layers[0].hidden_size
+            extra = f", or PyTorch's own layout ({L}, {batch}, {H})"
+            if system.kind == "lstm":
+                extra += " as a tuple (h0, c0)"
+        raise ValueError(f"h0 must have shape ({batch}, {S}) or ({S},){extra}, got {describe(h0)}")
+    check_finite(t, "h0")
+    return t
+
+
+def _from_native(system, batch, h, c):
+    L, H = len(system.layers), system.layers[0].hidden_size
+    for name, a in (("h0", h), ("c0", c)):
+        if a is None:
+            continue
+        if a.ndim == 2 and L == 1:
+            a = a.unsqueeze(0)
+        if tuple(a.shape) != (L, batch, H):
+            raise ValueError(f"{name} must have shape ({L}, {batch}, {H}) in PyTorch's layout, "
+                             f"got {tuple(a.shape)}")
+    if c is not None and c.ndim == 2:
+        c = c.unsqueeze(0)
+    if h.ndim == 2:
+        h = h.unsqueeze(0)
+    flat = system.zeros(batch)
+    for k, layer in enumerate(system.layers):
+        flat[:, layer.h] = h[k]
+        if layer.c is not None:
+            flat[:, layer.c] = c[k]
+    check_finite(flat, "h0")
+    return flat
+
+
+def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool | None = None,
+           **wrap_options: Any) -> Trace:
+    """Run a recurrent model or system over input sequences and record its hidden states.
+
+    Parameters
+    ----------
+    model_or_system : RecurrentSystem, nn.Module or callable
+        Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
+    inputs : Tensor or ndarray of shape (B, T, I) or (T, I)
+        Batch first, whatever the module's own ``batch_first``; converted to the system's dtype.
+        For a time-reversed system (backward direction) give them in natural order.
+    h0 : Tensor or ndarray, optional
+        Initial states, see :func:`initial_states`; zeros by default.
+    progress : bool, optional
+        Show a progress bar (default: only for long step-function runs).
+
+    Returns
+    -------
+    Trace
+        ``states`` (B, T, S) after each step, ``initial`` (B, S), ``inputs`` (B, T, I).
+
+    Warns
+    -----
+    NonFiniteStateWarning
+        When states become NaN or Inf; they are kept, as exploding states are a finding.
+    """
+    system = as_system(model_or_system, **wrap_options)
+    x = as_sequences(inputs, system.input_size, system.dtype,
+                     what=f"the {system.source} system")  # (B, T, I)
+    if system.time_reversed:
+        x = x.flip(1)
+    s0 = initial_states(system, h0, x.shape[0])  # (B, S)
+    states = system.run(x, s0, progress=progress)  # (B, T, S)
+    states_np = states.numpy()
+    _warn_non_finite(states_np, system)
+    states_np.setflags(write=False)
+    return Trace(states=states_np, initial=s0.numpy(), inputs=x.numpy(), parts=system.parts,
+                 metadata=_metadata(system, x.shape))
+
+
+def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:
+    finite = np.isfinite(states).all(axis=2)  # (B, T)
+    if finite.all():
+        return
+    b, t = np.argwhere(~finite).tolist()[0]
+    bad = finite.size - int(finite.sum())
+    warnings.warn(
+        f"states of {system.source} became NaN/Inf at step t={t} of sample b={b} (first "
+        f"occurrence; {bad} of {finite.size} (sample, step) states are affected). They are "
+        "stored as computed: the dynamics explode for these inputs (check the spectral radius "
+        "or lower the input scale)",
+        NonFiniteStateWarning, stacklevel=3,
+    )
+
+
+def _metadata(system: RecurrentSystem, shape: tuple[int, ...]) -> dict[str, Any]:
+    B, T, I = shape
+    return {
+        "model_class": system.source,
+        "kind": system.kind,
+        "num_layers": len(system.layers),
+        "hidden_size": system.layers[0].hidden_size if system.layers else None,
+        "state_size": system.state_size,
+        "input_size": I,
+        "batch_size": B,
+        "n_steps": T,
+        "output_part": system.output_part,
+        "time_reversed": system.time_reversed,
+        "fingerprint": system.fingerprint,
+        "dtype": str(system.dtype).replace("torch.", ""),
+        "hiddenlens_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+    }

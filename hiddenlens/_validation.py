@@ -1,0 +1,113 @@
+"""Checks at the public boundary, with one message form: what was wrong, what was expected, how to fix."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import torch
+
+__all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "describe"]
+
+_DTYPES = {
+    "float32": torch.float32,
+    "float64": torch.float64,
+    torch.float32: torch.float32,
+    torch.float64: torch.float64,
+    np.float32: torch.float32,
+    np.float64: torch.float64,
+}
+
+
+def as_dtype(dtype: Any) -> torch.dtype:
+    """Map ``"float32"``/``"float64"`` (or the torch/numpy types) to a torch dtype."""
+    try:
+        return _DTYPES[dtype]
+    except (KeyError, TypeError):
+        pass
+    try:
+        return _DTYPES[np.dtype(dtype).type]
+    except (KeyError, TypeError):
+        raise ValueError(
+            f"dtype must be float32 or float64, got {dtype!r}; pass dtype=torch.float64 "
+            "for accuracy-critical analyses or leave the float32 default"
+        ) from None
+
+
+def describe(x: Any) -> str:
+    """Short description of an array-like for error messages."""
+    if isinstance(x, (torch.Tensor, np.ndarray)):
+        kind = "tensor" if isinstance(x, torch.Tensor) else "array"
+        return f"{kind} of shape {tuple(x.shape)} and dtype {str(x.dtype).replace('torch.', '')}"
+    return type(x).__name__
+
+
+def as_float_tensor(x: Any, name: str, dtype: torch.dtype) -> torch.Tensor:
+    """Convert a tensor or numpy array to a detached CPU tensor of ``dtype`` (a copy).
+
+    Integer, boolean and complex data are refused rather than silently coerced.
+    """
+    if isinstance(x, torch.nn.utils.rnn.PackedSequence):
+        raise TypeError(
+            f"{name} is a PackedSequence, which hiddenlens does not analyse; pad the sequences "
+            "to equal length and pass a (B, T, I) tensor, or record each sequence on its own"
+        )
+    if isinstance(x, np.ndarray):
+        if not np.issubdtype(x.dtype, np.floating):
+            raise TypeError(
+                f"{name} must hold floating-point numbers, got a numpy array of dtype {x.dtype}; "
+                f"convert it explicitly, e.g. {name}.astype(np.float32) (one-hot encode tokens)"
+            )
+        t = torch.from_numpy(np.ascontiguousarray(x))
+    elif isinstance(x, torch.Tensor):
+        if not torch.is_floating_point(x):
+            raise TypeError(
+                f"{name} must hold floating-point numbers, got a tensor of dtype {x.dtype}; "
+                f"convert it explicitly, e.g. {name}.float() (one-hot encode tokens)"
+            )
+        if x.device.type == "meta":
+            raise ValueError(f"{name} is on the 'meta' device and holds no data")
+        t = x.detach()
+    else:
+        raise TypeError(
+            f"{name} must be a torch tensor or a numpy array, got {type(x).__name__}; "
+            f"wrap it with np.asarray({name}, dtype=np.float32)"
+        )
+    return t.to(device="cpu", dtype=dtype, copy=True)
+
+
+def check_finite(t: torch.Tensor, name: str) -> None:
+    """Refuse NaN or Inf values, naming the first offending position."""
+    bad = ~torch.isfinite(t)
+    if bool(bad.any()):
+        where = tuple(int(i) for i in bad.nonzero()[0])
+        raise ValueError(
+            f"{name} contains NaN or Inf (first at index {where}); clean or mask the data "
+            "before recording"
+        )
+
+
+def as_sequences(inputs: Any, input_size: int, dtype: torch.dtype, *, name: str = "inputs",
+                 what: str = "the system") -> torch.Tensor:
+    """Validate batch-first inputs: (B, T, I) or one sequence (T, I) -> (B, T, I) tensor."""
+    t = as_float_tensor(inputs, name, dtype)
+    if t.ndim == 2:
+        t = t.unsqueeze(0)
+    if t.ndim != 3:
+        raise ValueError(
+            f"{name} must have shape (B, T, {input_size}) or (T, {input_size}) (batch first), "
+            f"got {describe(inputs)}"
+        )
+    B, T, I = t.shape
+    if I != input_size:
+        raise ValueError(
+            f"{name} has {I} features but {what} expects {input_size}; pass {name} of shape "
+            f"(B, T, {input_size})"
+        )
+    if B == 0 or T == 0:
+        raise ValueError(
+            f"{name} is empty (shape {tuple(t.shape)}); pass at least one sequence of at "
+            "least one step"
+        )
+    check_finite(t, name)
+    return t
