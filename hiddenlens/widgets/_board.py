@@ -1,0 +1,468 @@
+"""The machinery shared by the explore and compare widgets: tabs, controls, jobs, drawing.
+
+Only the tab on screen is computed. Its compute options form the cache key; view controls
+redraw from the cache. Computing runs in a worker thread (see :mod:`._jobs`); drawing renders a
+pyplot-free Agg figure to PNG bytes set on an ``ipywidgets.Image``, which is safe from any
+thread and testable without a kernel.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Hashable, Mapping, Sequence
+from concurrent.futures import Executor
+from dataclasses import dataclass, field
+from typing import Any
+
+import ipywidgets as widgets
+
+from . import _render
+from ._jobs import Cache, Job, Runner, Step
+from ._panels import REGISTRY, Analysis, Option, Run, View
+
+__all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses"]
+
+#: Tab order: the cheap overview first, so the first figure shows up quickly.
+DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory")
+
+_ALL = "__all__"  # value of the "whole state" choice of the part control
+
+
+def check_analyses(analyses: Sequence[str] | None) -> list[str]:
+    """Validate the ``analyses`` argument; None means every available analysis."""
+    if analyses is None:
+        return [n for n in DEFAULT_ORDER if n in REGISTRY and REGISTRY[n].available()] + [
+            n for n in REGISTRY if n not in DEFAULT_ORDER and REGISTRY[n].available()]
+    if isinstance(analyses, str):
+        analyses = [analyses]
+    names = list(analyses)
+    unknown = [n for n in names if n not in REGISTRY]
+    if unknown or not names:
+        raise ValueError(f"unknown analyses {unknown}; choose one or more of "
+                         f"{', '.join(REGISTRY)} (or pass analyses=None for all)")
+    missing = [n for n in names if not REGISTRY[n].available()]
+    if missing:
+        raise ValueError(f"analyses {missing} are not available in this installation; "
+                         "leave them out of analyses=")
+    return names
+
+
+@dataclass(eq=False)
+class Panel:
+    """The widgets of one tab and what it last showed."""
+
+    analysis: Analysis
+    options: dict[str, widgets.Widget]
+    views: dict[str, widgets.Widget]
+    image: widgets.Image
+    message: widgets.HTML
+    box: widgets.VBox
+    png: bytes = b""
+    errors: dict[Hashable, BaseException] = field(default_factory=dict)
+    draws: int = 0
+
+
+@dataclass(frozen=True)
+class StaticView:
+    """Figures and key figures as one self-contained HTML page (no widget front end needed).
+
+    Shown by any notebook front end through ``_repr_html_``; ``save(path)`` writes the page.
+    """
+
+    html: str
+
+    def _repr_html_(self) -> str:
+        return self.html
+
+    def save(self, path: Any) -> None:
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write("<!DOCTYPE html><meta charset='utf-8'><title>hiddenlens</title>"
+                     f"<body style='font-family:sans-serif'>{self.html}</body>")
+
+
+def _int_box(option: Option, run: Run) -> widgets.Widget:
+    value = int(option.default(run))
+    high = int(option.high(run)) if option.high is not None else 10**9
+    return widgets.BoundedIntText(
+        value=min(max(value, option.low), high), min=option.low, max=high,
+        description=option.label, tooltip=option.tip, continuous_update=False,
+        style={"description_width": "initial"}, layout=widgets.Layout(width="150px"))
+
+
+def _dropdown(option: Option, run: Run) -> widgets.Widget:
+    choices = list(option.choices(run))
+    value = option.default(run)
+    if value not in [v for _, v in choices]:
+        value = choices[0][1]
+    return widgets.Dropdown(options=choices, value=value, description=option.label,
+                            tooltip=option.tip, style={"description_width": "initial"},
+                            layout=widgets.Layout(width="max-content"))
+
+
+def make_control(option: Option, run: Run) -> widgets.Widget:
+    return _dropdown(option, run) if option.choices is not None else _int_box(option, run)
+
+
+class Board(widgets.VBox):
+    """Base widget: a title, a summary strip, shared controls, one tab per analysis, a status row.
+
+    Subclasses set ``self._runs`` (name -> :class:`Run`) before calling :meth:`_build`, and
+    implement :meth:`_layout`, :meth:`_draw_panel` and :meth:`_summary_html`.
+    """
+
+    _runs: dict[str, Run]
+
+    def _build(self, analyses: Sequence[str], *, title: str, background: bool,
+               executor: Executor | None, extra_tabs: Sequence[tuple[str, widgets.Widget]] = (),
+               shared: Sequence[widgets.Widget] = ()) -> None:
+        self._cache = Cache()
+        self._runner = Runner(self._cache, background=background, executor=executor,
+                              on_progress=self._on_progress)
+        self._draw_lock = threading.RLock()
+        self.last_draw_seconds = float("nan")
+        first = next(iter(self._runs.values()))
+
+        self._title = widgets.HTML(title)
+        self._summary = widgets.HTML(layout=widgets.Layout(margin="0 0 4px 0"))
+        self._panels: dict[str, Panel] = {}
+        for name in analyses:
+            self._panels[name] = self._make_panel(REGISTRY[name], first)
+
+        self._shared = list(shared)
+        self._extra = list(extra_tabs)
+        tab_boxes = [p.box for p in self._panels.values()] + [w for _, w in self._extra]
+        titles = [p.analysis.label for p in self._panels.values()] + [t for t, _ in self._extra]
+        self._tabs = widgets.Tab(children=tab_boxes, titles=titles)
+        self._tabs.selected_index = 0
+
+        self._bar = widgets.IntProgress(value=0, min=0, max=1, bar_style="info",
+                                        layout=widgets.Layout(width="160px", visibility="hidden"))
+        self._status = widgets.HTML("", layout=widgets.Layout(flex="1 1 auto"))
+        self._cancel = widgets.Button(description="Cancel", icon="stop", disabled=True,
+                                      tooltip="stop the running computation",
+                                      layout=widgets.Layout(width="100px"))
+        self._run_all = widgets.Button(description="Run all", icon="play",
+                                       tooltip="compute every tab now (fills the summary)",
+                                       layout=widgets.Layout(width="100px"))
+        self._cancel.on_click(lambda _: self._on_cancel())
+        self._run_all.on_click(lambda _: self._guard(self.compute_all))
+        status_row = widgets.HBox([self._bar, self._status, self._run_all, self._cancel],
+                                  layout=widgets.Layout(align_items="center", width="100%"))
+        controls = widgets.HBox(self._shared, layout=widgets.Layout(
+            flex_flow="row wrap", align_items="center", gap="4px 16px", margin="2px 0"))
+
+        self.children = [self._title, self._summary, controls, self._tabs, status_row]
+        self.layout = widgets.Layout(width="100%", max_width="980px")
+        self.add_class("hiddenlens-board")
+
+        self._tabs.observe(lambda _: self._guard(self._on_tab), names="selected_index")
+        for w in self._shared:
+            w.observe(lambda _: self._guard(self._on_shared), names="value")
+        self._update_summary()
+        self._on_tab()
+
+    # ------------------------------------------------------------------ panels
+    def _make_panel(self, analysis: Analysis, run: Run) -> Panel:
+        accepted = analysis.accepted()
+        options = {o.name: make_control(o, run) for o in analysis.options if o.name in accepted}
+        views = {o.name: make_control(o, run) for o in analysis.views}
+        image = widgets.Image(format="png", layout=widgets.Layout(max_width="100%",
+                                                                   height="auto"))
+        message = widgets.HTML()
+        caution = widgets.HTML(_render.note_box(analysis.caution) if analysis.caution else "")
+        row = widgets.HBox([*options.values(), *views.values()], layout=widgets.Layout(
+            flex_flow="row wrap", align_items="center", gap="4px 16px"))
+        box = widgets.VBox([row, message, image, caution])
+        box.add_class(f"hiddenlens-panel-{analysis.name}")
+        panel = Panel(analysis, options, views, image, message, box)
+        for w in options.values():
+            w.observe(lambda _, p=panel: self._guard(self._show, p), names="value")
+        for w in views.values():
+            w.observe(lambda _, p=panel: self._guard(self._redraw, p), names="value")
+        return panel
+
+    @property
+    def current(self) -> str:
+        """Name of the analysis on the visible tab ("" for an extra tab)."""
+        i = self._tabs.selected_index or 0
+        names = list(self._panels)
+        return names[i] if i < len(names) else ""
+
+    def select(self, name: str) -> None:
+        """Show the tab of analysis ``name`` (or the title of an extra tab)."""
+        names = list(self._panels) + [t for t, _ in self._extra]
+        if name not in names:
+            raise ValueError(f"no tab {name!r}; tabs: {', '.join(names)}")
+        self._tabs.selected_index = names.index(name)
+
+    # ------------------------------------------------------------------ keys and steps
+    def _part_value(self, run: Run) -> Any:
+        return None
+
+    def _options(self, panel: Panel, run: Run) -> dict[str, Any]:
+        opts = {k: w.value for k, w in panel.options.items()}
+        if panel.analysis.part_option is not None:
+            opts[panel.analysis.part_option] = self._part_value(run)
+        return opts
+
+    def _key(self, name: str, run: Run) -> Hashable:
+        panel = self._panels.get(name)
+        if panel is None:  # a dependency without its own tab: default options
+            analysis = REGISTRY[name]
+            opts = {}
+            if analysis.part_option is not None:
+                opts[analysis.part_option] = self._part_value(run)
+        else:
+            opts = self._options(panel, run)
+        return (run.name, name, tuple(sorted(opts.items(), key=lambda kv: kv[0])))
+
+    def _runs_for(self, panel: Panel) -> list[Run]:
+        return list(self._runs.values())
+
+    def _steps(self, name: str, runs: Sequence[Run]) -> list[Step]:
+        steps = []
+        analysis = REGISTRY[name]
+        for dep in (*analysis.needs, name):
+            for run in runs:
+                key = self._key(dep, run)
+                opts = dict(key[2])
+                label = REGISTRY[dep].label + (f" of {run.name}" if len(self._runs) > 1 else "")
+                steps.append(Step(key, dep, label,
+                                  lambda a=REGISTRY[dep], r=run, o=opts: a.compute(r, o)))
+        return steps
+
+    # ------------------------------------------------------------------ show / draw
+    def _on_tab(self) -> None:
+        name = self.current
+        if name:
+            self._show(self._panels[name])
+        else:
+            self._show_extra(self._tabs.selected_index - len(self._panels))
+        self._update_shared_state()
+
+    def _show_extra(self, index: int) -> None:
+        """Subclasses with extra tabs fill them here."""
+
+    def _on_shared(self) -> None:
+        name = self.current
+        if name:
+            self._show(self._panels[name])
+        else:
+            self._show_extra(self._tabs.selected_index - len(self._panels))
+
+    def _update_shared_state(self) -> None:
+        """Grey out shared controls that do not affect the visible tab."""
+
+    def _show(self, panel: Panel) -> None:
+        """Draw ``panel`` from the cache, or start computing what it lacks."""
+        if panel.analysis.name != self.current:
+            return
+        steps = self._steps(panel.analysis.name, self._runs_for(panel))
+        failed = [panel.errors[s.key] for s in steps
+                  if s.key in panel.errors and s.key not in self._cache]
+        if failed:
+            self._show_error(panel, failed[0])
+            return
+        missing = [s for s in steps if s.key not in self._cache]
+        if not missing:
+            self._redraw(panel)
+            return
+        pending = self._runner.pending_keys()
+        panel.message.value = _render.note_box(
+            f"Computing {panel.analysis.label.lower()} ... (the other tabs wait until opened)")
+        if all(s.key in pending for s in missing):
+            return  # already queued; its job redraws the visible tab when done
+        self._runner.submit(missing, self._job_done, self._job_failed)
+
+    def _job_done(self, job: Job) -> None:
+        self._update_summary()
+        name = self.current
+        if name and all(s.key in self._cache for s in self._steps(name, self._runs_for(
+                self._panels[name]))):
+            self._redraw(self._panels[name])
+        elif not name:
+            self._show_extra(self._tabs.selected_index - len(self._panels))
+
+    def _job_failed(self, job: Job, exc: BaseException) -> None:
+        step = job.steps[min(job.finished, len(job.steps) - 1)]
+        for panel in self._panels.values():
+            if any(s.key == step.key for s in self._steps(panel.analysis.name,
+                                                          self._runs_for(panel))):
+                panel.errors[step.key] = exc
+                if panel.analysis.name == self.current:
+                    self._show_error(panel, exc, what=step.label)
+        self._update_summary()
+
+    def _show_error(self, panel: Panel, exc: BaseException, what: str = "") -> None:
+        panel.message.value = _render.error_box(exc, what=what or panel.analysis.label)
+        panel.image.layout.display = "none"
+
+    def _redraw(self, panel: Panel) -> None:
+        """Render ``panel`` from cached results with the current view (any thread)."""
+        if panel.analysis.name != self.current:
+            return
+        with self._draw_lock:
+            steps = self._steps(panel.analysis.name, self._runs_for(panel))
+            if not all(s.key in self._cache for s in steps):
+                self._show(panel)
+                return
+            t0 = time.perf_counter()
+            try:
+                fig = self._draw_panel(panel)
+                png = _render.png_bytes(fig)
+            except Exception as exc:  # shown in the tab, never lost
+                self._show_error(panel, exc, what=f"drawing {panel.analysis.label.lower()}")
+                return
+            panel.png = png
+            panel.draws += 1
+            panel.image.value = png
+            panel.image.layout.display = None
+            panel.message.value = ""
+            self.last_draw_seconds = time.perf_counter() - t0
+
+    def _view(self, panel: Panel) -> View:
+        return View(extra={k: w.value for k, w in panel.views.items()})
+
+    def _results(self, name: str, run: Run) -> Any:
+        return self._cache.get(self._key(name, run))
+
+    # ------------------------------------------------------------------ subclass hooks
+    def _draw_panel(self, panel: Panel):
+        raise NotImplementedError
+
+    def _summary_html(self) -> str:
+        raise NotImplementedError
+
+    def _update_summary(self) -> None:
+        try:
+            self._summary.value = self._summary_html()
+        except Exception as exc:  # a summary failure must be visible, not fatal
+            self._summary.value = _render.error_box(exc, what="summary")
+
+    # ------------------------------------------------------------------ status row
+    def _on_progress(self, runner: Runner) -> None:
+        done, total, label, seconds = runner.progress()
+        if total == 0:
+            self._bar.layout.visibility = "hidden"
+            self._status.value = ""
+            self._cancel.disabled = True
+            return
+        self._bar.max = max(total, 1)
+        self._bar.value = min(done, total)
+        self._bar.layout.visibility = "visible"
+        self._cancel.disabled = not runner.background
+        what = f"computing {label.lower()}" if label else "waiting"
+        self._status.value = _render.note_box(f"{what} · {done}/{total} · {seconds:.1f} s")
+
+    def _on_cancel(self) -> None:
+        n = self._runner.cancel_all()
+        if n:
+            name = self.current
+            if name:
+                self._panels[name].message.value = _render.note_box(
+                    "Stopped. Change an option, reopen the tab or press 'Run all' to compute "
+                    "again.", tone="warn")
+
+    def _guard(self, fn, *args) -> None:
+        # observers run inside the kernel's comm handler: show failures in the widget
+        try:
+            fn(*args)
+        except Exception as exc:
+            name = self.current
+            target = self._panels[name].message if name else self._summary
+            target.value = _render.error_box(exc)
+
+    # ------------------------------------------------------------------ public
+    def compute_all(self) -> None:
+        """Compute every tab with its current options (in the background unless disabled)."""
+        steps: list[Step] = []
+        seen: set[Hashable] = set()
+        for name, panel in self._panels.items():
+            for s in self._steps(name, self._runs_for(panel)):
+                if s.key not in seen and s.key not in self._cache:
+                    seen.add(s.key)
+                    steps.append(s)
+        steps += self._extra_steps(seen)
+        if steps:
+            self._runner.submit(steps, self._job_done, self._job_failed)
+
+    def _extra_steps(self, seen: set[Hashable]) -> list[Step]:
+        return []
+
+    def wait(self, timeout: float | None = 120.0) -> bool:
+        """Block until queued computations finish; False if ``timeout`` seconds passed first."""
+        return self._runner.wait(timeout)
+
+    def cancel(self) -> None:
+        """Stop queued and running computations (their tabs compute again when reopened)."""
+        self._on_cancel()
+
+    @property
+    def computed(self) -> Mapping[str, int]:
+        """How many times each analysis was computed (a view change must not add to it)."""
+        return dict(self._cache.computed)
+
+    @property
+    def images(self) -> dict[str, bytes]:
+        """The PNG bytes each tab shows now (empty for tabs not drawn yet)."""
+        return {name: p.image.value for name, p in self._panels.items()}
+
+    def close(self) -> None:
+        self._runner.shutdown()
+        super().close()
+
+    # ------------------------------------------------------------------ static fallback
+    def show_static(self, *, compute: bool = True) -> StaticView:
+        """Every tab as PNG figures in one HTML block, for front ends without widgets.
+
+        Parameters
+        ----------
+        compute : bool, default True
+            Compute (in the calling thread) whatever is missing first; False shows only the
+            tabs drawn so far.
+        """
+        if compute:
+            for name, panel in self._panels.items():
+                for s in self._steps(name, self._runs_for(panel)):
+                    if s.key not in self._cache and s.key not in panel.errors:
+                        try:
+                            self._cache.put(s.key, s.fn(), s.name)
+                        except Exception as exc:
+                            panel.errors[s.key] = exc
+            self._update_summary()
+        parts = [self._title.value, self._summary.value]
+        for name, panel in self._panels.items():
+            parts.append(f"<h4 style='margin:10px 0 2px'>{_render.esc(panel.analysis.label)}"
+                         "</h4>")
+            steps = self._steps(name, self._runs_for(panel))
+            errs = [panel.errors[s.key] for s in steps
+                    if s.key in panel.errors and s.key not in self._cache]
+            png = b"" if compute else panel.png
+            if errs:
+                parts.append(_render.error_box(errs[0], what=panel.analysis.label))
+            elif compute and all(s.key in self._cache for s in steps):
+                try:
+                    with self._draw_lock:
+                        png = _render.png_bytes(self._draw_panel(panel))
+                except Exception as exc:
+                    parts.append(_render.error_box(exc, what=panel.analysis.label))
+            if png:
+                parts.append(f"<img style='max-width:100%' src='{_render.png_data_uri(png)}'>")
+            elif not errs:
+                parts.append(_render.note_box("not computed yet"))
+            if panel.analysis.caution:
+                parts.append(_render.note_box(panel.analysis.caution))
+        parts += self._static_extra()
+        return StaticView("\n".join(parts))
+
+    def _static_extra(self) -> list[str]:
+        return []
+
+    def _repr_mimebundle_(self, **kwargs: Any) -> dict[str, Any]:
+        # widget front ends pick the widget view; others fall back to the figures drawn so far
+        data = super()._repr_mimebundle_(**kwargs) or {}
+        data["text/html"] = self.show_static(compute=False).html + _render.note_box(
+            "Static copy: a notebook with ipywidgets shows the interactive version; "
+            "call .show_static() for every figure.")
+        return data

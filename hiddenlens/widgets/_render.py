@@ -1,0 +1,69 @@
+"""Figures as PNG bytes and small HTML boxes: drawing that works from any thread, no pyplot."""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import traceback
+from typing import Any
+
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+__all__ = ["new_figure", "png_bytes", "png_data_uri", "error_box", "note_box", "esc"]
+
+DPI = 100
+WIDTH_IN = 9.0  # 900 px: fits a JupyterLab cell at its default width
+HEIGHT_IN = 3.6
+
+
+def new_figure(n_axes: int = 1, *, projection: str | None = None,
+               height: float = HEIGHT_IN) -> tuple[Figure, list[Any]]:
+    """A pyplot-free Agg figure with ``n_axes`` axes side by side (``projection`` e.g. "3d").
+
+    Figures made this way are owned by the caller alone, so worker threads may draw into them
+    while the notebook's main thread draws into others.
+    """
+    fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI, layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = [fig.add_subplot(1, n_axes, i + 1, projection=projection) for i in range(n_axes)]
+    return fig, axes
+
+
+def png_bytes(fig: Figure) -> bytes:
+    """Render ``fig`` with Agg and return the PNG file as bytes."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI, facecolor="white")
+    return buf.getvalue()
+
+
+def png_data_uri(png: bytes) -> str:
+    """``data:`` URI of PNG bytes, for self-contained HTML."""
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+
+
+def esc(text: Any) -> str:
+    """HTML-escape ``str(text)``."""
+    return html.escape(str(text), quote=True)
+
+
+def error_box(exc: BaseException, *, what: str = "") -> str:
+    """A red HTML box with the exception's type and message; the traceback folded below it."""
+    head = f"{type(exc).__name__}: {exc}"
+    where = f"<b>{esc(what)} failed</b><br>" if what else ""
+    tb = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+    return (
+        '<div class="hiddenlens-error" style="border:1px solid #c62828;background:#fdecea;'
+        'color:#611a15;padding:6px 10px;border-radius:4px;margin:4px 0;font-size:13px">'
+        f"{where}<span style=\"white-space:pre-wrap\">{esc(head)}</span>"
+        "<details><summary style=\"cursor:pointer\">traceback</summary>"
+        f"<pre style=\"font-size:11px;max-height:240px;overflow:auto\">{esc(tb)}</pre>"
+        "</details></div>"
+    )
+
+
+def note_box(text: str, *, tone: str = "info") -> str:
+    """A quiet one-line HTML note (tone "info" or "warn"); ``text`` is escaped."""
+    colour = {"info": "#4a5568", "warn": "#8a5300"}[tone]
+    return f'<div style="color:{colour};font-size:12.5px;margin:2px 0">{esc(text)}</div>'
