@@ -1,0 +1,486 @@
+"""One self-contained HTML report (figures inlined as PNG) plus a JSON file of the key figures.
+
+The page is built from plain strings with every piece of text escaped; it references nothing
+outside itself (no scripts, fonts or images from the network), so it opens offline, in CI
+artefacts and attached to a lab log.
+"""
+
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import io
+import json
+import math
+import os
+import sys
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ._compare import RunComparison, plot_cka, plot_overlay
+from ._summary import (
+    ANALYSES,
+    CAUTIONS,
+    FIGURES,
+    TITLES,
+    array_summaries,
+    describe_inputs,
+    format_figure,
+    key_figures,
+    summary_sentence,
+)
+from ._version import __version__
+
+__all__ = ["write_report", "report_data", "GENERAL_CAUTIONS"]
+
+FORMAT = "hiddenlens-report"
+FORMAT_VERSION = 1
+
+#: Cautions printed in every report, whatever the analyses.
+GENERAL_CAUTIONS: tuple[str, ...] = (
+    "Finite-time Lyapunov exponents and Jacobian spectra of an input-driven network depend on "
+    "the input statistics and the number of steps: they describe the network on these inputs.",
+    "Linear decoding gives a lower bound on memory: the state may hold more than a linear "
+    "readout recovers, and the span threshold is a convention.",
+    "Fixed points depend on the chosen constant input (zero unless stated); slow points are not "
+    "fixed points.",
+    "The gradient verdict (vanishing / near-isometric / exploding) is a heuristic read off a "
+    "fitted rate, not a proof about training.",
+    "PCA axes are comparable only in one basis: trajectories of different runs are drawn in "
+    "their own axes here, so compare their variance spectra, not the pictures' orientation.",
+    "CKA compares the runs' representations on the given inputs only.",
+)
+
+_CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:2em auto;max-width:1100px;
+color:#222;line-height:1.45;padding:0 1em}
+h1{font-size:1.6em;margin-bottom:.2em}h2{border-bottom:1px solid #ccc;padding-bottom:.2em;
+margin-top:1.8em}h3{margin-bottom:.3em}
+.meta{color:#666;font-size:.9em}.caution{background:#fff8e5;border-left:4px solid #e0a800;
+padding:.4em .8em;font-size:.92em}.note{background:#eef3fb;border-left:4px solid #4a78c2;
+padding:.4em .8em}
+table{border-collapse:collapse;font-size:.9em;margin:.6em 0}
+th,td{border:1px solid #ddd;padding:.25em .6em;text-align:right}
+th{background:#f3f3f3}td.text,th.text{text-align:left}
+figure{display:inline-block;margin:.4em;vertical-align:top}
+figure img{max-width:100%;height:auto;border:1px solid #eee}
+figcaption{font-size:.85em;color:#555;text-align:center}
+code{background:#f4f4f4;padding:0 .2em}
+"""
+
+
+# ---------------------------------------------------------------------- figures
+def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None) -> str:
+    """Run ``draw(ax)`` on a fresh Agg figure and return it as a base64 PNG string."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=figsize, dpi=90)
+    ax = fig.add_subplot(projection=projection)
+    draw(ax)
+    try:
+        fig.tight_layout()
+    except (ValueError, RuntimeError):  # 3-D axes and colorbars may refuse: keep the layout
+        pass
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", metadata={"Software": None})
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _draws(analysis: str, result: Any, run: Mapping[str, Any], *, extras: bool = True
+           ) -> list[tuple[str, Any, bool]]:
+    """The figures of one result: (caption, draw(ax), 3-D axes?) triples.
+
+    ``extras=False`` keeps only the main plot (a comparison shows the rest as overlays).
+    """
+    draws: list[tuple[str, Any, bool]] = [("", lambda ax: result.plot(ax=ax), False)]
+    if not extras and analysis != "fixed_points":
+        return draws
+    if analysis == "lyapunov":
+        draws.append(("spectrum", lambda ax: result.plot(ax=ax, kind="spectrum"), False))
+    elif analysis == "pca" and hasattr(result, "plot_variance"):
+        draws.append(("variance", lambda ax: result.plot_variance(ax=ax), False))
+    elif analysis == "fixed_points":
+        # drawn on the PCA axes of the same run (the state has more than three units)
+        axes = run.get("pca") if "pca" in run else getattr(run, "trace", None)
+        if axes is not None:
+            draws[0] = ("", lambda ax: result.plot(ax=ax, pca=axes), False)
+    return draws
+
+
+def _result_pngs(analysis: str, result: Any, run: Mapping[str, Any], *, extras: bool = True
+                 ) -> list[tuple[str, str]]:
+    out = []
+    for caption, draw, _ in _draws(analysis, result, run, extras=extras):
+        try:
+            b64 = _png(draw)
+        except ValueError as err:  # a plot that needs 3-D axes says so
+            if "3-D" not in str(err):
+                raise
+            b64 = _png(draw, projection="3d", figsize=(6.4, 5.0))
+        out.append((caption, b64))
+    return out
+
+
+def _img(b64: str, caption: str) -> str:
+    alt = html.escape(caption, quote=True)
+    return (f'<figure><img src="data:image/png;base64,{b64}" alt="{alt}">'
+            f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+def _close_stray_pyplot_figures(before: set[int]) -> None:
+    plt = sys.modules.get("matplotlib.pyplot")
+    if plt is not None:
+        for num in set(plt.get_fignums()) - before:
+            plt.close(num)
+
+
+# ---------------------------------------------------------------------- JSON
+def _jsonable(v: Any) -> Any:
+    """JSON-ready copy: numpy -> Python; NaN/inf -> "nan"/"inf"/"-inf" (valid JSON)."""
+    if isinstance(v, Mapping):
+        return {str(k): _jsonable(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_jsonable(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return _jsonable(v.tolist())
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        f = float(v)
+        if math.isnan(f):
+            return "nan"
+        if math.isinf(f):
+            return "inf" if f > 0 else "-inf"
+        return f
+    if v is None or isinstance(v, str):
+        return v
+    if hasattr(v, "detach"):
+        return _jsonable(v.detach().cpu().numpy())
+    return repr(v)
+
+
+def _model_info(results: Any) -> dict[str, Any]:
+    trace = getattr(results, "trace", None)
+    if trace is None:
+        return {}
+    keys = ("model_class", "kind", "num_layers", "hidden_size", "state_size", "input_size",
+            "dtype", "fingerprint")
+    return {k: trace.metadata.get(k) for k in keys if k in trace.metadata}
+
+
+def _as_runs(results_or_runs: Any, name: str) -> tuple[dict[str, Mapping[str, Any]],
+                                                         RunComparison | None]:
+    if isinstance(results_or_runs, RunComparison):
+        comp = results_or_runs
+        return {n: comp.results[n] for n in comp.names}, comp
+    if isinstance(results_or_runs, Mapping):
+        if all(k in ANALYSES for k in results_or_runs):
+            return {name: results_or_runs}, None
+        if all(isinstance(v, Mapping) for v in results_or_runs.values()):
+            return {str(k): v for k, v in results_or_runs.items()}, None
+    raise TypeError(
+        "write_report takes the results of run_analyses (a mapping analysis name -> result), "
+        f"a RunComparison from compare_runs, or a mapping run name -> results; got "
+        f"{type(results_or_runs).__name__}"
+    )
+
+
+def report_data(results_or_runs: Any, *, name: str = "model", title: str | None = None,
+                inputs_description: str | None = None) -> dict[str, Any]:
+    """The JSON document of a report: key figures, summaries of the main arrays, metadata.
+
+    Returns
+    -------
+    dict
+        ``format``, ``format_version``, ``hiddenlens_version``, ``created``, ``title``,
+        ``inputs`` (``description``, ``shape``), ``analyses`` (names shown), ``runs``: per run
+        ``model`` (class, kind, sizes, fingerprint), ``summary`` (a sentence),
+        ``key_figures``, ``arrays`` (see :func:`hiddenlens._summary.array_summaries`),
+        ``skipped`` (analysis -> reason), ``options``, ``seconds``; and for several runs
+        ``comparison`` with ``names``, ``cka`` (R x R) and ``cka_parts``. Numbers that are not
+        finite are written as the strings ``"nan"``, ``"inf"`` and ``"-inf"``.
+    """
+    runs, comp = _as_runs(results_or_runs, name)
+    first = next(iter(runs.values()))
+    trace = getattr(first, "trace", None)
+    doc: dict[str, Any] = {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "hiddenlens_version": __version__,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "title": title or _default_title(runs),
+        "inputs": {
+            "description": inputs_description
+            or (describe_inputs(trace) if trace is not None else None),
+            "shape": list(trace.inputs.shape) if trace is not None else None,
+        },
+        "analyses": [a for a in ANALYSES if any(a in r for r in runs.values())],
+        "runs": {},
+    }
+    for n, res in runs.items():
+        figs = key_figures(res)
+        doc["runs"][n] = {
+            "model": _model_info(res),
+            "summary": summary_sentence(figs),
+            "key_figures": figs,
+            "arrays": array_summaries(res),
+            "skipped": dict(getattr(res, "skipped", {}) or {}),
+            "options": dict(getattr(res, "options", {}) or {}),
+            "seconds": dict(getattr(res, "seconds", {}) or {}),
+        }
+    if comp is not None:
+        doc["comparison"] = {"names": list(comp.names), "cka": comp.cka,
+                             "cka_parts": comp.cka_parts}
+    return _jsonable(doc)
+
+
+def _default_title(runs: Mapping[str, Any]) -> str:
+    if len(runs) > 1:
+        return f"hiddenlens comparison of {len(runs)} runs: {', '.join(runs)}"
+    return f"hiddenlens report: {next(iter(runs))}"
+
+
+# ---------------------------------------------------------------------- HTML
+def _esc(v: Any) -> str:
+    return html.escape(str(v), quote=True)
+
+
+def _figures_table(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None) -> str:
+    figs = {n: key_figures(r) for n, r in runs.items()}
+    keys = [k for k in FIGURES if any(k in f for f in figs.values())]
+    if not keys:
+        return "<p>No key figures: no analysis ran.</p>"
+    names = list(runs)
+    head = '<tr><th class="text">figure</th>' + "".join(
+        f"<th>{_esc(n)}</th>" for n in names)
+    if len(names) > 1:
+        head += "".join(f"<th>\u0394 {_esc(n)}</th>" for n in names[1:])
+    head += "</tr>"
+    rows = []
+    ref = figs[names[0]]
+    for k in keys:
+        label, unit, _ = FIGURES[k]
+        cells = "".join(f"<td>{_esc(format_figure(k, figs[n].get(k)))}</td>" for n in names)
+        if len(names) > 1:
+            for n in names[1:]:
+                v, r = figs[n].get(k), ref.get(k)
+                if isinstance(v, (int, float)) and isinstance(r, (int, float)):
+                    d = v - r
+                    cells += f"<td>{'+' if d > 0 else ''}{_esc(format_figure(k, d))}</td>"
+                elif v is not None and r is not None:
+                    cells += f"<td>{'same' if v == r else 'changed'}</td>"
+                else:
+                    cells += "<td>-</td>"
+        text = f"{label} ({unit})" if unit else label
+        rows.append(f'<tr><td class="text">{_esc(text)}</td>{cells}</tr>')
+    note = ""
+    if len(names) > 1:
+        note = (f"<p class=\"meta\">\u0394 columns: difference from the first run, "
+                f"<b>{_esc(names[0])}</b>.</p>")
+    return f"<table>{head}{''.join(rows)}</table>{note}"
+
+
+def _cka_table(comp: RunComparison) -> str:
+    names = comp.names
+    head = "<tr><th></th>" + "".join(f"<th>{_esc(n)}</th>" for n in names) + "</tr>"
+    rows = "".join(
+        f'<tr><th class="text">{_esc(a)}</th>'
+        + "".join(f"<td>{_esc(format_figure('cka', comp.cka[i, j]))}</td>"
+                  for j in range(len(names)))
+        + "</tr>"
+        for i, a in enumerate(names)
+    )
+    return f"<table>{head}{rows}</table>"
+
+
+def _options_block(runs: Mapping[str, Any]) -> str:
+    items = []
+    for n, res in runs.items():
+        opts = getattr(res, "options", None)
+        secs = getattr(res, "seconds", {}) or {}
+        if not opts:
+            continue
+        for a, o in opts.items():
+            kw = ", ".join(f"{k}={v!r}" for k, v in o.items()) or "defaults"
+            t = f" ({secs[a]:.2f} s)" if a in secs else ""
+            items.append(f"<li>{_esc(n)} \u00b7 {_esc(a)}: <code>{_esc(kw)}</code>{_esc(t)}</li>")
+    return f"<ul>{''.join(items)}</ul>" if items else "<p>Defaults.</p>"
+
+
+def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None, *,
+                title: str, inputs_description: str | None, notes: Iterable[str],
+                progress: Any) -> tuple[str, int]:
+    names = list(runs)
+    multi = len(names) > 1
+    analyses = [a for a in ANALYSES if any(a in r for r in runs.values())]
+    skipped = {n: dict(getattr(r, "skipped", {}) or {}) for n, r in runs.items()}
+    n_img = 0
+    out = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_esc(title)}</title><style>{_CSS}</style></head><body>",
+        f"<h1>{_esc(title)}</h1>",
+        f'<p class="meta">hiddenlens {_esc(__version__)} \u00b7 written '
+        f"{_esc(_dt.datetime.now().astimezone().isoformat(timespec='seconds'))}</p>",
+    ]
+    # summary
+    out.append('<section id="summary"><h2>Summary</h2><ul>')
+    for n, res in runs.items():
+        sentence = summary_sentence(key_figures(res)) or "no key figures"
+        info = _model_info(res)
+        model = ""
+        if info:
+            model = (f" <span class=\"meta\">({_esc(info.get('model_class', ''))}, "
+                     f"{_esc(info.get('kind', ''))}, {_esc(info.get('state_size', ''))} "
+                     "states)</span>")
+        out.append(f"<li><b>{_esc(n)}</b>{model}: {_esc(sentence)}</li>")
+    out.append("</ul>")
+    for note in notes:
+        out.append(f'<p class="note">{_esc(note)}</p>')
+    out.append("</section>")
+    # inputs
+    if inputs_description is None:
+        tr = getattr(next(iter(runs.values())), "trace", None)
+        inputs_description = describe_inputs(tr) if tr is not None else "not recorded"
+    out.append('<section id="inputs"><h2>Inputs</h2>'
+               f"<p>{_esc(inputs_description)}</p>"
+               + ("<p>Every run was analysed on these same inputs.</p>" if multi else "")
+               + "</section>")
+    # key figures
+    out.append('<section id="key-figures"><h2>Key figures</h2>'
+               f"{_figures_table(runs, comp)}</section>")
+    # similarity
+    if comp is not None and multi:
+        b64 = _png(lambda ax: plot_cka(comp.cka, comp.names, ax=ax), figsize=(5.6, 4.6))
+        n_img += 1
+        parts = ("top-layer hidden states" if comp.cka_parts == "output"
+                 else "whole flat states")
+        out.append(
+            '<section id="similarity"><h2>Representational similarity (linear CKA)</h2>'
+            f"<p>Linear CKA (Kornblith et al. 2019) between the runs' {parts} on the shared "
+            "inputs, one example per (sequence, step): 1 means equal up to rotation and "
+            "scale.</p>"
+            f'<p class="caution">{_esc(GENERAL_CAUTIONS[-1])}</p>'
+            f"{_cka_table(comp)}{_img(b64, 'linear CKA between runs')}</section>"
+        )
+    # analyses
+    for a in ANALYSES:
+        why = {n: s[a] for n, s in skipped.items() if a in s}
+        if a not in analyses:
+            if why:
+                reason = "; ".join(f"{n}: {r}" for n, r in why.items()) if multi else \
+                    next(iter(why.values()))
+                out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
+                           f'<p class="note">Skipped \u2014 {_esc(reason)}</p></section>')
+            continue
+        out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
+                   f'<p class="caution">{_esc(CAUTIONS[a])}</p>')
+        present = {n: r[a] for n, r in runs.items() if a in r}
+        if multi:
+            if progress:
+                progress(f"figure: {a} (overlay)")
+            b64 = _png(lambda ax, p=present, a=a: plot_overlay(a, p, ax=ax))
+            n_img += 1
+            out.append(_img(b64, f"{TITLES[a]}: all runs"))
+        for n, res in present.items():
+            if progress:
+                progress(f"figure: {a} ({n})" if multi else f"figure: {a}")
+            for caption, b64 in _result_pngs(a, res, runs[n], extras=not multi):
+                n_img += 1
+                label = " \u00b7 ".join(c for c in ((n if multi else TITLES[a]), caption) if c)
+                out.append(_img(b64, label))
+        for n, r in why.items():
+            out.append(f'<p class="note">{_esc(n)}: skipped \u2014 {_esc(r)}</p>')
+        out.append("</section>")
+    # cautions and options
+    out.append('<section id="cautions"><h2>Reading these numbers with care</h2><ul>'
+               + "".join(f"<li>{_esc(c)}</li>" for c in GENERAL_CAUTIONS[: -1 if not multi
+                                                                          else None])
+               + "</ul></section>")
+    out.append(f'<section id="options"><h2>Options used</h2>{_options_block(runs)}</section>')
+    out.append("</body></html>")
+    return "\n".join(out), n_img
+
+
+def write_report(
+    results_or_runs: Any,
+    path: str | os.PathLike,
+    *,
+    title: str | None = None,
+    name: str = "model",
+    inputs_description: str | None = None,
+    notes: Iterable[str] = (),
+    json_path: str | os.PathLike | bool = True,
+    progress: Any = None,
+) -> Path:
+    """Write a self-contained HTML report and (by default) a JSON file of its figures.
+
+    Parameters
+    ----------
+    results_or_runs : mapping or RunComparison
+        The results of :func:`hiddenlens._summary.run_analyses` for one model (a mapping
+        analysis name -> result); a :class:`RunComparison` from :func:`hiddenlens.compare_runs`
+        (adds the comparison table, CKA and overlay plots); or a mapping run name -> results.
+    path : str or PathLike
+        The HTML file to write (parent folders are created).
+    title : str, optional
+        Page title; default names the run(s).
+    name : str, default "model"
+        Name of the single run when ``results_or_runs`` holds one model's results.
+    inputs_description : str, optional
+        What the inputs are (shown in the report and the JSON); default: their shape and
+        per-feature statistics.
+    notes : iterable of str
+        Extra paragraphs shown under the summary.
+    json_path : str, PathLike or bool, default True
+        Where to write the JSON figures (see :func:`report_data`): True for the HTML path with
+        the suffix ``.json``, False for none.
+    progress : callable, optional
+        Called with a short message before each figure is drawn.
+
+    Returns
+    -------
+    pathlib.Path
+        The HTML file written.
+
+    Notes
+    -----
+    Figures are PNG images drawn with matplotlib's Agg renderer and embedded as base64 data;
+    the page loads nothing from the network. Every text shown is HTML-escaped.
+    """
+    runs, comp = _as_runs(results_or_runs, name)
+    path = Path(path)
+    title = title or _default_title(runs)
+    plt = sys.modules.get("matplotlib.pyplot")
+    before = set(plt.get_fignums()) if plt is not None else set()
+    try:
+        page, _ = _build_html(runs, comp, title=title, inputs_description=inputs_description,
+                              notes=list(notes), progress=progress)
+    finally:
+        _close_stray_pyplot_figures(before)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    _atomic_write(path, page)
+    if json_path:
+        jp = path.with_suffix(".json") if json_path is True else Path(json_path)
+        doc = report_data(results_or_runs, name=name, title=title,
+                          inputs_description=inputs_description)
+        _atomic_write(jp, json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
+    return path
+
+
+def _atomic_write(path: Path, text: str) -> None:
+    # write next to the target and rename, so an interrupted run never leaves half a file
+    tmp = path.with_name(f".{path.name}.partial")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()

@@ -1,0 +1,403 @@
+"""The ``hiddenlens`` command: write an HTML report for trained weights, or run the demo.
+
+    hiddenlens report --model pkg.module:factory --weights run_a.pt run_b.pt -o out/
+    hiddenlens demo -o hiddenlens-demo
+    hiddenlens --version
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import os
+import sys
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from ._version import __version__
+
+__all__ = ["main", "build_parser"]
+
+PROG = "hiddenlens"
+DEFAULT_PROBE = (8, 200)
+DEMO_PROBE = (8, 150)
+
+
+class CommandError(Exception):
+    """A problem with the command's arguments or files, shown as one line."""
+
+
+# ---------------------------------------------------------------------- arguments
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``hiddenlens`` command."""
+    parser = argparse.ArgumentParser(
+        prog=PROG,
+        description="Probe the hidden-state dynamics of recurrent PyTorch models and write a "
+                    "self-contained HTML report.",
+    )
+    parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    rep = sub.add_parser(
+        "report", help="analyse trained weights and write an HTML + JSON report",
+        description="Build the model with a factory, load each weights file into it, analyse "
+                    "every run on the same inputs, and write one HTML report (several weights "
+                    "files: a comparison) and a JSON file of the figures.",
+    )
+    rep.add_argument("--model", required=True, metavar="MODULE:FUNCTION",
+                     help="importable factory that builds the model with no arguments, "
+                          "e.g. mypackage.nets:make_model")
+    rep.add_argument("--weights", required=True, nargs="+", metavar="FILE",
+                     help="one or more state_dict files (torch.save(model.state_dict(), ...))")
+    rep.add_argument("--names", nargs="+", metavar="NAME",
+                     help="a name per weights file (default: the file names without suffix)")
+    src = rep.add_mutually_exclusive_group()
+    src.add_argument("--inputs", metavar="FILE[:KEY]",
+                     help="inputs (B, T, I) or (T, I) from a .npy file or a .npz file "
+                          "(KEY picks the array when the .npz holds several)")
+    src.add_argument("--probe", metavar="N,T", type=_probe_shape,
+                     help="N i.i.d. standard-normal probe sequences of T steps (default "
+                          f"{DEFAULT_PROBE[0]},{DEFAULT_PROBE[1]} when --inputs is not given)")
+    _common_options(rep, default_output="hiddenlens-report")
+    rep.add_argument("--title", help="title of the report")
+
+    demo = sub.add_parser(
+        "demo", help="report on the shipped example runs (sorting-line task)",
+        description="Compare the shipped example runs (tanh RNNs trained from three recurrent "
+                    "init gains and a GRU, all on the sorting-line task) and write the report.",
+    )
+    _common_options(demo, default_output="hiddenlens-demo")
+    return parser
+
+
+def _common_options(p: argparse.ArgumentParser, *, default_output: str) -> None:
+    p.add_argument("-o", "--output", default=default_output, metavar="PATH",
+                   help="folder for report.html and report.json, or a path ending in .html "
+                        f"(default: ./{default_output})")
+    p.add_argument("--analyses", nargs="+", metavar="NAME",
+                   help="analyses to run, space- or comma-separated (default: all): "
+                        "spectra, gradient_flow, lyapunov, pca, fixed_points, memory")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the probe inputs and of the analyses' random starts "
+                        "(default 0)")
+    p.add_argument("--keep-going", action="store_true",
+                   help="leave out an analysis that fails (noted in the report) instead of "
+                        "stopping")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress lines on stderr")
+
+
+def _probe_shape(text: str) -> tuple[int, int]:
+    try:
+        n, t = (int(v) for v in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected N,T (two positive integers, e.g. 8,200), got {text!r}") from None
+    if n < 1 or t < 2:
+        raise argparse.ArgumentTypeError(f"N must be >= 1 and T >= 2, got {text!r}")
+    return n, t
+
+
+def _analyses(values: Sequence[str] | None) -> list[str] | None:
+    from ._summary import ANALYSES
+
+    if not values:
+        return None
+    names = [v.strip() for item in values for v in item.split(",") if v.strip()]
+    bad = [n for n in names if n not in ANALYSES]
+    if bad:
+        raise CommandError(f"unknown analysis {bad[0]!r}; choose among {', '.join(ANALYSES)}")
+    return list(dict.fromkeys(names))
+
+
+def _output_paths(output: str) -> Path:
+    p = Path(output)
+    if p.suffix.lower() in (".html", ".htm"):
+        return p
+    if p.exists() and not p.is_dir():
+        raise CommandError(f"--output {output!r} is an existing file; give a folder or a path "
+                           "ending in .html")
+    return p / "report.html"
+
+
+# ---------------------------------------------------------------------- loading
+def load_factory(spec: str) -> Callable[[], Any]:
+    """Import ``"package.module:function"`` and return the function."""
+    module_name, sep, attr = spec.partition(":")
+    if not sep or not module_name or not attr or ":" in attr:
+        raise CommandError(f"--model must look like package.module:function, got {spec!r}")
+    if "" not in sys.path and os.getcwd() not in sys.path:
+        sys.path.insert(0, os.getcwd())  # like `python -m`: factories next to the user's files
+    try:
+        module = importlib.import_module(module_name)
+    except ImportError as err:
+        raise CommandError(f"cannot import module {module_name!r} named in --model: {err}; "
+                           "check the spelling and that it is on the Python path") from err
+    fn = module
+    for part in attr.split("."):
+        fn = getattr(fn, part, None)
+        if fn is None:
+            raise CommandError(f"module {module_name!r} has no attribute {attr!r} "
+                               "(the factory named in --model)")
+    if not callable(fn):
+        raise CommandError(f"{spec!r} is not callable; --model must name a function that "
+                           "returns the model")
+    return fn
+
+
+def build_model(spec: str) -> Any:
+    """Call the factory named by ``spec`` with no arguments; it must return an nn.Module."""
+    import torch
+
+    fn = load_factory(spec)
+    try:
+        model = fn()
+    except Exception as err:
+        raise CommandError(f"the factory {spec} failed: {type(err).__name__}: {err}") from err
+    if not isinstance(model, torch.nn.Module):
+        raise CommandError(f"the factory {spec} returned a {type(model).__name__}, not a "
+                           "torch.nn.Module")
+    return model
+
+
+def load_weights(model: Any, path: str, spec: str) -> None:
+    """Load a state_dict file into ``model`` after checking that every key and shape fits."""
+    import torch
+
+    if not os.path.isfile(path):
+        raise CommandError(f"weights file {path!r} not found")
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as err:
+        msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+        raise CommandError(f"cannot read weights from {path!r}: {msg}") from err
+    if not isinstance(state, dict) or not all(isinstance(v, torch.Tensor)
+                                              for v in state.values()):
+        raise CommandError(f"{path!r} does not hold a state_dict (a dict of tensors); save one "
+                           "with torch.save(model.state_dict(), path)")
+    expected = model.state_dict()
+    missing = [k for k in expected if k not in state]
+    unexpected = [k for k in state if k not in expected]
+    shapes = [f"{k} {tuple(state[k].shape)} in the file vs {tuple(expected[k].shape)} in the "
+              "model" for k in expected if k in state and state[k].shape != expected[k].shape]
+    problems = []
+    if missing:
+        problems.append(f"missing keys {', '.join(missing[:4])}{' ...' * (len(missing) > 4)}")
+    if unexpected:
+        problems.append(f"unexpected keys {', '.join(unexpected[:4])}"
+                        f"{' ...' * (len(unexpected) > 4)}")
+    if shapes:
+        problems.append(f"shape mismatch: {'; '.join(shapes[:3])}")
+    if problems:
+        raise CommandError(f"weights {path!r} do not fit the model built by {spec}: "
+                           f"{'; '.join(problems)}")
+    with torch.no_grad():
+        model.load_state_dict(state)
+    model.eval()
+
+
+def load_inputs(spec: str) -> Any:
+    """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything)."""
+    import numpy as np
+
+    path, key = spec, None
+    head, sep, tail = spec.rpartition(":")
+    if sep and head.lower().endswith(".npz") and tail:
+        path, key = head, tail
+    if not os.path.isfile(path):
+        raise CommandError(f"inputs file {path!r} not found")
+    try:
+        data = np.load(path, allow_pickle=False)
+    except Exception as err:
+        msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+        raise CommandError(f"cannot read inputs from {path!r} (expected .npy or .npz without "
+                           f"pickled objects): {msg}") from err
+    if isinstance(data, np.lib.npyio.NpzFile):
+        with data:
+            if key is None:
+                if len(data.files) != 1:
+                    raise CommandError(f"{path!r} holds arrays {', '.join(data.files)}; pick "
+                                       f"one with --inputs {path}:KEY")
+                key = data.files[0]
+            if key not in data.files:
+                raise CommandError(f"{path!r} has no array {key!r}; it holds "
+                                   f"{', '.join(data.files)}")
+            try:
+                arr = data[key]
+            except ValueError as err:
+                raise CommandError(f"cannot read array {key!r} of {path!r}: {err}") from err
+    else:
+        if key is not None:
+            raise CommandError("a :KEY suffix applies to .npz files only")
+        arr = data
+    if not np.issubdtype(arr.dtype, np.floating):
+        raise CommandError(f"inputs in {spec!r} have dtype {arr.dtype}; expected floating-point "
+                           "numbers (one-hot encode tokens and save as float32)")
+    if arr.ndim not in (2, 3):
+        raise CommandError(f"inputs in {spec!r} have shape {arr.shape}; expected (B, T, I) or "
+                           "(T, I)")
+    if arr.ndim == 2:
+        arr = arr[None]
+    return arr
+
+
+def _probe(n: int, t: int, input_size: int, seed: int):
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal((n, t, input_size)).astype(np.float32)  # (B, T, I)
+
+
+# ---------------------------------------------------------------------- running
+class _Progress:
+    """Per-step lines on stderr with elapsed seconds."""
+
+    def __init__(self, quiet: bool) -> None:
+        self.quiet = quiet
+        self.t0 = time.perf_counter()
+
+    def __call__(self, message: str, done: int | None = None, total: int | None = None) -> None:
+        if self.quiet or message == "done":
+            return
+        count = f"[{done + 1}/{total}] " if done is not None and total else ""
+        print(f"{PROG}: {time.perf_counter() - self.t0:6.1f} s  {count}{message}",
+              file=sys.stderr, flush=True)
+
+
+def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str] | None,
+                seed: int, keep_going: bool, quiet: bool, title: str | None,
+                source: str, options: dict[str, dict[str, Any]] | None = None) -> Path:
+    from ._compare import compare_runs
+    from ._report import write_report
+    from ._summary import available_analyses, describe_inputs, run_analyses
+
+    say = _Progress(quiet)
+    notes = []
+    if which is None:
+        absent = [a for a in ("spectra", "gradient_flow", "lyapunov", "pca", "fixed_points",
+                              "memory") if a not in available_analyses()]
+        if absent:
+            notes.append(f"Not available in this installation and left out: "
+                         f"{', '.join(absent)}.")
+    on_error = "skip" if keep_going else "raise"
+    description = describe_inputs(inputs, source=source)
+    if len(runs) == 1:
+        name, model = next(iter(runs.items()))
+        results: Any = run_analyses(model, inputs, which=which, options=options, seed=seed,
+                                    on_error=on_error,
+                                    progress=lambda s, d, t: say(f"{name}: {s}", d, t))
+        kwargs: dict[str, Any] = {"name": name}
+    else:
+        results = compare_runs(runs, inputs, which=which, options=options, seed=seed,
+                               on_error=on_error, progress=say)
+        kwargs = {}
+    say("writing the report")
+    path = write_report(results, out, title=title, inputs_description=description,
+                        notes=notes, progress=say, **kwargs)
+    say(f"done: {path}")
+    return path
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    which = _analyses(args.analyses)
+    out = _output_paths(args.output)
+    weights = list(args.weights)
+    if args.names is not None:
+        if len(args.names) != len(weights):
+            raise CommandError(f"--names has {len(args.names)} names for {len(weights)} weights "
+                               "files; give one name per file")
+        names = list(args.names)
+    else:
+        names = [Path(w).stem for w in weights]
+    if len(set(names)) != len(names):
+        raise CommandError(f"run names must be distinct, got {', '.join(names)}; pass --names")
+    inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
+    runs: dict[str, Any] = {}
+    for name, w in zip(names, weights, strict=True):
+        model = build_model(args.model)
+        load_weights(model, w, args.model)
+        runs[name] = model
+    from ._record import as_system
+
+    input_size = as_system(next(iter(runs.values()))).input_size
+    if inputs is None:
+        n, t = args.probe or DEFAULT_PROBE
+        inputs = _probe(n, t, input_size, args.seed)
+        source = (f"built-in probe: i.i.d. standard-normal inputs, {n} x {t} steps, "
+                  f"seed {args.seed}")
+    else:
+        if inputs.shape[-1] != input_size:
+            raise CommandError(
+                f"inputs in {args.inputs!r} have {inputs.shape[-1]} features but the model "
+                f"expects {input_size}; pass an array of shape (B, T, {input_size})")
+        source = f"read from {args.inputs}"
+    path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
+                       keep_going=args.keep_going, quiet=args.quiet, title=args.title,
+                       source=source)
+    print(path)
+    return 0
+
+
+def demo_runs() -> dict[str, Any]:
+    """The shipped example runs of the sorting-line task, name -> trained model."""
+    try:
+        import example_models
+    except ImportError as err:
+        raise CommandError("the example models are not installed (package example_models); "
+                           "install hiddenlens from its source tree") from err
+    runs = {}
+    for name, run in example_models.RUNS.items():
+        if not run.factory.startswith("example_models.sorting_line:"):
+            continue
+        try:
+            runs[name] = example_models.load_run(name)
+        except FileNotFoundError as err:
+            raise CommandError(str(err)) from err
+    if not runs:
+        raise CommandError("no sorting-line example run is shipped with example_models")
+    return runs
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from example_models import sorting_line
+
+    which = _analyses(args.analyses)
+    out = _output_paths(args.output)
+    runs = demo_runs()
+    n, t = DEMO_PROBE
+    inputs = sorting_line.make_inputs(n, t, seed=args.seed)
+    source = (f"sorting-line task inputs (tag flashes, gate cues, belt vibration), "
+              f"{n} x {t} steps, seed {args.seed}")
+    path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
+                       keep_going=args.keep_going, quiet=args.quiet,
+                       title="hiddenlens demo: sorting-line runs compared", source=source)
+    print(path)
+    return 0
+
+
+# ---------------------------------------------------------------------- entry point
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``hiddenlens`` command; returns the exit status (0 on success)."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        if args.command == "report":
+            return _cmd_report(args)
+        return _cmd_demo(args)
+    except KeyboardInterrupt:
+        print(f"{PROG}: interrupted; no report written", file=sys.stderr)
+        return 130
+    except (CommandError, ValueError, TypeError, OSError, KeyError, RuntimeError) as err:
+        msg = " ".join(str(err).split()) or type(err).__name__
+        if not isinstance(err, CommandError):
+            msg = f"{type(err).__name__}: {msg}"
+        print(f"{PROG}: error: {msg}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
