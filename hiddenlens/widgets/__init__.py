@@ -8,6 +8,7 @@ imports ipywidgets and matplotlib; the computation core never does.
 from __future__ import annotations
 
 from ._board import StaticView
+from ._comparison import Comparison, compare
 from ._explore import Explorer, explore
 
-__all__ = ["Explorer", "StaticView", "explore"]
+__all__ = ["Comparison", "Explorer", "StaticView", "compare", "explore"]

@@ -91,6 +91,9 @@ class Analysis:
         ``draw(result, axes, view, run, deps)`` draws one run's result on ``axes``.
     n_axes : callable
         ``n_axes(view) -> (number of Axes, projection or None)``.
+    prepare : callable, optional
+        ``prepare(run, options) -> keyword options`` turns control values that are not plain
+        keywords (e.g. "hold the input at its mean") into what the analysis takes.
     """
 
     name: str
@@ -102,6 +105,7 @@ class Analysis:
     part_option: str | None = None
     needs: tuple[str, ...] = ()
     n_axes: Callable[[View], tuple[int, str | None]] = lambda view: (1, None)
+    prepare: Callable[[Run, dict[str, Any]], dict[str, Any]] | None = None
 
     @property
     def caution(self) -> str:
@@ -117,8 +121,11 @@ class Analysis:
 
     def compute(self, run: Run, options: Mapping[str, Any]) -> Any:
         """Run this analysis on ``run`` with ``options`` (the other options at their defaults)."""
+        opts = dict(options)
+        if self.prepare is not None:
+            opts = self.prepare(run, opts)
         out = run_analyses(run.system, run.inputs, which=[self.name],
-                           options={self.name: dict(options)}, seed=run.seed, trace=run.trace)
+                           options={self.name: opts}, seed=run.seed, trace=run.trace)
         return out[self.name]
 
 
@@ -196,6 +203,19 @@ def _draw_memory(result, axes, view, run, deps):
     result.plot(ax=axes[0])
 
 
+def _held_input(run: Run, options: dict[str, Any]) -> dict[str, Any]:
+    held = options.pop("x", "zero")
+    if held == "mean":
+        options["x"] = run.inputs.mean(dim=(0, 1))  # (I,)
+    return options
+
+
+def _memory_inputs(run: Run, options: dict[str, Any]) -> dict[str, Any]:
+    if options.get("mode") == "data":
+        options["inputs"] = run.inputs
+    return options
+
+
 def _accepted_kw(fn: Callable[..., Any], **kw: Any) -> dict[str, Any]:
     names = inspect.signature(fn).parameters
     return {k: v for k, v in kw.items() if k in names}
@@ -234,10 +254,22 @@ register(Analysis(
     "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
     options=(Option("n_starts", "starts", _default("fixed_points", "n_starts", lambda r: 64),
                     high=lambda r: r.trace.batch_size * r.trace.n_steps,
-                    tip="starting states drawn from the trace"),),
-    needs=("pca",), n_axes=_dims))
+                    tip="starting states drawn from the trace"),
+             Option("x", "input held at", lambda r: "zero",
+                    choices=lambda r: [("zero", "zero"), ("mean input", "mean")],
+                    tip="the constant input under which points are fixed")),
+    needs=("pca",), n_axes=_dims, prepare=_held_input))
 register(Analysis(
     "memory", "Memory span", _draw_memory,
-    options=(Option("max_lag", "max lag", _default("memory", "max_lag", lambda r: 40),
+    options=(Option("method", "method", lambda r: "decoding",
+                    choices=lambda r: [("decoding", "decoding"),
+                                       ("perturbation", "perturbation"),
+                                       ("sensitivity", "sensitivity")],
+                    tip="read inputs back from the state, follow an impulse, or use gradients"),
+             Option("mode", "inputs", lambda r: "probe",
+                    choices=lambda r: [("random probe", "probe"), ("these inputs", "data")],
+                    tip="i.i.d. probe inputs (default) or the sequences given to the widget"),
+             Option("max_lag", "max lag", _default("memory", "max_lag", lambda r: 40),
                     high=lambda r: max(1, r.trace.n_steps - 1),
-                    tip="the longest lag the memory curve reaches"),)))
+                    tip="the longest lag the memory curve reaches")),
+    part_option="parts", prepare=_memory_inputs))

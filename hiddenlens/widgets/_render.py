@@ -18,16 +18,22 @@ WIDTH_IN = 9.0  # 900 px: fits a JupyterLab cell at its default width
 HEIGHT_IN = 3.6
 
 
-def new_figure(n_axes: int = 1, *, projection: str | None = None,
-               height: float = HEIGHT_IN) -> tuple[Figure, list[Any]]:
-    """A pyplot-free Agg figure with ``n_axes`` axes side by side (``projection`` e.g. "3d").
+def new_figure(n_axes: int = 1, *, projection: str | None = None, height: float = HEIGHT_IN,
+               ncols: int | None = None,
+               projections: list[str | None] | None = None) -> tuple[Figure, list[Any]]:
+    """A pyplot-free Agg figure with ``n_axes`` axes in rows of ``ncols`` (default: one row).
 
+    ``projection`` (e.g. "3d") applies to every Axes unless ``projections`` gives one each.
     Figures made this way are owned by the caller alone, so worker threads may draw into them
     while the notebook's main thread draws into others.
     """
-    fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI, layout="constrained")
+    ncols = n_axes if ncols is None else max(1, min(ncols, n_axes))
+    nrows = -(-n_axes // ncols)
+    fig = Figure(figsize=(WIDTH_IN, height * nrows), dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
-    axes = [fig.add_subplot(1, n_axes, i + 1, projection=projection) for i in range(n_axes)]
+    projections = projections or [projection] * n_axes
+    axes = [fig.add_subplot(nrows, ncols, i + 1, projection=projections[i])
+            for i in range(n_axes)]
     return fig, axes
 
 

@@ -1,0 +1,311 @@
+"""``compare``: several runs on the same inputs, analyses overlaid, key figures side by side."""
+
+from __future__ import annotations
+
+from collections.abc import Hashable, Mapping, Sequence
+from concurrent.futures import Executor
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+
+from .._compare import RunComparison, _table, linear_cka, plot_cka, plot_overlay
+from .._record import as_system, record
+from .._summary import FIGURES, AnalysisResults, format_figure, key_figures, summary_sentence
+from .._validation import as_sequences
+from . import _render
+from ._board import _ALL, Board, Panel, check_analyses
+from ._jobs import Step
+from ._panels import REGISTRY, Run, View
+
+__all__ = ["Comparison", "compare"]
+
+_OUTPUT = "__output__"  # value of the "top-layer h" choice of the part control
+_OVERLAID = ("spectra", "gradient_flow", "lyapunov", "memory")  # same axes for every run
+_TABLE_TAB = "Key figures"
+
+
+class Comparison(Board):
+    """The widget returned by :func:`compare` (an ``ipywidgets.VBox``).
+
+    Attributes
+    ----------
+    traces : dict
+        Run name -> the trace recorded on the shared inputs.
+    comparison : RunComparison or None
+        The key-figure table, CKA matrix and results, once the "Key figures" tab was computed.
+    """
+
+    def __init__(self, runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
+                 analyses: Sequence[str] | None = None, background: bool = True,
+                 executor: Executor | None = None, seed: int = 0,
+                 **wrap_options: Any) -> None:
+        super().__init__()
+        if not isinstance(runs, Mapping) or len(runs) == 0:
+            raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
+                            "{'before': model_a, 'after': model_b}")
+        names = [str(n) for n in runs]
+        if len(set(names)) != len(names):
+            raise ValueError("run names must be distinct as strings")
+        tabs = check_analyses(analyses)
+        systems = {str(n): as_system(m, **wrap_options) for n, m in runs.items()}
+        sizes = {n: s.input_size for n, s in systems.items()}
+        if len(set(sizes.values())) > 1:
+            raise ValueError(f"runs take different input sizes {sizes}; compare runs that read "
+                             "the same inputs")
+        self._runs = {}
+        for n, system in systems.items():
+            x = as_sequences(inputs, system.input_size, system.dtype,
+                             what=f"run {n!r} ({system.source})")  # (B, T, I)
+            self._runs[n] = Run(n, system, record(system, x, h0), x, None, seed)
+        self.traces = {n: r.trace for n, r in self._runs.items()}
+        self.comparison: RunComparison | None = None
+        self._colors = {n: f"C{i % 10}" for i, n in enumerate(names)}
+        first = self._runs[names[0]].trace
+        B, T = first.batch_size, first.n_steps
+
+        self._shown = {n: widgets.Checkbox(value=True, description=n, indent=False,
+                                           layout=widgets.Layout(width="max-content"))
+                       for n in names}
+        shown_box = widgets.HBox([widgets.Label("runs:"), *self._shown.values()],
+                                 layout=widgets.Layout(gap="0 8px", align_items="center"))
+        self._sample = widgets.Dropdown(
+            options=[("all", None)] + [(str(b), b) for b in range(B)], value=None,
+            description="sample", layout=widgets.Layout(width="140px"),
+            style={"description_width": "initial"})
+        self._window = widgets.IntRangeSlider(
+            value=(0, T), min=0, max=T, description="steps", continuous_update=False,
+            style={"description_width": "initial"}, layout=widgets.Layout(width="300px"))
+        common = set.intersection(*(set(r.trace.parts) for r in self._runs.values()))
+        parts = [("whole state", _ALL), ("top-layer h", _OUTPUT)] + [
+            (p, p) for p in first.parts if p in common and len(common) > 1]
+        self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      style={"description_width": "initial"},
+                                      layout=widgets.Layout(width="max-content"))
+
+        self._table = widgets.HTML()
+        self._table_message = widgets.HTML()
+        self._cka = widgets.Image(format="png", layout=widgets.Layout(max_width="100%",
+                                                                      display="none"))
+        table_box = widgets.VBox([self._table_message, self._table, self._cka])
+        table_box.add_class("hiddenlens-panel-table")
+
+        title = (f"<div style='font-size:15px'><b>Comparing {len(names)} runs</b> "
+                 f"<span style='color:#4a5568'>· {_render.esc(', '.join(names))} · {B} "
+                 f"sequence{'s' if B != 1 else ''} × {T} steps</span></div>")
+        self._build(tabs, title=title, background=background, executor=executor,
+                    extra_tabs=[(_TABLE_TAB, table_box)],
+                    shared=[shown_box, self._sample, self._window, self._part])
+        for box in self._shown.values():
+            box.observe(lambda _: self._guard(self._on_shared), names="value")
+
+    # ------------------------------------------------------------------ hooks
+    def _runs_for(self, panel: Panel | None) -> list[Run]:
+        shown = [r for n, r in self._runs.items() if self._shown[n].value]
+        return shown or list(self._runs.values())[:1]
+
+    def _part_value(self, run: Run) -> Any:
+        value = self._part.value
+        if value == _ALL:
+            return None
+        return run.system.output_part if value == _OUTPUT else value
+
+    def _view(self, panel: Panel) -> View:
+        T = next(iter(self._runs.values())).trace.n_steps
+        t0, t1 = self._window.value
+        t0 = min(t0, T - 1)
+        window = None if (t0, t1) == (0, T) else (t0, max(t1, t0 + 1))
+        return View(sample=self._sample.value, window=window,
+                    extra={k: w.value for k, w in panel.views.items()})
+
+    def _update_shared_state(self) -> None:
+        name = self.current
+        self._sample.disabled = self._window.disabled = name != "pca"
+        analysis = REGISTRY.get(name)
+        self._part.disabled = analysis is None or not (analysis.part_option or any(
+            REGISTRY[d].part_option for d in analysis.needs))
+
+    def _draw_panel(self, panel: Panel):
+        analysis = panel.analysis
+        runs = self._runs_for(panel)
+        view = self._view(panel)
+        name = analysis.name
+        if name in _OVERLAID:
+            fig, axes = _render.new_figure(1)
+            ax = axes[0]
+            for run in runs:
+                plot_overlay(name, {run.name: self._results(name, run)}, ax=ax,
+                             color=self._colors[run.name])
+            return fig
+        # trajectories and fixed points live in each run's own PCA axes: one panel per run
+        _, projection = analysis.n_axes(view)
+        n = len(runs) + (name == "pca")
+        ncols = min(n, 4)
+        height = (3.6 if projection == "3d" else 3.0) if ncols > 2 else 3.6
+        projections = [projection] * len(runs) + [None] * (name == "pca")
+        fig, axes = _render.new_figure(n, ncols=ncols, height=height, projections=projections)
+        for ax, run in zip(axes[:len(runs)], runs, strict=True):
+            deps = {d: self._results(d, run) for d in analysis.needs}
+            analysis.draw(self._results(name, run), [ax], view, run, deps)
+            ax.set_title(run.name, color=self._colors[run.name], fontsize="medium")
+            if ax.get_legend() is not None and len(runs) > 1:
+                ax.get_legend().remove()
+        if name == "pca":  # variance spectra are comparable across runs, the axes are not
+            for run in runs:
+                plot_overlay("pca", {run.name: self._results("pca", run)}, ax=axes[-1],
+                             color=self._colors[run.name])
+            axes[-1].set_title("cumulative variance", fontsize="medium")
+        return fig
+
+    def _summary_html(self) -> str:
+        lines = []
+        for run in self._runs.values():
+            present = {n: r for n in self._panels
+                       if (r := self._results(n, run)) is not None}
+            text = summary_sentence(key_figures(present)) if present else ""
+            dot = f"<span style='color:{self._colors[run.name]}'>●</span>"
+            body = _render.esc(text) if text else "<span style='color:#718096'>no key figures " \
+                "yet</span>"
+            lines.append(f"{dot} <b>{_render.esc(run.name)}</b>: {body}")
+        hint = "<div style='color:#718096'>The 'Key figures' tab computes every analysis and " \
+               "lists the figures side by side.</div>"
+        return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
+                "#3b6ea5;padding:6px 10px;font-size:13.5px;line-height:1.5'>"
+                + "<br>".join(lines) + hint + "</div>")
+
+    # ------------------------------------------------------------------ key-figures tab
+    def _table_steps(self) -> list[Step]:
+        steps, seen = [], set()
+        for name, panel in self._panels.items():
+            for s in self._steps(name, self._runs_for(panel)):
+                if s.key not in seen:
+                    seen.add(s.key)
+                    steps.append(s)
+        return steps
+
+    def _extra_steps(self, seen: set[Hashable]) -> list[Step]:
+        return []  # compute_all already covers every analysis of every shown run
+
+    def _show_extra(self, index: int) -> None:
+        steps = self._table_steps()
+        missing = [s for s in steps if s.key not in self._cache]
+        if missing:
+            self._table_message.value = _render.note_box(
+                f"Computing {len(missing)} analyses for the table ...")
+            pending = self._runner.pending_keys()
+            if not all(s.key in pending for s in missing):
+                self._runner.submit(missing, self._job_done, self._table_failed)
+            return
+        try:
+            with self._draw_lock:
+                self._fill_table()
+        except Exception as exc:
+            self._table_message.value = _render.error_box(exc, what="the key-figure table")
+
+    def _table_failed(self, job, exc: BaseException) -> None:
+        step = job.steps[min(job.finished, len(job.steps) - 1)]
+        self._table_message.value = _render.error_box(exc, what=step.label)
+        self._job_failed(job, exc)
+
+    def _fill_table(self) -> None:
+        runs = self._runs_for(None)
+        names = [r.name for r in runs]
+        results = {}
+        for run in runs:
+            res = AnalysisResults({n: self._results(n, run) for n in self._panels})
+            res.trace = run.trace
+            res.options = {n: dict(self._key(n, run)[2]) for n in self._panels}
+            results[run.name] = res
+        figures = {n: key_figures(results[n]) for n in names}
+        table = _table(names, {r.name: r.system for r in runs}, figures)
+        cka = np.eye(len(runs))
+        for i, a in enumerate(runs):
+            for j in range(i + 1, len(runs)):
+                b = runs[j]
+                try:
+                    v = linear_cka(a.trace.part(a.system.output_part),
+                                   b.trace.part(b.system.output_part))
+                except ValueError:  # constant or non-finite states: no similarity to report
+                    v = float("nan")
+                cka[i, j] = cka[j, i] = v
+        self.comparison = RunComparison(names=tuple(names), table=table, results=results,
+                                        cka=cka, figures=figures)
+        self._table.value = _table_html(table, names, self._colors)
+        fig, axes = _render.new_figure(1, height=min(1.2 + 0.6 * len(runs), 4.5))
+        plot_cka(cka, names, ax=axes[0])
+        self._cka.value = _render.png_bytes(fig)
+        self._cka.layout.display = None
+        self._table_message.value = _render.note_box(
+            f"Differences (Δ) are against the first run shown, {names[0]}. CKA compares the "
+            "top-layer states on these inputs only.")
+
+    def _static_extra(self) -> list[str]:
+        if self.comparison is None:
+            return []
+        names = list(self.comparison.names)
+        return [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
+                _table_html(self.comparison.table, names, self._colors)]
+
+
+def _table_html(table, names: list[str], colors: Mapping[str, str]) -> str:
+    """Runs as columns, key figures as rows, each difference beside its value."""
+    head = "".join(f"<th style='text-align:right;padding:2px 10px;color:{colors[n]}'>"
+                   f"{_render.esc(n)}</th>" for n in names)
+    rows = []
+    for key, (label, unit, _) in FIGURES.items():
+        if key not in table.columns:
+            continue
+        cells = []
+        for i, n in enumerate(names):
+            value = table.loc[n, key]
+            text = format_figure(key, None if _missing(value) else value)
+            delta = table.loc[n, f"\u0394 {key}"] if f"\u0394 {key}" in table.columns else None
+            if i > 0 and delta is not None and not _missing(delta):
+                sign = "+" if float(delta) > 0 else ""
+                text += (f" <span style='color:#718096;font-size:11.5px'>(Δ {sign}"
+                         f"{format_figure(key, delta)})</span>")
+            cells.append(f"<td style='text-align:right;padding:2px 10px'>{text}</td>")
+        what = _render.esc(label + (f" ({unit})" if unit else ""))
+        rows.append(f"<tr><td style='padding:2px 10px'>{what}</td>{''.join(cells)}</tr>")
+    return ("<table class='hiddenlens-table' style='border-collapse:collapse;font-size:13px'>"
+            f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
+
+
+def _missing(value: Any) -> bool:
+    if value is None:
+        return True
+    try:
+        return bool(np.isnan(value))
+    except TypeError:
+        return False
+
+
+def compare(runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
+            analyses: Sequence[str] | None = None, background: bool = True,
+            executor: Executor | None = None, seed: int = 0,
+            **wrap_options: Any) -> Comparison:
+    """An interactive notebook view of several runs side by side, on the same inputs.
+
+    Each analysis tab overlays the runs (spectra, gradient flow, Lyapunov exponents, memory
+    curves on shared axes; trajectories and fixed points in each run's own PCA axes, beside
+    the runs' cumulative variance). The "Key figures" tab lists the figures of every run with
+    their differences from the first run and the linear CKA of the runs' states.
+
+    Parameters
+    ----------
+    runs : Mapping[str, model or system]
+        Run name -> anything :func:`hiddenlens.wrap` accepts (or a system); architectures and
+        state sizes may differ, the input size must be the same.
+    inputs : Tensor or ndarray of shape (B, T, I)
+        The same sequences for every run.
+    h0, analyses, background, executor, seed, **wrap_options
+        As in :func:`hiddenlens.explore`.
+
+    Returns
+    -------
+    Comparison
+        An ``ipywidgets.VBox``. Checkboxes choose the runs shown (computing only those);
+        ``.comparison`` holds the :class:`~hiddenlens.RunComparison` once the table is shown.
+    """
+    return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
+                      executor=executor, seed=seed, **wrap_options)
