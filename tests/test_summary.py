@@ -1,4 +1,4 @@
-"""run_analyses, key figures and the plain-words summary shared by report, comparison and widgets."""
+"""run_analyses, key figures and the plain-words summary shared by report, comparison, widgets."""
 
 import math
 from types import SimpleNamespace
@@ -181,7 +181,8 @@ def test_key_figures_from_the_fixed_attribute_names():
     assert f["participation_ratio"] == 3.5
     assert (f["fixed_points_stable"], f["fixed_points_saddle"], f["fixed_points_unstable"],
             f["fixed_points_marginal"]) == (3, 1, 0, 0)
-    assert_allclose(f["top_singular_value_median"], np.median(res["spectra"].singular_values[..., 0]))
+    top = res["spectra"].singular_values[..., 0]
+    assert_allclose(f["top_singular_value_median"], np.median(top))
     assert f["spectral_radius_median"] == 0.7
     assert key_figures({}) == {}
     only = key_figures({"memory": res["memory"]})
