@@ -1,0 +1,630 @@
+"""Fixed and slow points of a recurrent map under a constant input, and their linear stability."""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+
+from ._guard import preserved
+from ._jacobians import step_jacobians
+from ._record import as_system
+from ._results import frozen_mapping, readonly
+from ._systems import RecurrentSystem
+from ._trace import Trace, _unit_names
+from ._validation import as_float_tensor, check_finite, describe
+
+__all__ = ["FixedPoints", "find_fixed_points", "STABILITY_CLASSES"]
+
+STABILITY_CLASSES = ("stable", "saddle", "unstable", "marginal")
+
+_MARKERS = {
+    "stable": {"marker": "o", "color": "tab:blue"},
+    "saddle": {"marker": "X", "color": "tab:orange"},
+    "unstable": {"marker": "o", "facecolors": "none", "edgecolors": "tab:red"},
+    "marginal": {"marker": "D", "color": "tab:green"},
+}
+
+
+@dataclass(frozen=True, eq=False)
+class FixedPoints:
+    """Fixed and slow points of ``s = F(s, x*)`` found by minimising ``q(s)``, with their stability.
+
+    Points are ordered by ``q``, smallest first.
+
+    Attributes
+    ----------
+    points : ndarray of shape (n, S)
+        Distinct points where ``q(s) = ½‖F(s, x*) − s‖²`` reached a minimum no larger than
+        ``slow_tol``.
+    q : ndarray of shape (n,)
+        ``q`` at each point (``sqrt(2 q)`` is the distance the state moves in one step there).
+    is_fixed : ndarray of shape (n,), bool
+        ``q < tol``: a fixed point; otherwise a slow point (a local minimum of ``q`` above zero).
+    eigenvalues : ndarray of shape (n, S), complex
+        Eigenvalues of the step Jacobian ``dF/ds`` at each point, largest modulus first.
+    stability : ndarray of shape (n,), str
+        "marginal" when any eigenvalue has ``| |λ| − 1 | <= marginal_tol`` (this takes
+        precedence); otherwise "stable" (all ``|λ| < 1``), "unstable" (all ``|λ| > 1``) or
+        "saddle" (some of each).
+    unstable_directions : tuple of n ndarrays of shape (m_i, S)
+        Unit vectors spanning the expanding directions (``|λ| > 1 + marginal_tol``) at each point:
+        the eigenvector of a real eigenvalue, or the real and imaginary parts of the eigenvector
+        of a complex pair (the plane the state spirals out in).
+    support : ndarray of shape (n,), int
+        How many starts ended at each point.
+    final_q : ndarray of shape (n_starts,)
+        ``q`` reached from every start, kept or not (a histogram shows how clear-cut the minima
+        are).
+    x : ndarray of shape (I,)
+        The constant input x*.
+    n_starts : int
+    n_discarded : int
+        Starts that ended with ``q > slow_tol``, in no point above.
+    tol, slow_tol, marginal_tol, distance_tol : float
+        The thresholds used.
+    parts : Mapping[str, slice]
+        Part layout of the state.
+    source : str
+        What the system was made from.
+
+    Notes
+    -----
+    Fixed points belong to the constant input x* chosen: another input gives another map and
+    other points. Slow points are not fixed points: the state still drifts there, only slowly.
+    The points found depend on the starting states: a point that no trajectory comes near is
+    not found, and its absence is no proof that it does not exist. The linearisation describes
+    the dynamics only close to each point.
+    """
+
+    points: np.ndarray
+    q: np.ndarray
+    is_fixed: np.ndarray
+    eigenvalues: np.ndarray
+    stability: np.ndarray
+    unstable_directions: tuple[np.ndarray, ...]
+    support: np.ndarray
+    final_q: np.ndarray
+    x: np.ndarray
+    n_starts: int
+    n_discarded: int
+    tol: float
+    slow_tol: float
+    marginal_tol: float
+    distance_tol: float
+    parts: Mapping[str, slice]
+    source: str
+
+    # ------------------------------------------------------------------ summaries
+    def __len__(self) -> int:
+        return self.points.shape[0]
+
+    @property
+    def counts(self) -> dict[str, int]:
+        """Number of points in each stability class (all four classes, zeros included)."""
+        return {c: int(np.sum(self.stability == c)) for c in STABILITY_CLASSES}
+
+    @property
+    def n_fixed(self) -> int:
+        """Number of points with ``q < tol``."""
+        return int(self.is_fixed.sum())
+
+    @property
+    def n_slow(self) -> int:
+        """Number of slow points (``tol <= q <= slow_tol``)."""
+        return len(self) - self.n_fixed
+
+    @property
+    def spectral_radius(self) -> np.ndarray:
+        """Largest eigenvalue modulus at each point, shape (n,)."""
+        if self.eigenvalues.shape[1] == 0:
+            return np.zeros(len(self))
+        return np.abs(self.eigenvalues[:, 0])
+
+    def to_frame(self):
+        """One row per point: q, kind, stability, expanding directions, support and coordinates."""
+        import pandas as pd
+
+        names = _unit_names(self.parts, self.points.shape[1])
+        frame = pd.DataFrame({
+            "q": self.q,
+            "speed": np.sqrt(2 * self.q),
+            "kind": np.where(self.is_fixed, "fixed", "slow"),
+            "stability": self.stability,
+            "n_unstable": [d.shape[0] for d in self.unstable_directions],
+            "spectral_radius": self.spectral_radius,
+            "support": self.support,
+        })
+        coords = pd.DataFrame(self.points, columns=names)
+        out = pd.concat([frame, coords], axis=1)
+        out.index.name = "point"
+        return out
+
+    def __repr__(self) -> str:
+        counts = ", ".join(f"{k}={v}" for k, v in self.counts.items())
+        return (f"FixedPoints(n={len(self)}, fixed={self.n_fixed}, slow={self.n_slow}, {counts}, "
+                f"starts={self.n_starts}, discarded={self.n_discarded})")
+
+    # ------------------------------------------------------------------ plot
+    def plot(self, ax: Any = None, *, pca: Any = None, dims: int = 2,
+             show_trajectories: bool = True, direction_length: float | None = None,
+             show_slow: bool = True):
+        """Draw the points on the PCA axes of a trace, with their unstable directions.
+
+        Parameters
+        ----------
+        ax : matplotlib Axes, optional
+            Where to draw (3-D axes for ``dims=3``); a new figure by default.
+        pca : PCATrajectories or Trace, optional
+            The axes: a result of :func:`hiddenlens.pca_trajectories`, or a trace to fit one on.
+            Needed when S > 3; for S <= 3 the raw state coordinates are used by default.
+        dims : {2, 3}
+        show_trajectories : bool, default True
+            Draw the PCA's trajectories faintly behind the points.
+        direction_length : float, optional
+            Half-length, in state units, of the segments along unstable directions (default:
+            a tenth of the extent of the drawn data).
+        show_slow : bool, default True
+            Also draw slow points (faded).
+
+        Returns
+        -------
+        matplotlib Axes
+        """
+        from ._pca import PCATrajectories, _check_dims, pca_trajectories
+        from ._plotting import get_axes
+
+        S = self.points.shape[1]
+        if isinstance(pca, Trace):
+            pca = pca_trajectories(pca, n_components=dims)
+        if pca is None:
+            if S > 3:
+                raise ValueError(
+                    f"the state has {S} units; choose the axes to draw on with "
+                    "pca=hiddenlens.pca_trajectories(trace) or pca=trace"
+                )
+            dims = int(dims) if dims in (2, 3) else _check_dims(dims, 3)
+            names = _unit_names(self.parts, S)
+            labels = [names[i] if i < S else "(none)" for i in range(dims)]
+
+            def coords(a: np.ndarray) -> np.ndarray:  # (m, S) -> (m, dims)
+                return np.pad(a, ((0, 0), (0, dims - S)))[:, :dims]
+
+            along = coords
+            background = None
+        else:
+            if not isinstance(pca, PCATrajectories):
+                raise TypeError(f"pca must be a PCATrajectories result or a Trace, got "
+                                f"{type(pca).__name__}")
+            if pca.state_size != S:
+                raise ValueError(f"pca was fitted on states of size {pca.state_size} but the "
+                                 f"points have {S} units; fit it on a trace of this system")
+            dims = _check_dims(dims, pca.n_components)
+            labels = [pca.axis_label(i) for i in range(dims)]
+
+            def coords(a: np.ndarray) -> np.ndarray:
+                return pca.project(a)[:, :dims]
+
+            def along(v: np.ndarray) -> np.ndarray:  # directions: no centring
+                return v[:, pca.columns] @ pca.components[:dims].T
+
+            background = pca.projected[:, :, :dims] if show_trajectories else None
+
+        ax = get_axes(ax, projection="3d" if dims == 3 else None)
+        extent = []
+        if background is not None:
+            _draw_background(ax, background)
+            extent.append(background.reshape(-1, dims))
+        keep = np.ones(len(self), bool) if show_slow else self.is_fixed
+        P = coords(self.points[keep])  # (m, dims)
+        extent.append(P)
+        pts = np.concatenate(extent) if extent else np.zeros((0, dims))
+        span = float(np.max(np.ptp(pts, axis=0))) if pts.shape[0] > 1 else 1.0
+        length = direction_length if direction_length is not None else 0.1 * (span or 1.0)
+        _draw_directions(ax, self, keep, coords, along, length)
+        _draw_points(ax, self, keep, P)
+        ax.set_xlabel(labels[0])
+        ax.set_ylabel(labels[1])
+        if dims == 3:
+            ax.set_zlabel(labels[2])
+        x_desc = "x* = 0" if not np.any(self.x) else "constant input x*"
+        ax.set_title(f"fixed points ({x_desc}): {self.n_fixed} fixed, {self.n_slow} slow")
+        ax.legend(loc="best", fontsize="small")
+        return ax
+
+
+def find_fixed_points(
+    model_or_system: Any,
+    trace: Trace | None,
+    x: Any = None,
+    *,
+    n_starts: int = 256,
+    starts: Any = None,
+    noise: float = 0.0,
+    tol: float | None = None,
+    slow_tol: float = 1e-4,
+    max_iter: int = 200,
+    distance_tol: float = 1e-3,
+    marginal_tol: float = 1e-3,
+    dtype: Any = None,
+    seed: int = 0,
+    progress: bool | None = None,
+    **wrap_options: Any,
+) -> FixedPoints:
+    """Find fixed and slow points of ``s = F(s, x*)`` under a constant input and classify them.
+
+    Minimises ``q(s) = ½‖F(s, x*) − s‖²`` (Sussillo & Barak 2013) from many starting states at
+    once. Each start takes damped Gauss–Newton (Levenberg–Marquardt) steps
+    ``δ = −(AᵀA + μI)⁻¹ Aᵀ r`` with ``r = F(s, x*) − s`` and ``A = dF/ds − I``; far from a
+    minimum this is a short gradient step on ``q``, close to a fixed point a Newton step, so
+    fixed points converge quadratically and slow points (minima with ``q > 0``) are still found.
+    Starts that end at the same point (within ``distance_tol``) are merged, and the Jacobian at
+    each point gives its eigenvalues and stability.
+
+    Parameters
+    ----------
+    model_or_system : RecurrentSystem, nn.Module or callable
+        Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
+    trace : Trace or None
+        Recorded states of this system; starts are sampled from its states (all samples and
+        steps). None only when ``starts`` is given.
+    x : array_like of shape (I,), optional
+        The constant input x*; zeros by default.
+    n_starts : int, default 256
+        Number of starting states sampled from the trace (without replacement when it has as
+        many states).
+    starts : array_like of shape (n_starts, S), optional
+        Explicit starting states instead of samples from the trace.
+    noise : float, default 0.0
+        Standard deviation of Gaussian noise added to the sampled starts (state units).
+    tol : float, optional
+        Points with ``q < tol`` are fixed points; default 1e-12 when computing in float64 and
+        1e-9 in float32.
+    slow_tol : float, default 1e-4
+        Minima with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher are
+        discarded.
+    max_iter : int, default 200
+        Most optimisation steps per start.
+    distance_tol : float, default 1e-3
+        Points closer than this (Euclidean, state units) are merged.
+    marginal_tol : float, default 1e-3
+        Eigenvalues with ``| |λ| − 1 | <= marginal_tol`` make a point "marginal".
+    dtype : torch dtype, optional
+        Precision of the search. Default float64 for systems made from nn modules (a float64
+        copy of the weights) and the system's own dtype for step functions.
+    seed : int, default 0
+        Seed of the local generator that samples the starts and the noise.
+    progress : bool, optional
+        Show a progress bar; by default it appears only when the search takes a few seconds.
+
+    Returns
+    -------
+    FixedPoints
+
+    Notes
+    -----
+    The stability classes read the eigenvalues of the step Jacobian at each point: a
+    discrete-time map contracts along directions with ``|λ| < 1`` and expands along those with
+    ``|λ| > 1``. "marginal" takes precedence: a point with any ``|λ|`` within ``marginal_tol``
+    of 1 is marginal (e.g. a point on a line attractor), whatever its other eigenvalues.
+
+    Fixed points depend on the constant input chosen; slow points are not fixed points; the
+    points found depend on the starts (a point the trace never comes near may be missed).
+
+    References
+    ----------
+    Sussillo & Barak (2013), "Opening the black box: low-dimensional dynamics in
+    high-dimensional recurrent neural networks", Neural Computation 25(3), 626-649.
+    """
+    system = as_system(model_or_system, **wrap_options)
+    work, dt = _working_system(system, dtype)
+    S, I = system.state_size, system.input_size
+    x_star = _constant_input(x, I, dt)  # (I,)
+    s0 = _starts(trace, starts, system, n_starts, noise, seed, dt)  # (n_starts, S)
+    n = s0.shape[0]
+    _check_options(max_iter=max_iter, slow_tol=slow_tol, distance_tol=distance_tol,
+                   marginal_tol=marginal_tol, tol=tol)
+    tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
+    with preserved(system.model if system.kind == "callable" else None):
+        s, q = _minimise(work, s0, x_star.expand(n, I), tol=tol, max_iter=max_iter,
+                         progress=progress)
+        kept = (q <= slow_tol).nonzero().squeeze(1)
+        reps, support = _merge(s[kept], q[kept], distance_tol)
+        P = s[kept][reps]  # (m, S)
+        if P.shape[0]:
+            J = step_jacobians(work, P, x_star.expand(P.shape[0], I)).to(torch.float64)
+        else:
+            J = torch.zeros(0, S, S, dtype=torch.float64)
+    eig, directions, stability = _linearise(J, marginal_tol)
+    q_kept = q[kept][reps]
+    return FixedPoints(
+        points=readonly(P, np.float64),
+        q=readonly(q_kept, np.float64),
+        is_fixed=readonly(q_kept < tol),
+        eigenvalues=readonly(eig),
+        stability=readonly(np.array(stability, dtype="<U8")),
+        unstable_directions=tuple(readonly(d) for d in directions),
+        support=readonly(support, np.int64),
+        final_q=readonly(q, np.float64),
+        x=readonly(x_star, np.float64),
+        n_starts=n,
+        n_discarded=int(n - kept.numel()),
+        tol=tol,
+        slow_tol=float(slow_tol),
+        marginal_tol=float(marginal_tol),
+        distance_tol=float(distance_tol),
+        parts=frozen_mapping(system.parts),
+        source=system.source,
+    )
+
+
+# ---------------------------------------------------------------------- inputs
+def _working_system(system: RecurrentSystem, dtype: Any) -> tuple[RecurrentSystem, torch.dtype]:
+    """The system in the precision of the search (a float64 weight copy for module systems)."""
+    from ._validation import as_dtype
+
+    if dtype is None:
+        dt = torch.float64 if system.layers else system.dtype
+    else:
+        dt = as_dtype(dtype)
+    if dt == system.dtype or not system.layers:
+        return system, dt
+    layers = tuple(dataclasses.replace(
+        layer, w_ih=layer.w_ih.to(dt), w_hh=layer.w_hh.to(dt),
+        b_ih=None if layer.b_ih is None else layer.b_ih.to(dt),
+        b_hh=None if layer.b_hh is None else layer.b_hh.to(dt)) for layer in system.layers)
+    copy = RecurrentSystem(
+        state_size=system.state_size, input_size=system.input_size, parts=system.parts,
+        dtype=dt, kind=system.kind, source=system.source, fingerprint=system.fingerprint,
+        layers=layers, time_reversed=system.time_reversed, model=system.model,
+    )
+    return copy, dt
+
+
+def _constant_input(x: Any, I: int, dt: torch.dtype) -> torch.Tensor:
+    if x is None:
+        return torch.zeros(I, dtype=dt)
+    if isinstance(x, (int, float, list, tuple)):
+        x = np.asarray(x, dtype=np.float64)
+    t = as_float_tensor(x, "x", dt)
+    if t.ndim == 0 and I == 1:
+        t = t.reshape(1)
+    if t.ndim == 2 and t.shape[0] == 1:
+        t = t[0]
+    if tuple(t.shape) != (I,):
+        raise ValueError(f"x is the constant input x* and must have shape ({I},), one value "
+                         f"per input feature, got {describe(x)}")
+    check_finite(t, "x")
+    return t
+
+
+def _starts(trace, starts, system, n_starts, noise, seed, dt) -> torch.Tensor:
+    S = system.state_size
+    if isinstance(noise, bool) or not isinstance(noise, (int, float)) or not noise >= 0:
+        raise ValueError(f"noise must be a number >= 0 (a standard deviation), got {noise!r}")
+    gen = torch.Generator().manual_seed(int(seed))
+    if starts is not None:
+        if isinstance(starts, (list, tuple)):
+            starts = np.asarray(starts, dtype=np.float64)
+        s0 = as_float_tensor(starts, "starts", torch.float64)
+        if s0.ndim == 1 and s0.shape[0] == S:
+            s0 = s0.unsqueeze(0)
+        if s0.ndim != 2 or s0.shape[1] != S or s0.shape[0] == 0:
+            raise ValueError(f"starts must have shape (n_starts, {S}), got {describe(starts)}")
+        check_finite(s0, "starts")
+    else:
+        if not isinstance(trace, Trace):
+            raise TypeError(f"trace must be a hiddenlens Trace of this system to sample starts "
+                            f"from, got {type(trace).__name__}; record one with "
+                            "hiddenlens.record(model, inputs), or pass starts=")
+        if trace.state_size != S:
+            raise ValueError(f"the trace has states of size {trace.state_size} but the "
+                             f"{system.source} system has {S}; record the trace from this "
+                             "system")
+        if isinstance(n_starts, bool) or not isinstance(n_starts, (int, np.integer)) \
+                or n_starts < 1:
+            raise ValueError(f"n_starts must be an integer >= 1, got {n_starts!r}")
+        flat = trace.states.reshape(-1, S)  # (B*T, S), a view
+        finite = np.nonzero(np.isfinite(flat).all(axis=1))[0]  # exploded states cannot start
+        N = finite.size
+        if N == 0:
+            raise ValueError("the trace has no finite state to start from; record a trace "
+                             "whose dynamics do not explode or pass starts=")
+        idx = torch.randperm(N, generator=gen)[:n_starts] if n_starts <= N else \
+            torch.randint(N, (int(n_starts),), generator=gen)
+        s0 = torch.from_numpy(np.array(flat[finite[idx.numpy()]], dtype=np.float64))  # (n, S)
+    if noise > 0:
+        s0 = s0 + noise * torch.randn(s0.shape, generator=gen, dtype=torch.float64)
+    return s0.to(dt)
+
+
+def _check_options(**opts: Any) -> None:
+    it = opts["max_iter"]
+    if isinstance(it, bool) or not isinstance(it, (int, np.integer)) or it < 0:
+        raise ValueError(f"max_iter must be an integer >= 0, got {it!r}")
+    for name in ("slow_tol", "distance_tol", "marginal_tol", "tol"):
+        v = opts[name]
+        if v is None and name == "tol":
+            continue
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v >= 0:
+            raise ValueError(f"{name} must be a number >= 0, got {v!r}")
+
+
+# ---------------------------------------------------------------------- optimisation
+def _residual(system: RecurrentSystem, s: torch.Tensor, X: torch.Tensor) -> torch.Tensor:
+    with torch.no_grad():
+        return system.step(s, X) - s  # (n, S)
+
+
+def _gauss_newton(system, s, X, r) -> tuple[torch.Tensor, torch.Tensor]:
+    """AᵀA (n, S, S) and Aᵀr (n, S) in float64, A = dF/ds − I at states s (n, S), r = F(s) − s."""
+    S = s.shape[1]
+    J = step_jacobians(system, s, X).to(torch.float64)  # (n, S, S)
+    A = J - torch.eye(S, dtype=torch.float64)
+    return A.mT @ A, (A.mT @ r.unsqueeze(-1)).squeeze(-1)
+
+
+def _minimise(system, s0, X, *, tol, max_iter, progress):
+    """Levenberg–Marquardt on q for every start at once; returns final states and q (float64).
+
+    NOTE: [Batched damped Gauss–Newton]
+    The starts do not interact, so q summed over starts has a block-diagonal Hessian and each
+    start solves its own S x S system; all of them go through one batched Cholesky solve. Each
+    start keeps its own damping μ: an accepted step (q fell) divides it by 3, a rejected one
+    multiplies it by 4 and is retried from the same state, without a new Jacobian. Jacobians
+    are recomputed only where a step was accepted. A start leaves the batch when q <= 1e-8 tol
+    (a fixed point, polished) or when it stalls: q fell by less than a relative 1e-10 on three
+    accepted steps in a row, or μ grew past 1e12 times the curvature scale (a minimum with
+    q > 0: a slow point, or the rounding floor of q).
+    """
+    from tqdm.auto import tqdm
+
+    s = s0.clone()  # (n, S)
+    n, S = s.shape
+    eye = torch.eye(S, dtype=torch.float64)
+    r = _residual(system, s, X).to(torch.float64)
+    q = 0.5 * (r * r).sum(dim=1)  # (n,)
+    # below tol a point counts as fixed; a few more (quadratically convergent) steps pin it down
+    polish = tol * 1e-8
+    active = (q > polish).nonzero().squeeze(1)
+    if max_iter == 0 or active.numel() == 0:
+        return s.to(torch.float64), q
+    H, g = _gauss_newton(system, s[active], X[active], r[active])
+    scale = H.diagonal(dim1=1, dim2=2).amax(dim=1).clamp_min(1e-12)  # (a,)
+    mu = 1e-3 * scale
+    stall = torch.zeros(active.numel(), dtype=torch.long)
+    show = {"disable": progress is False, "delay": 0.0 if progress else 2.0}
+    with tqdm(total=max_iter, desc="fixed points", leave=False, **show) as bar:
+        for _ in range(max_iter):
+            L, info = torch.linalg.cholesky_ex(H + mu[:, None, None] * eye)
+            delta = -torch.cholesky_solve(g.unsqueeze(-1), L).squeeze(-1)  # (a, S)
+            trial = s[active] + delta.to(s.dtype)
+            r_t = _residual(system, trial, X[active]).to(torch.float64)
+            q_t = 0.5 * (r_t * r_t).sum(dim=1)
+            q_a = q[active]
+            accept = (info == 0) & torch.isfinite(q_t) & (q_t < q_a)
+            tiny = accept & (q_a - q_t <= 1e-10 * q_a)
+            stall = torch.where(accept, torch.where(tiny, stall + 1, 0), stall)
+            mu = torch.where(accept, (mu / 3).clamp_min(1e-15 * scale), mu * 4)
+            moved = active[accept]
+            s[moved] = trial[accept]
+            q[moved] = q_t[accept]
+            r[moved] = r_t[accept]
+            done = (q[active] <= polish) | (stall >= 3) | (mu > 1e12 * scale)
+            left = ~done
+            refresh = (accept & left)[left]  # among those left, who needs a new Jacobian
+            active, H, g, mu, stall, scale = (a[left] for a in (active, H, g, mu, stall, scale))
+            if refresh.any():
+                at = active[refresh]
+                H[refresh], g[refresh] = _gauss_newton(system, s[at], X[at], r[at])
+            bar.update(1)
+            bar.set_postfix(active=int(active.numel()), refresh=False)
+            if active.numel() == 0:
+                break
+    return s.to(torch.float64), q
+
+
+def _merge(points: torch.Tensor, q: torch.Tensor, distance_tol: float):
+    """Greedy de-duplication, best q first: indices of representatives and starts per one."""
+    order = torch.argsort(q)
+    reps: list[int] = []
+    for i in order.tolist():
+        if reps and bool((torch.linalg.vector_norm(points[reps] - points[i], dim=1)
+                          <= distance_tol).any()):
+            continue
+        reps.append(i)
+    if not reps:
+        return torch.zeros(0, dtype=torch.long), np.zeros(0, dtype=np.int64)
+    rep_t = torch.tensor(reps)
+    nearest = torch.cdist(points, points[rep_t]).argmin(dim=1)  # (n_kept,)
+    support = np.bincount(nearest.numpy(), minlength=len(reps))
+    return rep_t, support
+
+
+# ---------------------------------------------------------------------- linearisation
+def _linearise(J: torch.Tensor, marginal_tol: float):
+    """Eigenvalues (largest |λ| first), expanding directions and stability class per point."""
+    m, S = J.shape[0], J.shape[1]
+    if m == 0:
+        return np.zeros((0, S), complex), [], []
+    vals, vecs = torch.linalg.eig(J)  # (m, S), (m, S, S) with eigenvectors as columns
+    vals, vecs = vals.numpy(), vecs.numpy()
+    order = np.argsort(-np.abs(vals), axis=1, kind="stable")
+    vals = np.take_along_axis(vals, order, axis=1)
+    vecs = np.take_along_axis(vecs, order[:, None, :], axis=2)
+    mod = np.abs(vals)
+    directions, stability = [], []
+    for i in range(m):
+        if np.any(np.abs(mod[i] - 1) <= marginal_tol):
+            stability.append("marginal")
+        elif np.all(mod[i] < 1):
+            stability.append("stable")
+        elif np.all(mod[i] > 1):
+            stability.append("unstable")
+        else:
+            stability.append("saddle")
+        directions.append(_expanding(vals[i], vecs[i], 1 + marginal_tol))
+    return vals, directions, stability
+
+
+def _expanding(vals: np.ndarray, vecs: np.ndarray, threshold: float) -> np.ndarray:
+    """Real unit vectors (m, S) spanning the eigen-directions with |λ| > threshold."""
+    out = []
+    for j in np.nonzero(np.abs(vals) > threshold)[0]:
+        v = vecs[:, j]
+        if abs(vals[j].imag) <= 1e-12 * max(1.0, abs(vals[j])):
+            out.append(v.real)
+        elif vals[j].imag > 0:  # one of each conjugate pair spans the plane
+            out += [v.real, v.imag]
+    S = vecs.shape[0]
+    if not out:
+        return np.zeros((0, S))
+    D = np.array(out)  # (m, S)
+    D /= np.maximum(np.linalg.norm(D, axis=1, keepdims=True), 1e-300)
+    # sign convention: the largest component of each direction is positive
+    flip = np.sign(D[np.arange(D.shape[0]), np.argmax(np.abs(D), axis=1)])
+    return D * flip[:, None]
+
+
+# ---------------------------------------------------------------------- drawing
+def _draw_background(ax, P: np.ndarray) -> None:
+    b, t, dims = P.shape
+    if t < 2:
+        return
+    segs = np.stack([P[:, :-1], P[:, 1:]], axis=2).reshape(b * (t - 1), 2, dims)
+    if dims == 3:
+        from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
+    else:
+        from matplotlib.collections import LineCollection as Collection
+    ax.add_collection(Collection(segs, colors="0.7", linewidths=0.6, alpha=0.5,
+                                 label="trajectories"))
+
+
+def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> None:
+    drawn = False
+    for i in np.nonzero(keep)[0]:
+        D = fp.unstable_directions[i]
+        if D.shape[0] == 0:
+            continue
+        p = coords(fp.points[i : i + 1])[0]  # (dims,)
+        for d in along(D):  # (dims,)
+            seg = np.stack([p - length * d, p + length * d])  # (2, dims)
+            ax.plot(*seg.T, color="tab:red", lw=1.2, label=None if drawn else
+                    "unstable direction")
+            drawn = True
+
+
+def _draw_points(ax, fp: FixedPoints, keep, P: np.ndarray) -> None:
+    stab = fp.stability[keep]
+    fixed = fp.is_fixed[keep]
+    for cls in STABILITY_CLASSES:
+        for is_fixed, alpha, tag in ((True, 1.0, ""), (False, 0.35, " (slow)")):
+            sel = (stab == cls) & (fixed == is_fixed)
+            if not sel.any():
+                continue
+            ax.scatter(*P[sel].T, s=50, alpha=alpha, zorder=4, linewidths=1.5,
+                       label=f"{cls}{tag} ({int(sel.sum())})", **_MARKERS[cls])
