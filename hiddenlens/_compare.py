@@ -15,6 +15,7 @@ from ._summary import (
     FIGURES,
     TITLES,
     AnalysisResults,
+    _nanmedian,
     key_figures,
     run_analyses,
     summary_sentence,
@@ -323,8 +324,7 @@ def _median_over_leading(a: Any) -> np.ndarray:
     arr = np.asarray(a, dtype=float)
     if arr.ndim <= 1:
         return arr.reshape(-1)
-    with np.errstate(all="ignore"):
-        return np.nanmedian(arr.reshape(-1, arr.shape[-1]), axis=0)
+    return np.asarray(_nanmedian(arr.reshape(-1, arr.shape[-1]), axis=0))
 
 
 def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw: Any):

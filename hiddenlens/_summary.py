@@ -11,6 +11,7 @@ import importlib.util
 import inspect
 import math
 import time
+import warnings
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
@@ -342,7 +343,7 @@ def _scalar(v: Any) -> float | None:
         return float(a)
     if a.size == 0:
         return None
-    return float(np.nanmedian(a))
+    return float(_nanmedian(a))
 
 
 def key_figures(results: Mapping[str, Any]) -> dict[str, Any]:
@@ -414,7 +415,7 @@ def key_figures(results: Mapping[str, Any]) -> dict[str, Any]:
     if r is not None:
         sv = np.asarray(r.singular_values, dtype=float)  # (B, T, k)
         if sv.size:
-            fig["top_singular_value_median"] = float(np.nanmedian(sv[..., 0]))
+            fig["top_singular_value_median"] = float(_nanmedian(sv[..., 0]))
         rho = _scalar(_first_attr(r, ("spectral_radius", "spectral_radii")))
         if rho is not None:
             fig["spectral_radius_median"] = rho
@@ -495,14 +496,20 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
 
 
 # ---------------------------------------------------------------------- JSON-ready arrays
+def _nanmedian(a: np.ndarray, axis: Any = None) -> Any:
+    # an all-NaN slice (e.g. a curve that exploded) gives NaN, without a warning
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmedian(a, axis=axis)
+
+
 def _median_curve(a: Any) -> list[float]:
     """Median over every axis but the last: a (..., L) array -> a list of L floats."""
     arr = np.asarray(a, dtype=float)
-    if arr.ndim == 0:
-        return [float(arr)]
+    if arr.ndim <= 1:
+        return [float(v) for v in arr.reshape(-1)]
     flat = arr.reshape(-1, arr.shape[-1])
-    with np.errstate(all="ignore"):
-        return [float(v) for v in np.nanmedian(flat, axis=0)] if flat.shape[0] else []
+    return [float(v) for v in _nanmedian(flat, axis=0)] if flat.shape[0] else []
 
 
 def _floats(a: Any) -> list[Any]:

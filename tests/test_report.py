@@ -1,0 +1,168 @@
+"""The HTML report: self-contained, every analysis and figure present, text escaped, JSON exact."""
+
+import json
+import re
+
+import numpy as np
+import pytest
+import torch
+from numpy.testing import assert_allclose
+
+import hiddenlens
+from hiddenlens import compare_runs, write_report
+from hiddenlens._report import GENERAL_CAUTIONS, report_data
+from hiddenlens._summary import (
+    AnalysisResults,
+    array_summaries,
+    available_analyses,
+    key_figures,
+    run_analyses,
+)
+
+IMG = '<img src="data:image/png;base64,'
+# figures per result in a one-model report (a comparison shows one per run plus an overlay)
+SINGLE_FIGURES = {"spectra": 1, "gradient_flow": 1, "lyapunov": 2, "pca": 2, "fixed_points": 1,
+                  "memory": 1}
+OPTIONS = {"memory": {"max_lag": 5, "n_steps": 300}, "fixed_points": {"n_starts": 8}}
+
+
+def _module(cls, hidden, seed, n_in=3):
+    m = cls(n_in, hidden, batch_first=True, device="meta").to_empty(device="cpu")
+    gen = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        for p in m.parameters():
+            p.copy_(torch.randn(p.shape, generator=gen) * 0.5)
+    return m
+
+
+@pytest.fixture(scope="module")
+def inputs():
+    return np.random.default_rng(0).standard_normal((2, 30, 3)).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def results(inputs):
+    return run_analyses(_module(torch.nn.GRU, 6, 0), inputs, options=OPTIONS)
+
+
+@pytest.fixture(scope="module")
+def single(results, tmp_path_factory):
+    path = tmp_path_factory.mktemp("single") / "sub" / "report.html"
+    out = write_report(results, path, name="my <gru> & co", title="T <script>alert(1)</script>")
+    return out, out.read_text(encoding="utf-8"), json.loads(path.with_suffix(".json").read_text())
+
+
+def _sections(page):
+    return dict(re.findall(r'<section id="analysis-(\w+)">(.*?)</section>', page, flags=re.S))
+
+
+def test_report_is_self_contained(single):
+    path, page, _ = single
+    assert path.name == "report.html" and path.with_suffix(".json").is_file()
+    assert page.startswith("<!DOCTYPE html>") and page.rstrip().endswith("</html>")
+    assert "http://" not in page and "https://" not in page
+    assert "<script" not in page and "<link" not in page and "@import" not in page
+    assert not list(path.parent.glob(".*partial"))
+
+
+def test_report_has_every_analysis_and_figure(single, results):
+    _, page, _ = single
+    sections = _sections(page)
+    assert set(results) == set(available_analyses())
+    for a in results:
+        assert sections[a].count(IMG) == SINGLE_FIGURES[a], a
+    assert page.count(IMG) == sum(SINGLE_FIGURES[a] for a in results)
+    for b64 in re.findall(r'base64,([A-Za-z0-9+/=]+)"', page):
+        import base64
+
+        assert base64.b64decode(b64)[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_report_escapes_text(single):
+    _, page, doc = single
+    assert "<script>alert(1)</script>" not in page
+    assert "T &lt;script&gt;alert(1)&lt;/script&gt;" in page
+    assert "my &lt;gru&gt; &amp; co" in page
+    assert doc["title"] == "T <script>alert(1)</script>"
+    assert list(doc["runs"]) == ["my <gru> & co"]
+
+
+def test_report_states_cautions_and_inputs(single):
+    _, page, doc = single
+    for phrase in ("input statistics", "lower bound", "constant input", "heuristic",
+                   "one basis"):
+        assert phrase in page, phrase
+    for c in GENERAL_CAUTIONS[:-1]:
+        assert c.replace("'", "&#x27;") in page
+    assert "2 sequences of 30 steps with 3 input features" in page
+    assert doc["inputs"]["shape"] == [2, 30, 3]
+    assert doc["inputs"]["description"].startswith("2 sequences of 30 steps")
+
+
+def _json_float(v):
+    return {"nan": float("nan"), "inf": float("inf"), "-inf": float("-inf")}.get(v, v)
+
+
+def test_report_json_equals_the_results(single, results):
+    _, _, doc = single
+    assert doc["format"] == "hiddenlens-report" and doc["hiddenlens_version"] == \
+        hiddenlens.__version__
+    run = doc["runs"]["my <gru> & co"]
+    figs = key_figures(results)
+    assert list(run["key_figures"]) == list(figs)
+    for k, v in figs.items():
+        got = _json_float(run["key_figures"][k])
+        if isinstance(v, str):
+            assert got == v
+        else:
+            assert_allclose(got, v, rtol=0, atol=0, equal_nan=True)
+    assert run["arrays"] == json.loads(json.dumps(array_summaries(results)))
+    # against the library's own result objects, not the summaries
+    if "pca" in results:
+        assert run["arrays"]["pca"]["explained_variance_ratio"] == \
+            results["pca"].explained_variance_ratio.tolist()
+    if "lyapunov" in results:
+        assert run["arrays"]["lyapunov"]["exponents"] == results["lyapunov"].exponents.tolist()
+    assert run["model"]["kind"] == "gru" and run["model"]["state_size"] == 6
+    assert run["options"]["memory"]["max_lag"] == 5
+    assert run["summary"]
+
+
+def test_comparison_report(inputs, tmp_path):
+    runs = {"rnn": _module(torch.nn.RNN, 5, 1), "lstm": _module(torch.nn.LSTM, 4, 2)}
+    comp = compare_runs(runs, inputs, which=["pca"])
+    path = write_report(comp, tmp_path / "cmp.html", json_path=tmp_path / "figs.json")
+    page = path.read_text(encoding="utf-8")
+    doc = json.loads((tmp_path / "figs.json").read_text())
+    assert 'id="similarity"' in page and "Kornblith" in page
+    assert _sections(page)["pca"].count(IMG) == 1 + 2  # overlay + one per run
+    assert page.count(IMG) == 1 + 3  # CKA matrix + PCA
+    assert "\u0394 lstm" in page and "given inputs only" in page
+    assert doc["comparison"]["names"] == ["rnn", "lstm"]
+    assert_allclose(doc["comparison"]["cka"], comp.cka)
+    assert set(doc["runs"]) == {"rnn", "lstm"}
+    assert doc["runs"]["lstm"]["key_figures"] == key_figures(comp.results["lstm"])
+
+
+def test_skipped_analyses_are_noted(inputs, tmp_path):
+    res = run_analyses(_module(torch.nn.RNN, 5, 1), inputs, which=["pca"])
+    res.skipped["memory"] = "not available in this installation"
+    page = write_report(res, tmp_path / "r.html", json_path=False).read_text()
+    assert "Skipped \u2014 not available in this installation" in _sections(page)["memory"]
+    assert not (tmp_path / "r.json").exists()
+
+
+def test_report_data_writes_non_finite_numbers_as_strings(inputs):
+    res = AnalysisResults()
+    res["memory"] = type("M", (), {"lags": np.arange(3), "scores": np.array([1.0, np.nan, 0]),
+                                   "span": 0, "capacity": float("inf")})()
+    doc = report_data(res)
+    run = doc["runs"]["model"]
+    assert run["key_figures"]["memory_capacity"] == "inf"
+    assert run["arrays"]["memory"]["scores"] == [1.0, "nan", 0.0]
+    json.dumps(doc, allow_nan=False)
+
+
+def test_write_report_refuses_other_objects(tmp_path):
+    with pytest.raises(TypeError, match="write_report takes"):
+        write_report([1, 2], tmp_path / "x.html")
