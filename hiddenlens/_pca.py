@@ -277,12 +277,12 @@ def pca_trajectories(
     B, T, _ = trace.states.shape
     X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
     _check_data(X, n_components)
-    pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X)
     spectrum = _covariance_spectrum(X)  # (D,)
     total = spectrum.sum()
     if not total > 0:
         raise ValueError("the selected states do not vary over samples and steps, so they have "
                          "no principal components; record longer or more varied inputs")
+    pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X)
     cumulative = np.minimum(np.cumsum(spectrum) / total, 1.0)  # (D,)
     projected = pca.transform(X).reshape(B, T, n_components)  # (B, T, k)
     return PCATrajectories(
