@@ -44,7 +44,8 @@ def initial_states(system: RecurrentSystem, h0: Any, batch: int) -> torch.Tensor
         if not (system.kind == "lstm" and len(h0) == 2):
             raise TypeError("a tuple h0 is accepted only as (h0, c0) for an LSTM; otherwise pass "
                             f"flat states of shape ({batch}, {S})")
-        h, c = (as_float_tensor(a, n, system.dtype) for a, n in zip(h0, ("h0[0]", "h0[1]")))
+        h = as_float_tensor(h0[0], "h0[0]", system.dtype)
+        c = as_float_tensor(h0[1], "h0[1]", system.dtype)
         return _from_native(system, batch, h, c)
     t = as_float_tensor(h0, "h0", system.dtype)
     if t.ndim == 1 and t.shape[0] == S:
@@ -127,9 +128,10 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
 
 
 def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:
-    finite = np.isfinite(states).all(axis=2)  # (B, T)
-    if finite.all():
+    # fast path: max and min propagate NaN and reach Inf, so both finite means all finite
+    if np.isfinite(states.max()) and np.isfinite(states.min()):
         return
+    finite = np.isfinite(states).all(axis=2)  # (B, T)
     b, t = np.argwhere(~finite).tolist()[0]
     bad = finite.size - int(finite.sum())
     warnings.warn(

@@ -8,6 +8,7 @@ change the user's model; it is a snapshot of the weights at the time of wrapping
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -17,6 +18,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from ._guard import preserved
 from ._results import frozen_mapping
 from ._validation import as_dtype
 
@@ -145,6 +147,9 @@ class RecurrentSystem:
     def step(self, state: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
         """Advance flat states (B, S) by one step with inputs (B, I); differentiable, vmap-able."""
         if self._step_fn is not None:
+            if isinstance(self.model, nn.Module) and self.model.training:
+                with _eval_mode(self.model):
+                    return self._step_fn(state, x)
             return self._step_fn(state, x)
         new = []
         inp = x
@@ -188,55 +193,90 @@ class RecurrentSystem:
 
 
 # ---------------------------------------------------------------------- running
+@contextlib.contextmanager
+def _eval_mode(model: nn.Module):
+    """Dropout off for a step function that is an nn.Module; training flags restored after."""
+    flags = [(m, m.training) for m in model.modules()]
+    try:
+        model.eval()
+        yield
+    finally:
+        for m, flag in flags:
+            m.training = flag
+
+
 def _run_layers(layers, inputs, h0, state_size):
     B, T, _ = inputs.shape
     out = torch.empty(B, T, state_size, dtype=inputs.dtype)  # (B, T, S)
-    x = inputs
+    out_tm = out.transpose(0, 1)  # (T, B, S) view: each layer writes its columns into it
+    # the fused kernels work time-major internally; transposing once here, rather than in every
+    # layer's call, also gives the LSTM cell rebuild contiguous per-step slices
+    x = inputs.transpose(0, 1).contiguous()  # (T, B, I)
     for layer in layers:
         h0_l = h0[:, layer.h].unsqueeze(0).contiguous()  # (1, B, H)
         has_bias = layer.b_ih is not None
         if layer.kind == "lstm":
-            c0 = h0[:, layer.c]
+            c0 = h0[:, layer.c].contiguous()  # (B, H)
             seq, _, _ = torch._VF.lstm(
-                x, (h0_l, c0.unsqueeze(0).contiguous()), layer.params, has_bias, 1, 0.0,
-                False, False, True,
-            )
-            out[:, :, layer.c] = _lstm_cells(layer, x, h0[:, layer.h], seq, c0)
+                x, (h0_l, c0.unsqueeze(0)), layer.params, has_bias, 1, 0.0, False, False, False,
+            )  # seq (T, B, H)
+            _lstm_cells(layer, x, h0_l[0], seq, c0, out_tm[:, :, layer.c])
         else:
             fused = torch._VF.gru if layer.kind == "gru" else (
                 torch._VF.rnn_tanh if layer.kind == "rnn_tanh" else torch._VF.rnn_relu)
-            seq, _ = fused(x, h0_l, layer.params, has_bias, 1, 0.0, False, False, True)
-        out[:, :, layer.h] = seq
+            seq, _ = fused(x, h0_l, layer.params, has_bias, 1, 0.0, False, False, False)
+        out_tm[:, :, layer.h] = seq
         x = seq
     return out
 
 
-def _lstm_cells(layer: LayerWeights, x, h_first, h_seq, c0):
-    """Rebuild c_t for all steps; the fused LSTM kernel returns only c_T.
+# time steps per block of the LSTM cell rebuild: the gates of one block (block * B * 3H floats)
+# stay in cache between the matmul, the activations and the recurrence
+_LSTM_BLOCK = 64
+
+
+def _lstm_cells(layer: LayerWeights, x, h_first, h_seq, c0, out):
+    """Write c_t for all steps into ``out`` (T, B, H); the fused LSTM kernel returns only c_T.
 
     NOTE: [LSTM cell states without a time loop over matmuls]
-    Once h_{t-1} is known for every t (it is the output sequence shifted by one), the i, f, g gate
-    pre-activations of all steps come from two matmuls. What is left, c_t = f_t * c_{t-1} + i_t * g_t,
-    is an elementwise linear recurrence; the loop over it costs a few microseconds per step.
-    The o gate is never needed, so only 3/4 of the weight rows are multiplied.
+    Once h_{t-1} is known for every t (it is the output sequence shifted by one step), the i, f, g
+    gate pre-activations of all steps come from matmuls over the whole sequence:
+    [x_t, h_{t-1}] @ [W_ih; W_hh]^T + b, done as two accumulating ``addmm`` into one buffer (no
+    concatenated copy of the inputs). The o gate is never needed, so only 3/4 of the weight rows
+    are multiplied. What is left, c_t = f_t * c_{t-1} + i_t * g_t, is an elementwise linear
+    recurrence: one fused ``addcmul`` per step. A log-depth associative scan over it does
+    O(T log T) elementwise work and measured slower than this loop for T in the hundreds
+    (benchmarks/bench_record.py). The work runs in blocks of time steps so the gates of a block
+    stay in cache.
     """
     H = layer.hidden_size
-    B, T, _ = h_seq.shape
-    h_prev = torch.cat([h_first.unsqueeze(1), h_seq[:, :-1]], dim=1)  # (B, T, H)
+    T, B, _ = h_seq.shape
     rows = slice(0, 3 * H)  # i, f, g
-    gates = F.linear(x, layer.w_ih[rows], None if layer.b_ih is None else layer.b_ih[rows])
-    gates = gates.add_(F.linear(h_prev, layer.w_hh[rows],
-                                None if layer.b_hh is None else layer.b_hh[rows]))  # (B, T, 3H)
-    i = torch.sigmoid(gates[..., :H])
-    f = torch.sigmoid(gates[..., H:2 * H])
-    u = i.mul_(torch.tanh(gates[..., 2 * H:]))  # i_t * g_t, (B, T, H)
-    f = f.transpose(0, 1).contiguous()  # (T, B, H): contiguous per-step slices
-    u = u.transpose(0, 1).contiguous()
-    c = torch.empty_like(u)
+    w_x = layer.w_ih[rows].t()  # (I, 3H)
+    w_h = layer.w_hh[rows].t()  # (H, 3H)
+    bias = None
+    if layer.b_ih is not None:
+        bias = layer.b_ih[rows] + layer.b_hh[rows]  # (3H,)
+    x_flat = x.reshape(T * B, -1)  # (T*B, I)
+    h_flat = h_seq.reshape(T * B, H)  # (T*B, H): row block t holds h_t
     prev = c0
-    for t in range(T):
-        prev = torch.addcmul(u[t], f[t], prev, out=c[t])
-    return c.transpose(0, 1)  # (B, T, H)
+    for t0 in range(0, T, _LSTM_BLOCK):
+        t1 = min(T, t0 + _LSTM_BLOCK)
+        xs = x_flat[t0 * B:t1 * B]
+        gates = xs @ w_x if bias is None else torch.addmm(bias, xs, w_x)  # (n*B, 3H)
+        if t0 == 0:  # step 0 reads the initial state, the others the output sequence
+            gates[:B].addmm_(h_first, w_h)
+            gates[B:].addmm_(h_flat[:(t1 - 1) * B], w_h)
+        else:
+            gates.addmm_(h_flat[(t0 - 1) * B:(t1 - 1) * B], w_h)
+        gates = gates.view(t1 - t0, B, 3 * H)
+        gates[..., :2 * H].sigmoid_()  # i, f
+        g = gates[..., 2 * H:].tanh_()
+        u = gates[..., :H].mul_(g)  # i_t * g_t
+        f = gates[..., H:2 * H]
+        for k in range(t1 - t0):
+            prev = torch.addcmul(u[k], f[k], prev, out=out[t0 + k])
+    return out
 
 
 def _run_callable(system: RecurrentSystem, inputs, h0, progress):
@@ -244,13 +284,19 @@ def _run_callable(system: RecurrentSystem, inputs, h0, progress):
 
     B, T, _ = inputs.shape
     out = torch.empty(B, T, system.state_size, dtype=system.dtype)  # (B, T, S)
+    xs = inputs.transpose(0, 1).contiguous()  # (T, B, I): contiguous per-step inputs
     s = h0
     show = progress if progress is not None else T >= 20_000
-    for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
-        s = system._step_fn(s, inputs[:, t])
-        if t == 0:
-            _check_step_output(s, B, system.state_size)
-        out[:, t] = s
+    model = system.model if isinstance(system.model, nn.Module) else None
+    # a step function may be a module in training mode or draw random numbers: run it in eval
+    # mode and give torch's global RNG back as it was
+    with preserved(model):
+        for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
+            s = system._step_fn(s, xs[t])
+            if t == 0:
+                _check_step_output(s, B, system.state_size)
+            s = s.to(system.dtype)  # keep the promised dtype if the function promotes
+            out[:, t] = s
     return out
 
 
@@ -375,7 +421,7 @@ def fingerprint(module: Any) -> str:
             h.update(f"{n}:{tuple(t.shape)}:{t.dtype}".encode())
             if t.device.type == "meta":
                 continue
-            h.update(t.cpu().contiguous().view(torch.uint8).numpy().tobytes())
+            h.update(t.cpu().contiguous().reshape(-1).view(torch.uint8).numpy())
     else:
         h.update(getattr(module, "__qualname__", type(module).__qualname__).encode())
     return h.hexdigest()[:16]
@@ -467,8 +513,9 @@ def _wrap_callable(fn, dtype, state_size, input_size, parts, name):
     for pname, sl in parts.items():
         if not isinstance(sl, slice) or sl.step not in (None, 1):
             raise ValueError(f"part {pname!r} must be a contiguous slice, got {sl!r}")
-        lo, hi, _ = sl.indices(state_size)
-        if not 0 <= lo < hi <= state_size:
+        lo = 0 if sl.start is None else sl.start
+        hi = state_size if sl.stop is None else sl.stop
+        if not (isinstance(lo, int) and isinstance(hi, int) and 0 <= lo < hi <= state_size):
             raise ValueError(f"part {pname!r} = {sl!r} lies outside the state of size "
                              f"{state_size}")
         parts[pname] = slice(lo, hi)

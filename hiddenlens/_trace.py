@@ -106,18 +106,42 @@ class Trace:
         """A trace of some sequences and/or a contiguous window of steps.
 
         ``initial`` of a window that starts at step t0 > 0 is the state after step t0 - 1, so the
-        selected trace is again exact.
+        selected trace is again exact: running the system from ``initial`` over ``inputs``
+        reproduces ``states``. ``metadata["window"]`` holds the window [t0, t1) in the steps of the
+        original recording and the batch and step counts are updated.
         """
-        b = np.arange(self.batch_size) if samples is None else np.atleast_1d(np.asarray(samples))
+        B = self.batch_size
+        if samples is None:
+            b = np.arange(B)
+        else:
+            b = np.atleast_1d(np.asarray(samples))
+            if b.dtype == bool:
+                if b.shape != (B,):
+                    raise ValueError(f"a boolean samples mask must have shape ({B},), got "
+                                     f"{b.shape}")
+                b = np.flatnonzero(b)
+            elif b.ndim != 1 or not np.issubdtype(b.dtype, np.integer):
+                raise TypeError("samples must be an int, a sequence of ints or a boolean mask, "
+                                f"got {samples!r}")
+            if b.size and (b.min() < -B or b.max() >= B):
+                raise IndexError(f"samples {b.tolist()} out of range for a trace of {B} "
+                                 "sequences")
         if b.size == 0:
             raise ValueError("samples selects no sequence")
-        steps = steps or slice(None)
+        steps = slice(None) if steps is None else steps
+        if not isinstance(steps, slice):
+            raise TypeError(f"steps must be a slice such as slice(100, 200), got {steps!r}")
         t0, t1, step = steps.indices(self.n_steps)
         if step != 1 or t1 <= t0:
             raise ValueError(f"steps must be a non-empty contiguous slice of range("
                              f"{self.n_steps}), got {steps!r}")
         initial = self.initial[b] if t0 == 0 else self.states[b, t0 - 1]
-        meta = dict(self.metadata, window=[int(t0), int(t1)])
+        offset = int(self.metadata.get("window", (0, 0))[0])
+        meta = dict(self.metadata, window=[offset + t0, offset + t1])
+        if "batch_size" in meta:
+            meta["batch_size"] = int(b.size)
+        if "n_steps" in meta:
+            meta["n_steps"] = t1 - t0
         return Trace(self.states[b, t0:t1], initial, self.inputs[b, t0:t1], self.parts, meta)
 
     # ------------------------------------------------------------------ tables and plots
@@ -152,36 +176,98 @@ class Trace:
 
     # ------------------------------------------------------------------ files
     def save(self, path: str | os.PathLike) -> None:
-        """Write one portable ``.npz`` file: the arrays plus JSON metadata (no pickles)."""
+        """Write one portable ``.npz`` file: the arrays plus JSON metadata (no pickles).
+
+        The file is written under a temporary name and moved into place at the end, so an
+        interrupted save never leaves a half-written trace at ``path``. The name is used as
+        given (no ``.npz`` is appended).
+        """
         meta = dict(self.metadata)
         meta["parts"] = {n: [s.start, s.stop] for n, s in self.parts.items()}
         meta["format"] = FORMAT
         meta["format_version"] = FORMAT_VERSION
-        with open(path, "wb") as fh:
-            np.savez(fh, states=self.states, initial=self.initial, inputs=self.inputs,
-                     metadata=np.array(json.dumps(meta)))
+        try:
+            text = json.dumps(meta, default=_json_default, allow_nan=True)
+        except TypeError as err:
+            raise TypeError(f"trace metadata must be JSON-serialisable to be saved: {err}; "
+                            "keep metadata to numbers, strings, lists and dicts") from None
+        path = os.fspath(path)
+        tmp = f"{path}.partial-{os.getpid()}"
+        try:
+            with open(tmp, "wb") as fh:
+                np.savez(fh, states=self.states, initial=self.initial, inputs=self.inputs,
+                         metadata=np.array(text))
+            os.replace(tmp, path)
+        finally:
+            if os.path.exists(tmp):
+                os.remove(tmp)
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    raise TypeError(f"{type(value).__name__} {value!r} is not JSON-serialisable")
+
+
+_ARRAYS = ("states", "initial", "inputs")
 
 
 def load_trace(path: str | os.PathLike) -> Trace:
-    """Read a trace written by :meth:`Trace.save` (``allow_pickle=False``: safe on untrusted files)."""
+    """Read a trace written by :meth:`Trace.save`.
+
+    Arrays are read with ``np.load(..., allow_pickle=False)`` and metadata is JSON, so loading an
+    untrusted file runs no code from it.
+
+    Raises
+    ------
+    FileNotFoundError
+        When ``path`` does not exist.
+    ValueError
+        When the file is not a hiddenlens trace, is damaged, or comes from a newer hiddenlens.
+    """
+    name = os.fspath(path)
+    if not os.path.exists(name):
+        raise FileNotFoundError(f"no trace file at {name!r}")
+    not_trace = f"{name!r} is not a hiddenlens trace file (written by Trace.save)"
     try:
-        with np.load(path, allow_pickle=False) as data:
-            missing = {"states", "initial", "inputs", "metadata"} - set(data.files)
+        data = np.load(name, allow_pickle=False)
+    except (OSError, ValueError, EOFError) as err:
+        raise ValueError(f"{not_trace}: {err}") from None
+    if not isinstance(data, np.lib.npyio.NpzFile):
+        raise ValueError(f"{not_trace}: it holds a single array, not an .npz archive")
+    try:
+        with data:
+            missing = {*_ARRAYS, "metadata"} - set(data.files)
             if missing:
-                raise ValueError(f"{os.fspath(path)!r} is not a hiddenlens trace file: it lacks "
-                                 f"{', '.join(sorted(missing))}")
-            arrays = {k: data[k] for k in ("states", "initial", "inputs")}
-            meta = json.loads(str(data["metadata"]))
-    except (OSError, ValueError, json.JSONDecodeError) as err:
-        if isinstance(err, ValueError) and "hiddenlens trace" in str(err):
+                raise ValueError(f"{not_trace}: it lacks {', '.join(sorted(missing))}")
+            arrays = {k: data[k] for k in _ARRAYS}
+            meta = json.loads(str(data["metadata"][()]))
+    except (OSError, ValueError, EOFError, KeyError) as err:  # JSONDecodeError is a ValueError
+        if str(err).startswith(not_trace):
             raise
-        raise ValueError(f"cannot read a trace from {os.fspath(path)!r}: {err}") from err
-    if meta.get("format") != FORMAT:
-        raise ValueError(f"{os.fspath(path)!r} is not a hiddenlens trace file")
-    if meta.get("format_version", 0) > FORMAT_VERSION:
-        raise ValueError(f"{os.fspath(path)!r} was written by a newer hiddenlens (format "
-                         f"{meta['format_version']}); upgrade hiddenlens to read it")
-    parts = {n: slice(a, b) for n, (a, b) in meta.pop("parts").items()}
+        raise ValueError(f"{not_trace}: {err}") from None
+    if not isinstance(meta, dict) or meta.get("format") != FORMAT:
+        raise ValueError(not_trace)
+    version = meta.get("format_version")
+    if not isinstance(version, int):
+        raise ValueError(f"{not_trace}: format_version is missing")
+    if version > FORMAT_VERSION:
+        raise ValueError(f"{name!r} was written by a newer hiddenlens (format {version}, this "
+                         f"one reads up to {FORMAT_VERSION}); upgrade hiddenlens to read it")
+    for key, a in arrays.items():
+        if not np.issubdtype(a.dtype, np.floating):
+            raise ValueError(f"{not_trace}: {key} has dtype {a.dtype}, expected float")
+    S = arrays["states"].shape[-1] if arrays["states"].ndim == 3 else -1
+    raw_parts = meta.pop("parts", None)
+    try:
+        parts = {str(n): slice(int(a), int(b)) for n, (a, b) in raw_parts.items()}
+    except (AttributeError, TypeError, ValueError):
+        raise ValueError(f"{not_trace}: malformed parts {raw_parts!r}") from None
+    for n, sl in parts.items():
+        if not 0 <= sl.start < sl.stop <= S:
+            raise ValueError(f"{not_trace}: part {n!r} = {sl} lies outside the state of size {S}")
     meta.pop("format")
     meta.pop("format_version")
     return Trace(parts=parts, metadata=meta, **arrays)

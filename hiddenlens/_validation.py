@@ -1,4 +1,7 @@
-"""Checks at the public boundary, with one message form: what was wrong, what was expected, how to fix."""
+"""Checks at the public boundary, in one message form.
+
+Each message says what was wrong, what was expected and how to fix it.
+"""
 
 from __future__ import annotations
 
@@ -58,6 +61,9 @@ def as_float_tensor(x: Any, name: str, dtype: torch.dtype) -> torch.Tensor:
                 f"{name} must hold floating-point numbers, got a numpy array of dtype {x.dtype}; "
                 f"convert it explicitly, e.g. {name}.astype(np.float32) (one-hot encode tokens)"
             )
+        if not x.dtype.isnative or x.dtype.itemsize > 8:
+            # torch reads native-order float16/32/64 only (no big-endian data, no longdouble)
+            x = x.astype(np.float64)
         t = torch.from_numpy(np.ascontiguousarray(x))
     elif isinstance(x, torch.Tensor):
         if not torch.is_floating_point(x):

@@ -1,0 +1,88 @@
+"""Shared test fixtures: seeded generators and a check that a user's model was left as it was."""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+import torch
+
+os.environ.setdefault("MPLBACKEND", "Agg")  # no display in tests; matplotlib is not imported here
+
+
+@pytest.fixture
+def gen() -> torch.Generator:
+    """A seeded torch generator (tests never touch torch's global RNG)."""
+    return torch.Generator().manual_seed(0)
+
+
+class ModelSnapshot:
+    """Everything hiddenlens promises to leave alone on a module, captured for comparison."""
+
+    def __init__(self, model: torch.nn.Module) -> None:
+        self.model = model
+        self.params = {n: p.detach().clone() for n, p in model.named_parameters()}
+        self.param_ids = {n: id(p) for n, p in model.named_parameters()}
+        self.buffers = {n: b.detach().clone() for n, b in model.named_buffers()}
+        self.training = {n: m.training for n, m in model.named_modules()}
+        self.requires_grad = {n: p.requires_grad for n, p in model.named_parameters()}
+        self.grads = {n: (p.grad, None if p.grad is None else p.grad.clone())
+                      for n, p in model.named_parameters()}
+        self.hooks = {n: self._hooks(m) for n, m in model.named_modules()}
+        self.param_hooks = {n: dict(p._backward_hooks or {})
+                            for n, p in model.named_parameters()}
+        self.rng = torch.get_rng_state()
+
+    @staticmethod
+    def _hooks(m: torch.nn.Module) -> dict:
+        return {k: dict(v) for k, v in vars(m).items() if "hook" in k and isinstance(v, dict)}
+
+    def assert_unchanged(self) -> None:
+        m = self.model
+        params = dict(m.named_parameters())
+        assert params.keys() == self.params.keys()
+        for n, p in params.items():
+            assert id(p) == self.param_ids[n], f"parameter {n} was replaced"
+            # bitwise: compare the raw bytes, not values (NaN-safe, -0.0-safe)
+            assert p.dtype == self.params[n].dtype
+            assert torch.equal(p.detach().view(torch.uint8) if p.dim() else p.detach(),
+                               self.params[n].view(torch.uint8) if p.dim() else self.params[n])
+            assert p.requires_grad == self.requires_grad[n], f"{n}.requires_grad changed"
+            grad, value = self.grads[n]
+            assert p.grad is grad, f"{n}.grad was replaced"
+            if grad is not None:
+                assert torch.equal(p.grad, value), f"{n}.grad values changed"
+            assert dict(p._backward_hooks or {}) == self.param_hooks[n]
+        for n, b in m.named_buffers():
+            assert torch.equal(b, self.buffers[n]), f"buffer {n} changed"
+        assert {n: x.training for n, x in m.named_modules()} == self.training
+        assert {n: self._hooks(x) for n, x in m.named_modules()} == self.hooks
+        assert torch.equal(torch.get_rng_state(), self.rng), "torch's global RNG state changed"
+
+
+@pytest.fixture
+def snapshot():
+    """``snapshot(model)`` captures a model; call ``.assert_unchanged()`` on the result later."""
+    return ModelSnapshot
+
+
+def build(cls: type, *args, gen: torch.Generator, scale: float | None = None, **kwargs):
+    """Construct a torch module without touching the global RNG; weights drawn from ``gen``.
+
+    Weights are uniform in [-scale, scale] (default 1/sqrt(hidden_size), torch's own range).
+    """
+    with torch.random.fork_rng(devices=[]):
+        module = cls(*args, **kwargs)
+    if scale is None:
+        scale = 1.0 / max(getattr(module, "hidden_size", 1), 1) ** 0.5
+    with torch.no_grad():
+        for p in module.parameters():
+            if p.device.type != "meta":
+                p.copy_((torch.rand(p.shape, generator=gen, dtype=p.dtype) * 2 - 1) * scale)
+    return module
+
+
+@pytest.fixture
+def make():
+    """``make(nn.GRU, 3, 5, gen=gen, ...)``: a module built with ``build``."""
+    return build
