@@ -175,7 +175,7 @@ class FixedPoints:
         -------
         matplotlib Axes
         """
-        from ._pca import PCATrajectories, _check_dims, pca_trajectories
+        from ._pca import PCATrajectories, _check_dims, _set_limits, pca_trajectories
         from ._plotting import get_axes
 
         S = self.points.shape[1]
@@ -225,8 +225,10 @@ class FixedPoints:
         pts = np.concatenate(extent) if extent else np.zeros((0, dims))
         span = float(np.max(np.ptp(pts, axis=0))) if pts.shape[0] > 1 else 1.0
         length = direction_length if direction_length is not None else 0.1 * (span or 1.0)
-        _draw_directions(ax, self, keep, coords, along, length)
+        extent += _draw_directions(ax, self, keep, coords, along, length)
         _draw_points(ax, self, keep, P)
+        if len(pts):
+            _set_limits(ax, extent, dims)
         ax.set_xlabel(labels[0])
         ax.set_ylabel(labels[1])
         if dims == 3:
@@ -604,8 +606,8 @@ def _draw_background(ax, P: np.ndarray) -> None:
                                  label="trajectories"))
 
 
-def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> None:
-    drawn = False
+def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> list[np.ndarray]:
+    drawn = []
     for i in np.nonzero(keep)[0]:
         D = fp.unstable_directions[i]
         if D.shape[0] == 0:
@@ -615,7 +617,8 @@ def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> None:
             seg = np.stack([p - length * d, p + length * d])  # (2, dims)
             ax.plot(*seg.T, color="tab:red", lw=1.2, label=None if drawn else
                     "unstable direction")
-            drawn = True
+            drawn.append(seg)
+    return drawn
 
 
 def _draw_points(ax, fp: FixedPoints, keep, P: np.ndarray) -> None:

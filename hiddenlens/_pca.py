@@ -419,7 +419,9 @@ def _mark_ends(ax, drawn: list[np.ndarray]) -> list:
 def _set_limits(ax, drawn: list[np.ndarray], dims: int) -> None:
     pts = np.concatenate([P.reshape(-1, dims) for P in drawn])
     lo, hi = pts.min(axis=0), pts.max(axis=0)
-    pad = 0.05 * np.maximum(hi - lo, 1e-12)
+    span = hi - lo
+    big = float(span.max()) or 1.0
+    pad = np.where(span > 1e-9 * big, 0.05 * span, 0.5 * big)  # a flat axis gets room too
     setters = (ax.set_xlim, ax.set_ylim) + ((ax.set_zlim,) if dims == 3 else ())
     for i, setter in enumerate(setters):
         setter(lo[i] - pad[i], hi[i] + pad[i])
