@@ -60,7 +60,7 @@ def build_parser() -> argparse.ArgumentParser:
     src.add_argument("--probe", metavar="N,T", type=_probe_shape,
                      help="N i.i.d. standard-normal probe sequences of T steps (default "
                           f"{DEFAULT_PROBE[0]},{DEFAULT_PROBE[1]} when --inputs is not given)")
-    _common_options(rep, default_output="hiddenlens-report")
+    _common_options(rep, default_output="hiddenlens-report", threads=None)
     rep.add_argument("--title", help="title of the report")
 
     demo = sub.add_parser(
@@ -68,11 +68,12 @@ def build_parser() -> argparse.ArgumentParser:
         description="Compare the shipped example runs (tanh RNNs trained from three recurrent "
                     "init gains and a GRU, all on the sorting-line task) and write the report.",
     )
-    _common_options(demo, default_output="hiddenlens-demo")
+    _common_options(demo, default_output="hiddenlens-demo", threads=1)
     return parser
 
 
-def _common_options(p: argparse.ArgumentParser, *, default_output: str) -> None:
+def _common_options(p: argparse.ArgumentParser, *, default_output: str,
+                    threads: int | None) -> None:
     p.add_argument("-o", "--output", default=default_output, metavar="PATH",
                    help="folder for report.html and report.json, or a path ending in .html "
                         f"(default: ./{default_output})")
@@ -85,7 +86,22 @@ def _common_options(p: argparse.ArgumentParser, *, default_output: str) -> None:
     p.add_argument("--keep-going", action="store_true",
                    help="leave out an analysis that fails (noted in the report) instead of "
                         "stopping")
+    p.add_argument("--threads", type=_positive_int, default=threads, metavar="N",
+                   help="torch threads for the analyses (default: "
+                        + ("torch's default" if threads is None else
+                           f"{threads}; the example models are small, so one thread is fastest")
+                        + ")")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress lines on stderr")
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive integer, got {text!r}")
+    return value
 
 
 def _probe_shape(text: str) -> tuple[int, int]:
@@ -384,6 +400,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
+    threads = None
+    if args.threads is not None:
+        import torch
+
+        threads = torch.get_num_threads()
+        torch.set_num_threads(args.threads)
     try:
         if args.command == "report":
             return _cmd_report(args)
@@ -397,6 +419,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             msg = f"{type(err).__name__}: {msg}"
         print(f"{PROG}: error: {msg}", file=sys.stderr)
         return 1
+    finally:
+        if threads is not None:  # main() may be called in a longer-lived process
+            import torch
+
+            torch.set_num_threads(threads)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -101,11 +101,14 @@ def test_report_single_model_from_npz_key(weights, tmp_path, capsys):
 
 
 def test_report_comparison_with_probe_and_names(weights, tmp_path, capsys):
+    threads = torch.get_num_threads()
     code = cli.main(["report", "--model", FACTORY, "--weights", str(weights / "gain0.5.pt"),
                      str(weights / "gain2.0.pt"), "--names", "low", "high", "--probe", "2,25",
-                     "--analyses", "pca", "--seed", "3", "-q", "-o", str(tmp_path / "cmp")])
+                     "--analyses", "pca", "--seed", "3", "-q", "--threads", "1",
+                     "-o", str(tmp_path / "cmp")])
     cap = capsys.readouterr()
     assert code == 0 and cap.err == ""
+    assert torch.get_num_threads() == threads  # restored for the calling process
     path = tmp_path / "cmp" / "report.html"
     assert cap.out.strip() == str(path)
     page = path.read_text()
