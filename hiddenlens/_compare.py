@@ -378,12 +378,17 @@ def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw
                 lags = np.asarray(r.lags, dtype=float).reshape(-1)[: y.size]
                 ax.plot(lags, y[: lags.size], marker=".", label=n, **kw)
                 ax.set_xlabel("lag k (steps)")
-                ax.set_ylabel("memory score")
+                ax.set_ylabel(str(getattr(r, "score_name", None) or "memory score"))
             else:
                 raise ValueError(f"unknown analysis {analysis!r}; expected one of "
                                  f"{', '.join(ANALYSES)}")
     if analysis == "lyapunov":
         ax.axhline(0.0, color="0.5", lw=0.8)
+    if analysis == "memory":
+        levels = {float(getattr(results[n], "threshold", np.nan)) for n in names}
+        raw = all(getattr(results[n], "chance", None) is None for n in names)
+        if raw and len(levels) == 1 and np.isfinite(next(iter(levels))):
+            ax.axhline(next(iter(levels)), ls="--", color="0.5", lw=0.8, label="span threshold")
     ax.set_title(TITLES.get(analysis, analysis))
     ax.legend(fontsize="small")
     return ax
