@@ -132,7 +132,8 @@ def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:
     if np.isfinite(states.max()) and np.isfinite(states.min()):
         return
     finite = np.isfinite(states).all(axis=2)  # (B, T)
-    b, t = np.argwhere(~finite).tolist()[0]
+    t = int(np.flatnonzero(~finite.all(axis=0))[0])  # the earliest step of any sample
+    b = int(np.flatnonzero(~finite[:, t])[0])
     bad = finite.size - int(finite.sum())
     warnings.warn(
         f"states of {system.source} became NaN/Inf at step t={t} of sample b={b} (first "

@@ -115,6 +115,8 @@ class Trace:
             b = np.arange(B)
         else:
             b = np.atleast_1d(np.asarray(samples))
+            if b.size == 0:
+                raise ValueError("samples selects no sequence")
             if b.dtype == bool:
                 if b.shape != (B,):
                     raise ValueError(f"a boolean samples mask must have shape ({B},), got "
@@ -233,8 +235,9 @@ def load_trace(path: str | os.PathLike) -> Trace:
     not_trace = f"{name!r} is not a hiddenlens trace file (written by Trace.save)"
     try:
         data = np.load(name, allow_pickle=False)
-    except (OSError, ValueError, EOFError) as err:
-        raise ValueError(f"{not_trace}: {err}") from None
+    except (OSError, ValueError, EOFError):
+        # numpy reads unknown bytes as a pickle, which allow_pickle=False refuses
+        raise ValueError(f"{not_trace}: it is not an .npz archive") from None
     if not isinstance(data, np.lib.npyio.NpzFile):
         raise ValueError(f"{not_trace}: it holds a single array, not an .npz archive")
     try:

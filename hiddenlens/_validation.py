@@ -29,6 +29,8 @@ def as_dtype(dtype: Any) -> torch.dtype:
     except (KeyError, TypeError):
         pass
     try:
+        if dtype is None:  # np.dtype(None) would quietly mean float64
+            raise TypeError
         return _DTYPES[np.dtype(dtype).type]
     except (KeyError, TypeError):
         raise ValueError(
