@@ -100,6 +100,14 @@ def _dropdown(option: Option, run: Run) -> widgets.Widget:
                             layout=widgets.Layout(width="max-content"))
 
 
+def row(children: Sequence[widgets.Widget], space: str = "16px") -> widgets.HBox:
+    """Controls in a wrapping row, ``space`` apart."""
+    for w in children:
+        w.layout.margin = f"2px {space} 2px 0"
+    return widgets.HBox(list(children), layout=widgets.Layout(flex_flow="row wrap",
+                                                              align_items="center"))
+
+
 def make_control(option: Option, run: Run) -> widgets.Widget:
     return _dropdown(option, run) if option.choices is not None else _int_box(option, run)
 
@@ -120,6 +128,7 @@ class Board(widgets.VBox):
         self._runner = Runner(self._cache, background=background, executor=executor,
                               on_progress=self._on_progress)
         self._draw_lock = threading.RLock()
+        self._layouts = _render.LayoutMemo()
         self.last_draw_seconds = float("nan")
         first = next(iter(self._runs.values()))
 
@@ -149,8 +158,7 @@ class Board(widgets.VBox):
         self._run_all.on_click(lambda _: self._guard(self.compute_all))
         status_row = widgets.HBox([self._bar, self._status, self._run_all, self._cancel],
                                   layout=widgets.Layout(align_items="center", width="100%"))
-        controls = widgets.HBox(self._shared, layout=widgets.Layout(
-            flex_flow="row wrap", align_items="center", gap="4px 16px", margin="2px 0"))
+        controls = row(self._shared)
 
         self.children = [self._title, self._summary, controls, self._tabs, status_row]
         self.layout = widgets.Layout(width="100%", max_width="980px")
@@ -171,9 +179,8 @@ class Board(widgets.VBox):
                                                                    height="auto"))
         message = widgets.HTML()
         caution = widgets.HTML(_render.note_box(analysis.caution) if analysis.caution else "")
-        row = widgets.HBox([*options.values(), *views.values()], layout=widgets.Layout(
-            flex_flow="row wrap", align_items="center", gap="4px 16px"))
-        box = widgets.VBox([row, message, image, caution])
+        controls = row([*options.values(), *views.values()])
+        box = widgets.VBox([controls, message, image, caution])
         box.add_class(f"hiddenlens-panel-{analysis.name}")
         panel = Panel(analysis, options, views, image, message, box)
         for w in options.values():
@@ -309,8 +316,9 @@ class Board(widgets.VBox):
                 return
             t0 = time.perf_counter()
             try:
-                fig = self._draw_panel(panel)
-                png = _render.png_bytes(fig)
+                view = self._view(panel)
+                png = self._layouts.render(self._layout_key(panel, view),
+                                           lambda layout: self._draw_panel(panel, view, layout))
             except Exception as exc:  # shown in the tab, never lost
                 self._show_error(panel, exc, what=f"drawing {panel.analysis.label.lower()}")
                 return
@@ -327,8 +335,14 @@ class Board(widgets.VBox):
     def _results(self, name: str, run: Run) -> Any:
         return self._cache.get(self._key(name, run))
 
+    def _layout_key(self, panel: Panel, view: View) -> Hashable:
+        # what decides the arrangement of Axes, colour bars and legends (not the data shown)
+        return (panel.analysis.name, tuple(sorted(view.extra.items())), view.sample is None,
+                tuple(r.name for r in self._runs_for(panel)))
+
     # ------------------------------------------------------------------ subclass hooks
-    def _draw_panel(self, panel: Panel):
+    def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
+        """A Figure of ``panel`` drawn with ``view`` (``layout`` as in ``new_figure``)."""
         raise NotImplementedError
 
     def _summary_html(self) -> str:
@@ -406,7 +420,7 @@ class Board(widgets.VBox):
     @property
     def images(self) -> dict[str, bytes]:
         """The PNG bytes each tab shows now (empty for tabs not drawn yet)."""
-        return {name: p.image.value for name, p in self._panels.items()}
+        return {name: bytes(p.image.value) for name, p in self._panels.items()}
 
     def close(self) -> None:
         self._runner.shutdown()
@@ -444,7 +458,7 @@ class Board(widgets.VBox):
             elif compute and all(s.key in self._cache for s in steps):
                 try:
                     with self._draw_lock:
-                        png = _render.png_bytes(self._draw_panel(panel))
+                        png = _render.png_bytes(self._draw_panel(panel, self._view(panel)))
                 except Exception as exc:
                     parts.append(_render.error_box(exc, what=panel.analysis.label))
             if png:

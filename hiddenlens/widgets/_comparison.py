@@ -14,7 +14,7 @@ from .._record import as_system, record
 from .._summary import FIGURES, AnalysisResults, format_figure, key_figures, summary_sentence
 from .._validation import as_sequences
 from . import _render
-from ._board import _ALL, Board, Panel, check_analyses
+from ._board import _ALL, Board, Panel, check_analyses, row
 from ._jobs import Step
 from ._panels import REGISTRY, Run, View
 
@@ -67,8 +67,7 @@ class Comparison(Board):
         self._shown = {n: widgets.Checkbox(value=True, description=n, indent=False,
                                            layout=widgets.Layout(width="max-content"))
                        for n in names}
-        shown_box = widgets.HBox([widgets.Label("runs:"), *self._shown.values()],
-                                 layout=widgets.Layout(gap="0 8px", align_items="center"))
+        shown_box = row([widgets.Label("runs:"), *self._shown.values()], space="8px")
         self._sample = widgets.Dropdown(
             options=[("all", None)] + [(str(b), b) for b in range(B)], value=None,
             description="sample", layout=widgets.Layout(width="140px"),
@@ -125,13 +124,12 @@ class Comparison(Board):
         self._part.disabled = analysis is None or not (analysis.part_option or any(
             REGISTRY[d].part_option for d in analysis.needs))
 
-    def _draw_panel(self, panel: Panel):
+    def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
         analysis = panel.analysis
         runs = self._runs_for(panel)
-        view = self._view(panel)
         name = analysis.name
         if name in _OVERLAID:
-            fig, axes = _render.new_figure(1)
+            fig, axes = _render.new_figure(1, layout=layout)
             ax = axes[0]
             for run in runs:
                 plot_overlay(name, {run.name: self._results(name, run)}, ax=ax,
@@ -143,7 +141,8 @@ class Comparison(Board):
         ncols = min(n, 4)
         height = (3.6 if projection == "3d" else 3.0) if ncols > 2 else 3.6
         projections = [projection] * len(runs) + [None] * (name == "pca")
-        fig, axes = _render.new_figure(n, ncols=ncols, height=height, projections=projections)
+        fig, axes = _render.new_figure(n, ncols=ncols, height=height, projections=projections,
+                                       layout=layout)
         for ax, run in zip(axes[:len(runs)], runs, strict=True):
             deps = {d: self._results(d, run) for d in analysis.needs}
             analysis.draw(self._results(name, run), [ax], view, run, deps)

@@ -106,11 +106,10 @@ class Explorer(Board):
             REGISTRY[d].part_option for d in analysis.needs))
         self._part.disabled = len(self._part.options) == 1 or not takes_part
 
-    def _draw_panel(self, panel: Panel):
+    def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
         analysis, run = panel.analysis, self.run
-        view = self._view(panel)
         n, projection = analysis.n_axes(view)
-        fig, axes = _render.new_figure(n, projection=projection,
+        fig, axes = _render.new_figure(n, projection=projection, layout=layout,
                                        height=4.6 if projection == "3d" else _render.HEIGHT_IN)
         deps = {d: self._results(d, run) for d in analysis.needs}
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
