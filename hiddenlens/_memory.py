@@ -635,9 +635,11 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
             best_a = np.zeros(Y.shape[1])
             for a in alphas:
                 d = 1.0 / (lam + a)  # (S,)
-                h = 1.0 / n + P2 @ d  # (n,)
-                loo = (Yc - P @ (d[:, None] * A)) / (1.0 - h)[:, None]
-                err = (loo**2).sum(axis=0)  # (m,)
+                inv = 1.0 / (1.0 - (1.0 / n + P2 @ d))  # 1 / (1 - h_ii), (n,)
+                loo = P @ (d[:, None] * A)  # fitted values, (n, m)
+                np.subtract(Yc, loo, out=loo)
+                loo *= inv[:, None]  # leave-one-out residuals
+                err = np.einsum("ij,ij->j", loo, loo)  # (m,)
                 if categorical:  # one penalty per lag, shared by its class columns
                     err = np.repeat(err.reshape(len(lags), width).sum(axis=1), width)
                 better = err < best
@@ -776,16 +778,19 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
 
     NOTE: [Input sensitivity by forward products, in time chunks, on a log scale]
     For a source step tau, Q_0 = B_tau = dF/dx at step tau and Q_k = J_{tau+k} Q_{k-1} with
-    J_t = dF/ds at step t, so Q_k = d s_{tau+k} / d x_tau. All sources alive at step t (the
-    last K + 1) are advanced by one batched product with J_t, held in a buffer ordered by
-    lag. J and B come from hiddenlens._jacobians in chunks of steps, never for all steps at
-    once. Each Q is kept at unit norm with its log scale carried separately, so long products
-    neither overflow nor underflow; means over sources are taken with logsumexp.
+    J_t = dF/ds at step t, so Q_k = d s_{tau+k} / d x_tau. The sources alive at step t (the
+    last K + 1) sit side by side in one (S, (K + 1) * I) block per sequence, source tau in
+    slot tau mod (K + 1), so one batched matmul with J_t advances them all and the new source
+    overwrites the slot of the one that has just reached lag K. J and B come from
+    hiddenlens._jacobians in chunks of steps, never for all steps at once. Each Q is kept at
+    unit norm with its log scale carried separately, so long products neither overflow nor
+    underflow; means over sources are taken with logsumexp. Cost: B * T * (K + 1) * S^2 * I.
     """
     from tqdm.auto import tqdm
 
     K, I, S = opts["max_lag"], trace.input_size, trace.state_size
     B, T = trace.batch_size, trace.n_steps
+    L = K + 1
     t_a = opts["washout"]
     t_b = T - K  # sources tau in [t_a, t_b): every lag 0..K is observed
     if t_b <= t_a:
@@ -798,36 +803,42 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     scale_x = torch.as_tensor(in_std, dtype=torch.float64)  # per unit of input spread
     prev = torch.as_tensor(trace.previous_states(), dtype=system.dtype)  # (B, T, S)
     x = torch.tensor(trace.inputs, dtype=system.dtype)  # (B, T, I)
-    cols_t = torch.as_tensor(cols)
-    Q = torch.zeros(B, K + 1, S, I, dtype=torch.float64)  # Q[:, j]: source t - j at lag j
-    logc = torch.full((B, K + 1), -math.inf, dtype=torch.float64)
-    lognorm = torch.full((B, n_src, K + 1), -math.inf, dtype=torch.float64)
+    cols_t = None if cols.size == S else torch.as_tensor(cols)
+    Q = torch.zeros(B, S, L, I, dtype=torch.float64)  # slot j: source tau = j mod L
+    logc = torch.full((B, L), -math.inf, dtype=torch.float64)
+    lognorm = torch.full((B, n_src, L), -math.inf, dtype=torch.float64)
     chunk = max(1, int(_CHUNK_BYTES // max(1, B * S * (S + I) * 8)))
-    starts = range(t_a, T, chunk)
-    show = progress if progress is not None else B * (T - t_a) * S * S * (K + 1) > 2e10
-    lag = torch.arange(K + 1)
-    for c0 in tqdm(starts, disable=not show, desc="input sensitivity", leave=False):
+    show = progress if progress is not None else B * (T - t_a) * S * S * L * I > 2e10
+    slots = torch.arange(L)
+    for c0 in tqdm(range(t_a, T, chunk), disable=not show, desc="input sensitivity",
+                   leave=False):
         c1 = min(T, c0 + chunk)
         p = prev[:, c0:c1].reshape(-1, S)
         xi = x[:, c0:c1].reshape(-1, I)
         J = step_jacobians(system, p, xi).to(torch.float64).reshape(B, c1 - c0, S, S)
         n_new = max(0, min(c1, t_b) - c0)
         if n_new:
-            Bin = input_jacobians(system, p, xi).to(torch.float64).reshape(B, c1 - c0, S, I)
-            Bin = Bin[:, :n_new] * scale_x
+            Bin = input_jacobians(system, p, xi).reshape(B, c1 - c0, S, I)[:, :n_new]
+            Bin = Bin.to(torch.float64) * scale_x  # (B, n_new, S, I)
         for i, t in enumerate(range(c0, c1)):
-            # advance every live source by one step, then put the new one at lag 0
-            moved = torch.einsum("bij,bnjk->bnik", J[:, i], Q[:, :K])  # (B, K, S, I)
-            new = Bin[:, i:i + 1] if t < t_b else torch.zeros(B, 1, S, I, dtype=torch.float64)
-            Q = torch.cat([new, moved], dim=1)  # (B, K+1, S, I)
-            logc = torch.cat([torch.zeros(B, 1, dtype=torch.float64), logc[:, :K]], dim=1)
-            norm = torch.linalg.vector_norm(Q, dim=(2, 3))  # (B, K+1)
-            Q = Q / torch.where(norm > 0, norm, torch.ones_like(norm))[:, :, None, None]
-            logc = logc + torch.log(norm)
-            src = t - lag  # source step of each buffer slot
+            Q = torch.bmm(J[:, i], Q.view(B, S, L * I)).view(B, S, L, I)
+            slot = t % L  # its old source has passed lag K
+            if t < t_b:
+                Q[:, :, slot] = Bin[:, i]
+                logc[:, slot] = 0.0
+            else:
+                Q[:, :, slot] = 0.0
+                logc[:, slot] = -math.inf
+            norm = torch.linalg.vector_norm(Q, dim=(1, 3))  # (B, L)
+            Q /= torch.where(norm > 0, norm, torch.ones_like(norm))[:, None, :, None]
+            logc += torch.log(norm)
+            lag = (t - slots) % L
+            src = t - lag
             ok = (src >= t_a) & (src < t_b)
-            if bool(ok.any()):
-                part = torch.linalg.vector_norm(Q[:, ok][:, :, cols_t], dim=(2, 3))
+            if cols_t is None:
+                lognorm[:, src[ok] - t_a, lag[ok]] = logc[:, ok]
+            else:
+                part = torch.linalg.vector_norm(Q[:, cols_t][:, :, ok], dim=(1, 3))
                 lognorm[:, src[ok] - t_a, lag[ok]] = torch.log(part) + logc[:, ok]
     flat = lognorm.reshape(B * n_src, K + 1)  # (B*n_src, K+1)
     log_mean = torch.logsumexp(flat, dim=0) - math.log(flat.shape[0])  # (K+1,)

@@ -330,8 +330,8 @@ def test_gru_contract(gru, method, dtype):
     # the legacy global state is read only to prove it is left alone
     torch_rng, np_rng = torch.get_rng_state(), np.random.get_state()[1].copy()  # noqa: NPY002
     kw = dict(max_lag=8, method=method, dtype=dtype)
-    if method == "decoding":
-        kw.update(n_steps=600)
+    kw.update({"decoding": dict(n_steps=400), "perturbation": {},
+               "sensitivity": dict(n_sequences=2, n_steps=60)}[method])
     curve = memory_curve(gru, **kw)
     assert torch.equal(torch.get_rng_state(), torch_rng)
     assert np.array_equal(np.random.get_state()[1], np_rng)  # noqa: NPY002
@@ -345,10 +345,11 @@ def test_gru_contract(gru, method, dtype):
     assert not curve.scores.flags.writeable and not curve.samples.flags.writeable
     with pytest.raises(dataclasses.FrozenInstanceError):
         curve.span = 3
-    again = memory_curve(gru, **kw)
-    np.testing.assert_array_equal(again.scores, curve.scores)
-    other = memory_curve(gru, **kw, seed=1)
-    assert not np.array_equal(other.scores, curve.scores)
+    if dtype == F64:
+        again = memory_curve(gru, **kw)
+        np.testing.assert_array_equal(again.scores, curve.scores)
+        other = memory_curve(gru, **kw, seed=1)
+        assert not np.array_equal(other.scores, curve.scores)
     frame = curve.to_frame()
     assert list(frame.columns) == ["score", "spread"] and frame.index.name == "lag"
     fig, ax = plt.subplots()
