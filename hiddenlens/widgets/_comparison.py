@@ -8,6 +8,9 @@ from typing import Any
 
 import ipywidgets as widgets
 import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import to_hex
+from matplotlib.figure import Figure
 
 from .._compare import RunComparison, _table, linear_cka, plot_cka, plot_overlay
 from .._record import as_system, record
@@ -60,7 +63,7 @@ class Comparison(Board):
             self._runs[n] = Run(n, system, record(system, x, h0), x, None, seed)
         self.traces = {n: r.trace for n, r in self._runs.items()}
         self.comparison: RunComparison | None = None
-        self._colors = {n: f"C{i % 10}" for i, n in enumerate(names)}
+        self._colors = {n: to_hex(f"C{i % 10}") for i, n in enumerate(names)}
         first = self._runs[names[0]].trace
         B, T = first.batch_size, first.n_steps
 
@@ -139,23 +142,28 @@ class Comparison(Board):
             return fig
         # trajectories and fixed points live in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
-        n = len(runs) + (name == "pca")
-        ncols = min(n, 4)
-        height = (3.6 if projection == "3d" else 3.0) if ncols > 2 else 3.6
-        projections = [projection] * len(runs) + [None] * (name == "pca")
-        fig, axes = _render.new_figure(n, ncols=ncols, height=height, projections=projections,
-                                       layout=layout)
-        for ax, run in zip(axes[:len(runs)], runs, strict=True):
+        ncols = min(len(runs), 4)
+        nrows = -(-len(runs) // ncols)
+        row_height = 3.4 if projection == "3d" or ncols <= 2 else 2.9
+        extra = name == "pca"  # variance spectra are comparable across runs, the axes are not
+        fig = Figure(figsize=(_render.WIDTH_IN, row_height * nrows + 2.4 * extra),
+                     dpi=_render.DPI, layout=layout)
+        FigureCanvasAgg(fig)
+        grid = fig.add_gridspec(nrows + extra, ncols,
+                                height_ratios=[row_height] * nrows + [2.4] * extra)
+        for i, run in enumerate(runs):
+            ax = fig.add_subplot(grid[i // ncols, i % ncols], projection=projection)
             deps = {d: self._results(d, run) for d in analysis.needs}
             analysis.draw(self._results(name, run), [ax], view, run, deps)
-            ax.set_title(run.name, color=self._colors[run.name], fontsize="medium")
+            title = run.name
+            if name == "pca":
+                title += f" · PR {self._results(name, run).participation_ratio:.1f}"
+            ax.set_title(title, color=self._colors[run.name], fontsize="medium")
             if ax.get_legend() is not None and len(runs) > 1:
                 ax.get_legend().remove()
-        if name == "pca":  # variance spectra are comparable across runs, the axes are not
-            for run in runs:
-                plot_overlay("pca", {run.name: self._results("pca", run)}, ax=axes[-1],
-                             color=self._colors[run.name])
-            axes[-1].set_title("cumulative variance", fontsize="medium")
+        if extra:
+            _draw_cumulative(fig.add_subplot(grid[nrows, :]),
+                             {r.name: self._results("pca", r) for r in runs}, self._colors)
         return fig
 
     def _summary_html(self) -> str:
@@ -232,7 +240,8 @@ class Comparison(Board):
         self.comparison = RunComparison(names=tuple(names), table=table, results=results,
                                         cka=cka, figures=figures)
         self._table.value = _table_html(table, names, self._colors)
-        fig, axes = _render.new_figure(1, height=min(1.2 + 0.6 * len(runs), 4.5))
+        size = min(1.6 + 0.7 * len(runs), 6.0)
+        fig, axes = _render.new_figure(1, height=size - 0.4, width=size + 1.8)
         plot_cka(cka, names, ax=axes[0])
         self._cka.value = _render.png_bytes(fig)
         self._cka.layout.display = None
@@ -246,6 +255,22 @@ class Comparison(Board):
         names = list(self.comparison.names)
         return [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
                 _table_html(self.comparison.table, names, self._colors)]
+
+
+def _draw_cumulative(ax, results: Mapping[str, Any], colors: Mapping[str, str]) -> None:
+    """Cumulative variance over the whole covariance spectrum of each run, on one Axes."""
+    n = min(30, max(r.cumulative.size for r in results.values()))
+    for name, r in results.items():
+        k = min(n, r.cumulative.size)
+        ax.plot(np.arange(1, k + 1), r.cumulative[:k], "o-", ms=3, color=colors[name],
+                label=f"{name} (PR {r.participation_ratio:.1f})")
+    ax.axhline(0.9, color="0.6", lw=0.8, ls=":")
+    ax.set_ylim(0, 1.02)
+    ax.set_xlabel("number of components")
+    ax.set_ylabel("cumulative variance")
+    ax.set_title("explained variance (comparable across runs; the axes above are not)",
+                 fontsize="medium")
+    ax.legend(fontsize="small", loc="lower right")
 
 
 def _table_html(table, names: list[str], colors: Mapping[str, str]) -> str:

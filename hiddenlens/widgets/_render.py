@@ -23,7 +23,8 @@ HEIGHT_IN = 3.6
 
 def new_figure(n_axes: int = 1, *, projection: str | None = None, height: float = HEIGHT_IN,
                ncols: int | None = None, projections: list[str | None] | None = None,
-               layout: str | None = "constrained") -> tuple[Figure, list[Any]]:
+               layout: str | None = "constrained",
+               width: float = WIDTH_IN) -> tuple[Figure, list[Any]]:
     """A pyplot-free Agg figure with ``n_axes`` axes in rows of ``ncols`` (default: one row).
 
     ``projection`` (e.g. "3d") applies to every Axes unless ``projections`` gives one each.
@@ -33,7 +34,7 @@ def new_figure(n_axes: int = 1, *, projection: str | None = None, height: float 
     """
     ncols = n_axes if ncols is None else max(1, min(ncols, n_axes))
     nrows = -(-n_axes // ncols)
-    fig = Figure(figsize=(WIDTH_IN, height * nrows), dpi=DPI, layout=layout)
+    fig = Figure(figsize=(width, height * nrows), dpi=DPI, layout=layout)
     FigureCanvasAgg(fig)
     projections = projections or [projection] * n_axes
     axes = [fig.add_subplot(nrows, ncols, i + 1, projection=projections[i])
