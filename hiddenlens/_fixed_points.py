@@ -39,12 +39,17 @@ class FixedPoints:
     Attributes
     ----------
     points : ndarray of shape (n, S)
-        Distinct points where ``q(s) = ½‖F(s, x*) − s‖²`` reached a minimum no larger than
+        Distinct end points of the search where ``q(s) = ½‖F(s, x*) − s‖²`` is at most
         ``slow_tol``.
     q : ndarray of shape (n,)
         ``q`` at each point (``sqrt(2 q)`` is the distance the state moves in one step there).
     is_fixed : ndarray of shape (n,), bool
-        ``q < tol``: a fixed point; otherwise a slow point (a local minimum of ``q`` above zero).
+        ``q < tol``: a fixed point; otherwise a slow point, where the state still drifts at speed
+        ``sqrt(2 q)`` per step.
+    converged : ndarray of shape (n,), bool
+        The search stopped at a fixed point or at a local minimum of q. False: it ran out of
+        iterations while q was still falling slowly, so the point lies in a slow valley (often
+        near a continuum of nearly fixed, marginal states) rather than at an isolated minimum.
     eigenvalues : ndarray of shape (n, S), complex
         Eigenvalues of the step Jacobian ``dF/ds`` at each point, largest modulus first.
     stability : ndarray of shape (n,), str
@@ -65,6 +70,9 @@ class FixedPoints:
     n_starts : int
     n_discarded : int
         Starts that ended with ``q > slow_tol``, in no point above.
+    n_unconverged : int
+        Starts whose q was still falling, above ``tol``, after ``max_iter`` steps (kept as slow
+        points when ``q <= slow_tol``; raise ``max_iter`` to follow them further).
     tol, slow_tol, marginal_tol, distance_tol : float
         The thresholds used.
     parts : Mapping[str, slice]
@@ -84,6 +92,7 @@ class FixedPoints:
     points: np.ndarray
     q: np.ndarray
     is_fixed: np.ndarray
+    converged: np.ndarray
     eigenvalues: np.ndarray
     stability: np.ndarray
     unstable_directions: tuple[np.ndarray, ...]
@@ -92,6 +101,7 @@ class FixedPoints:
     x: np.ndarray
     n_starts: int
     n_discarded: int
+    n_unconverged: int
     tol: float
     slow_tol: float
     marginal_tol: float
@@ -134,6 +144,7 @@ class FixedPoints:
             "q": self.q,
             "speed": np.sqrt(2 * self.q),
             "kind": np.where(self.is_fixed, "fixed", "slow"),
+            "converged": self.converged,
             "stability": self.stability,
             "n_unstable": [d.shape[0] for d in self.unstable_directions],
             "spectral_radius": self.spectral_radius,
@@ -147,7 +158,8 @@ class FixedPoints:
     def __repr__(self) -> str:
         counts = ", ".join(f"{k}={v}" for k, v in self.counts.items())
         return (f"FixedPoints(n={len(self)}, fixed={self.n_fixed}, slow={self.n_slow}, {counts}, "
-                f"starts={self.n_starts}, discarded={self.n_discarded})")
+                f"starts={self.n_starts}, discarded={self.n_discarded}, "
+                f"unconverged={self.n_unconverged})")
 
     # ------------------------------------------------------------------ plot
     def plot(self, ax: Any = None, *, pca: Any = None, dims: int = 2,
@@ -215,6 +227,8 @@ class FixedPoints:
             background = pca.projected[:, :, :dims] if show_trajectories else None
 
         ax = get_axes(ax, projection="3d" if dims == 3 else None)
+        if dims == 3:
+            ax.computed_zorder = False  # keep the points above the trajectories
         extent = []
         if background is not None:
             _draw_background(ax, background)
@@ -248,8 +262,8 @@ def find_fixed_points(
     starts: Any = None,
     noise: float = 0.0,
     tol: float | None = None,
-    slow_tol: float = 1e-4,
-    max_iter: int = 200,
+    slow_tol: float = 1e-5,
+    max_iter: int = 100,
     distance_tol: float = 1e-3,
     marginal_tol: float = 1e-3,
     dtype: Any = None,
@@ -286,11 +300,12 @@ def find_fixed_points(
     tol : float, optional
         Points with ``q < tol`` are fixed points; default 1e-12 when computing in float64 and
         1e-9 in float32.
-    slow_tol : float, default 1e-4
-        Minima with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher are
-        discarded.
-    max_iter : int, default 200
-        Most optimisation steps per start.
+    slow_tol : float, default 1e-5
+        End points with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher
+        are discarded. q is in squared state units: scale it with the size of the states.
+    max_iter : int, default 100
+        Most optimisation steps per start. Isolated fixed points take about ten; starts in a
+        slow valley may use them all (see ``FixedPoints.converged``).
     distance_tol : float, default 1e-3
         Points closer than this (Euclidean, state units) are merged.
     marginal_tol : float, default 1e-3
@@ -332,9 +347,9 @@ def find_fixed_points(
                    marginal_tol=marginal_tol, tol=tol)
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
     with preserved(system.model if system.kind == "callable" else None):
-        s, q = _minimise(work, s0, x_star.expand(n, I), tol=tol, max_iter=max_iter,
-                         progress=progress)
-        kept = (q <= slow_tol).nonzero().squeeze(1)
+        s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
+                                    max_iter=max_iter, progress=progress)
+        kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)
         reps, support = _merge(s[kept], q[kept], distance_tol)
         P = s[kept][reps]  # (m, S)
         if P.shape[0]:
@@ -347,6 +362,7 @@ def find_fixed_points(
         points=readonly(P, np.float64),
         q=readonly(q_kept, np.float64),
         is_fixed=readonly(q_kept < tol),
+        converged=readonly(converged[kept][reps] | (q_kept < tol)),
         eigenvalues=readonly(eig),
         stability=readonly(np.array(stability, dtype="<U8")),
         unstable_directions=tuple(readonly(d) for d in directions),
@@ -355,6 +371,7 @@ def find_fixed_points(
         x=readonly(x_star, np.float64),
         n_starts=n,
         n_discarded=int(n - kept.numel()),
+        n_unconverged=int((~converged & (q >= tol)).sum()),
         tol=tol,
         slow_tol=float(slow_tol),
         marginal_tol=float(marginal_tol),
@@ -471,39 +488,47 @@ def _gauss_newton(system, s, X, r) -> tuple[torch.Tensor, torch.Tensor]:
 
 
 def _minimise(system, s0, X, *, tol, max_iter, progress):
-    """Levenberg–Marquardt on q for every start at once; returns final states and q (float64).
+    """Levenberg–Marquardt on q for every start at once.
+
+    Returns the final states (n, S) and q (n,) in float64, and whether each start converged
+    (reached a fixed point or a minimum of q) rather than running out of iterations.
 
     NOTE: [Batched damped Gauss–Newton]
     The starts do not interact, so q summed over starts has a block-diagonal Hessian and each
-    start solves its own S x S system; all of them go through one batched Cholesky solve. Each
-    start keeps its own damping μ: an accepted step (q fell) divides it by 3, a rejected one
-    multiplies it by 4 and is retried from the same state, without a new Jacobian. Jacobians
-    are recomputed only where a step was accepted. A start leaves the batch when q <= 1e-8 tol
-    (a fixed point, polished) or when it stalls: q fell by less than a relative 1e-10 on three
-    accepted steps in a row, or μ grew past 1e12 times the curvature scale (a minimum with
-    q > 0: a slow point, or the rounding floor of q).
+    start solves its own S x S system (H + μ diag(H)) δ = −g, H = AᵀA, g = Aᵀr; all of them go
+    through one batched Cholesky solve. Marquardt's diag(H) scaling makes the damping
+    indifferent to the units of each state coordinate (an LSTM's c next to its h). Each start
+    keeps its own μ: an accepted step (q fell) divides it by 3, a rejected one multiplies it by
+    a factor that doubles on each rejection in a row (2, 4, 8, ...) and is retried from the
+    same state without a new Jacobian; Jacobians are recomputed only where a step was
+    accepted. A start leaves the batch when q <= 1e-8 tol (a fixed point, polished) or when it
+    stalls at a minimum of q: q fell by less than a relative 1e-10 on three accepted steps in a
+    row, or μ grew past 1e12. Starts still descending after max_iter steps did not converge:
+    typically a slow valley towards a degenerate (marginal) fixed point, where Newton's method
+    is only linearly convergent, such as a continuum of nearly fixed states.
     """
     from tqdm.auto import tqdm
 
     s = s0.clone()  # (n, S)
-    n, S = s.shape
-    eye = torch.eye(S, dtype=torch.float64)
     r = _residual(system, s, X).to(torch.float64)
     q = 0.5 * (r * r).sum(dim=1)  # (n,)
+    converged = torch.ones(q.shape, dtype=torch.bool)
     # below tol a point counts as fixed; a few more (quadratically convergent) steps pin it down
     polish = tol * 1e-8
     active = (q > polish).nonzero().squeeze(1)
-    if max_iter == 0 or active.numel() == 0:
-        return s.to(torch.float64), q
+    if active.numel() == 0:
+        return s.to(torch.float64), q, converged
+    if max_iter == 0:
+        converged[active] = False
+        return s.to(torch.float64), q, converged
     H, g = _gauss_newton(system, s[active], X[active], r[active])
-    scale = H.diagonal(dim1=1, dim2=2).amax(dim=1).clamp_min(1e-12)  # (a,)
-    mu = 1e-3 * scale
+    mu = torch.full((active.numel(),), 1e-3, dtype=torch.float64)
+    nu = torch.full_like(mu, 2.0)
     stall = torch.zeros(active.numel(), dtype=torch.long)
     show = {"disable": progress is False, "delay": 0.0 if progress else 2.0}
     with tqdm(total=max_iter, desc="fixed points", leave=False, **show) as bar:
         for _ in range(max_iter):
-            L, info = torch.linalg.cholesky_ex(H + mu[:, None, None] * eye)
-            delta = -torch.cholesky_solve(g.unsqueeze(-1), L).squeeze(-1)  # (a, S)
+            delta, info = _damped_solve(H, g, mu)  # (a, S)
             trial = s[active] + delta.to(s.dtype)
             r_t = _residual(system, trial, X[active]).to(torch.float64)
             q_t = 0.5 * (r_t * r_t).sum(dim=1)
@@ -511,23 +536,45 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
             accept = (info == 0) & torch.isfinite(q_t) & (q_t < q_a)
             tiny = accept & (q_a - q_t <= 1e-10 * q_a)
             stall = torch.where(accept, torch.where(tiny, stall + 1, 0), stall)
-            mu = torch.where(accept, (mu / 3).clamp_min(1e-15 * scale), mu * 4)
+            mu = torch.where(accept, (mu / 3).clamp_min(1e-15), mu * nu)
+            nu = torch.where(accept, 2.0, 2 * nu)
             moved = active[accept]
             s[moved] = trial[accept]
             q[moved] = q_t[accept]
             r[moved] = r_t[accept]
-            done = (q[active] <= polish) | (stall >= 3) | (mu > 1e12 * scale)
+            done = (q[active] <= polish) | (stall >= 3) | (mu > 1e12)
             left = ~done
             refresh = (accept & left)[left]  # among those left, who needs a new Jacobian
-            active, H, g, mu, stall, scale = (a[left] for a in (active, H, g, mu, stall, scale))
-            if refresh.any():
+            if not bool(left.all()):  # (copying H is not free: only when starts finished)
+                active, H, g, mu, nu, stall = (a[left] for a in (active, H, g, mu, nu, stall))
+            if bool(refresh.all()):
+                H, g = _gauss_newton(system, s[active], X[active], r[active])
+            elif refresh.any():
                 at = active[refresh]
                 H[refresh], g[refresh] = _gauss_newton(system, s[at], X[at], r[at])
             bar.update(1)
             bar.set_postfix(active=int(active.numel()), refresh=False)
             if active.numel() == 0:
                 break
-    return s.to(torch.float64), q
+    converged[active] = False
+    return s.to(torch.float64), q, converged
+
+
+def _scaling(H: torch.Tensor) -> torch.Tensor:
+    """Marquardt's damping scale diag(H), floored so a flat direction is still damped."""
+    d = H.diagonal(dim1=1, dim2=2)  # (a, S)
+    return d.clamp_min(1e-12 * d.amax(dim=1, keepdim=True).clamp_min(1e-300))
+
+
+def _damped_solve(H: torch.Tensor, g: torch.Tensor, mu: torch.Tensor):
+    """δ = −(H + μ diag(H))⁻¹ g for each start by Cholesky; ``info`` > 0 where it failed."""
+    diag = H.diagonal(dim1=1, dim2=2)  # (a, S), a view: damp H in place and restore it
+    saved = diag.clone()
+    diag.add_(mu.unsqueeze(1) * _scaling(H))
+    L, info = torch.linalg.cholesky_ex(H)
+    diag.copy_(saved)
+    y = torch.linalg.solve_triangular(L, g.unsqueeze(-1), upper=False)
+    return -torch.linalg.solve_triangular(L.mT, y, upper=True).squeeze(-1), info
 
 
 def _merge(points: torch.Tensor, q: torch.Tensor, distance_tol: float):
@@ -602,7 +649,7 @@ def _draw_background(ax, P: np.ndarray) -> None:
         from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
     else:
         from matplotlib.collections import LineCollection as Collection
-    ax.add_collection(Collection(segs, colors="0.7", linewidths=0.6, alpha=0.5,
+    ax.add_collection(Collection(segs, colors="0.75", linewidths=0.5, alpha=0.4, zorder=1,
                                  label="trajectories"))
 
 
@@ -615,7 +662,7 @@ def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> list[n
         p = coords(fp.points[i : i + 1])[0]  # (dims,)
         for d in along(D):  # (dims,)
             seg = np.stack([p - length * d, p + length * d])  # (2, dims)
-            ax.plot(*seg.T, color="tab:red", lw=1.2, label=None if drawn else
+            ax.plot(*seg.T, color="tab:red", lw=1.2, zorder=3, label=None if drawn else
                     "unstable direction")
             drawn.append(seg)
     return drawn
@@ -625,9 +672,9 @@ def _draw_points(ax, fp: FixedPoints, keep, P: np.ndarray) -> None:
     stab = fp.stability[keep]
     fixed = fp.is_fixed[keep]
     for cls in STABILITY_CLASSES:
-        for is_fixed, alpha, tag in ((True, 1.0, ""), (False, 0.35, " (slow)")):
+        for is_fixed, alpha, size, tag in ((True, 1.0, 50, ""), (False, 0.4, 20, " (slow)")):
             sel = (stab == cls) & (fixed == is_fixed)
             if not sel.any():
                 continue
-            ax.scatter(*P[sel].T, s=50, alpha=alpha, zorder=4, linewidths=1.5,
-                       label=f"{cls}{tag} ({int(sel.sum())})", **_MARKERS[cls])
+            ax.scatter(*P[sel].T, s=size, alpha=alpha, zorder=4 if is_fixed else 3,
+                       linewidths=1.5, label=f"{cls}{tag} ({int(sel.sum())})", **_MARKERS[cls])

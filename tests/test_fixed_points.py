@@ -160,6 +160,20 @@ def test_slow_point_of_a_map_without_fixed_points():
     assert fp.stability[0] == "marginal" and fp.n_slow == 1 and fp.n_fixed == 0
 
 
+def test_degenerate_fixed_point_converges_slowly_and_is_marginal():
+    c = 0.5
+    system = _map(lambda s, x: s - c * s**3, 1)
+    # analytic: F(h) - h = -c h³ has a triple root at 0 with F'(0) = 1; Newton's method only
+    # shrinks h by 2/3 per step there (common practice), so a few steps do not converge
+    early = find_fixed_points(system, None, starts=[[0.5]], max_iter=3)
+    assert early.n_unconverged == 1 and len(early) == 1
+    assert not early.converged[0] and not early.is_fixed[0]
+    assert early.q[0] == pytest.approx(0.5 * c**2 * early.points[0, 0] ** 6, rel=1e-12)
+    done = find_fixed_points(system, None, starts=[[0.5]])
+    assert done.n_unconverged == 0 and done.is_fixed[0] and done.converged[0]
+    assert abs(done.points[0, 0]) < 1e-3 and done.stability[0] == "marginal"
+
+
 def test_starts_above_slow_tol_are_discarded():
     a, b = 0.1, 0.01
     system = _map(lambda s, x: s + a * (s * s + b), 1)
@@ -245,8 +259,8 @@ def test_result_is_frozen_read_only_and_repeatable(saddle_case):
     np.testing.assert_array_equal(tr.states, states)
     with pytest.raises(dataclasses.FrozenInstanceError):
         fp.points = None
-    for arr in (fp.points, fp.q, fp.eigenvalues, fp.stability, fp.is_fixed, fp.support,
-                fp.final_q, *fp.unstable_directions):
+    for arr in (fp.points, fp.q, fp.eigenvalues, fp.stability, fp.is_fixed, fp.converged,
+                fp.support, fp.final_q, *fp.unstable_directions):
         assert not arr.flags.writeable
     torch.manual_seed(123)  # another global seed must not change anything
     again = find_fixed_points(system, tr, n_starts=32, noise=0.01, seed=5)
@@ -272,9 +286,9 @@ def test_to_frame_and_counts(saddle_case):
     system, tr = saddle_case
     fp = find_fixed_points(system, tr, n_starts=32)
     df = fp.to_frame()
-    assert list(df.columns[:7]) == ["q", "speed", "kind", "stability", "n_unstable",
-                                    "spectral_radius", "support"]
-    assert list(df.columns[7:]) == ["state[0]", "state[1]"]
+    assert list(df.columns[:8]) == ["q", "speed", "kind", "converged", "stability",
+                                    "n_unstable", "spectral_radius", "support"]
+    assert list(df.columns[8:]) == ["state[0]", "state[1]"]
     assert df.shape[0] == len(fp) and sum(fp.counts.values()) == len(fp)
     np.testing.assert_allclose(df["spectral_radius"], np.abs(fp.eigenvalues).max(axis=1))
     assert "FixedPoints(" in repr(fp)

@@ -1,0 +1,83 @@
+"""Time the fixed-point search on a GRU with 128 units from 256 starts.
+
+Prints the wall time of ``find_fixed_points`` and its ratio to one step of the system over the
+256 starts, to one batch of step Jacobians at the starts, and to recording the trace the starts
+come from (a T-step forward pass); once with one thread and once with torch's default.
+
+Run: python benchmarks/bench_fixed_points.py
+"""
+
+from __future__ import annotations
+
+import time
+
+import torch
+from torch import nn
+
+import hiddenlens as hl
+from hiddenlens._fixed_points import _working_system
+from hiddenlens._jacobians import step_jacobians
+
+H, I, N_STARTS = 128, 16, 256
+B, T = 64, 200
+GAIN = 2.0  # recurrent weights scaled up from PyTorch's init, so the dynamics are not trivial
+
+
+def make_gru(seed: int = 0) -> nn.GRU:
+    gen = torch.Generator().manual_seed(seed)
+    gru = nn.GRU(I, H, batch_first=True)
+    bound = H**-0.5
+    with torch.no_grad():  # PyTorch's own init range, drawn from a local generator
+        for name, p in gru.named_parameters():
+            p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) * bound)
+            if name.startswith("weight_hh"):
+                p.mul_(GAIN)
+    return gru
+
+
+def best_of(fn, repeat: int = 5) -> float:
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return min(times)
+
+
+def run(threads: int | None) -> None:
+    default = torch.get_num_threads()
+    torch.set_num_threads(threads or default)
+    print(f"\n== torch.get_num_threads() = {torch.get_num_threads()}")
+    gru = make_gru()
+    gen = torch.Generator().manual_seed(1)
+    inputs = torch.randn(B, T, I, generator=gen)
+    t_record = best_of(lambda: hl.record(gru, inputs), repeat=3)
+    trace = hl.record(gru, inputs)
+    system = hl.wrap(gru)
+    work, _ = _working_system(system, None)  # the float64 copy the search runs on
+    s = torch.tensor(trace.states.reshape(-1, H)[:N_STARTS], dtype=torch.float64)
+    x = torch.zeros(N_STARTS, I, dtype=torch.float64)
+    with torch.no_grad():
+        t_step = best_of(lambda: work.step(s, x), repeat=20)
+    t_jac = best_of(lambda: step_jacobians(work, s, x), repeat=3)
+
+    hl.find_fixed_points(gru, trace, n_starts=8, progress=False)  # warm-up (imports, dispatch)
+    t0 = time.perf_counter()
+    fp = hl.find_fixed_points(gru, trace, n_starts=N_STARTS, progress=False)
+    t_find = time.perf_counter() - t0
+
+    print(f"GRU H={H}, I={I}; {N_STARTS} starts from a trace of B={B}, T={T}; float64 search")
+    print(f"  result: {fp}")
+    print(f"  largest q among points: {fp.q.max():.2e} (tol {fp.tol:.0e}); "
+          f"largest q from any start: {fp.final_q.max():.2e}")
+    print(f"  find_fixed_points:             {t_find:8.3f} s")
+    print(f"  one step over the starts:      {1e3 * t_step:8.3f} ms   ratio {t_find / t_step:10.0f}")
+    print(f"  step Jacobians at the starts:  {1e3 * t_jac:8.1f} ms   ratio {t_find / t_jac:10.1f}")
+    print(f"  recording the trace ({T} steps): {1e3 * t_record:7.1f} ms   "
+          f"ratio {t_find / t_record:10.1f}")
+    torch.set_num_threads(default)
+
+
+if __name__ == "__main__":
+    run(1)
+    run(None)
