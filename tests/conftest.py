@@ -86,3 +86,15 @@ def build(cls: type, *args, gen: torch.Generator, scale: float | None = None, **
 def make():
     """``make(nn.GRU, 3, 5, gen=gen, ...)``: a module built with ``build``."""
     return build
+
+
+@pytest.fixture
+def one_thread():
+    """Run a test on one torch thread: tiny tensors gain nothing from more, and on a busy machine
+    thread hand-offs cost more than the work. The previous count is given back afterwards."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)

@@ -8,6 +8,8 @@ from torch import nn
 
 from hiddenlens._guard import preserved
 
+pytestmark = pytest.mark.usefixtures("one_thread")
+
 
 class Net(nn.Module):
     def __init__(self):

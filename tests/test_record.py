@@ -14,6 +14,8 @@ from torch import nn
 import hiddenlens as hl
 from hiddenlens._record import as_system, initial_states
 
+pytestmark = pytest.mark.usefixtures("one_thread")
+
 
 def lstm(make, gen, L=2):
     return make(nn.LSTM, 3, 4, L, batch_first=True, gen=gen)
@@ -258,3 +260,26 @@ def test_finite_states_do_not_warn(make, gen):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         hl.record(gru(make, gen), np.ones((2, 30, 3), np.float32) * 100)
+
+
+def test_interrupted_step_function_run_leaves_model_and_rng(make, gen, snapshot):
+    class Interrupting(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.lin = nn.Linear(2, 2)
+            self.drop = nn.Dropout(0.3)
+            self.calls = 0
+
+        def forward(self, s, x):
+            self.calls += 1
+            if self.calls == 4:
+                raise KeyboardInterrupt
+            torch.rand(1)  # draws from the global RNG on purpose
+            return torch.tanh(self.drop(self.lin(s)))
+
+    cell = make(Interrupting, gen=gen).train()
+    snap = snapshot(cell)
+    with pytest.raises(KeyboardInterrupt):
+        hl.record(cell, np.zeros((2, 10, 0)), state_size=2, input_size=0)
+    snap.assert_unchanged()
+    assert cell.training and cell.drop.training

@@ -15,6 +15,8 @@ import hiddenlens as hl
 from hiddenlens import _trace
 from hiddenlens._trace import Trace, load_trace
 
+pytestmark = pytest.mark.usefixtures("one_thread")
+
 
 @pytest.fixture
 def system(make, gen):
