@@ -8,6 +8,7 @@ system uses torch.func transforms batched over all requested states at once.
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 import numpy as np
@@ -158,7 +159,12 @@ class _Autograd(StepLinearization):
         def one(v: torch.Tensor) -> torch.Tensor:
             return jvp(self._f, (self.prev,), (v,))[1]
 
-        return vmap(one, in_dims=2, out_dims=2)(tangents.to(self.prev.dtype))
+        with warnings.catch_warnings():
+            # torch's first forward-mode call scripts its decompositions and warns about
+            # torch.jit.script itself; nothing the caller can act on
+            warnings.filterwarnings("ignore", message=r".*torch\.jit\.script.*",
+                                    category=DeprecationWarning)
+            return vmap(one, in_dims=2, out_dims=2)(tangents.to(self.prev.dtype))
 
     def vjp(self, cotangents: torch.Tensor) -> torch.Tensor:
         _, pull = vjp(self._f, self.prev)
