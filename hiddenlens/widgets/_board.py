@@ -423,7 +423,10 @@ class Board(widgets.VBox):
         return {name: bytes(p.image.value) for name, p in self._panels.items()}
 
     def close(self) -> None:
-        self._runner.shutdown()
+        """Stop the worker and close the widget."""
+        runner = getattr(self, "_runner", None)  # absent when the arguments were refused
+        if runner is not None:
+            runner.shutdown()
         super().close()
 
     # ------------------------------------------------------------------ static fallback

@@ -43,7 +43,6 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  **wrap_options: Any) -> None:
-        super().__init__()
         if not isinstance(runs, Mapping) or len(runs) == 0:
             raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
                             "{'before': model_a, 'after': model_b}")
@@ -56,11 +55,13 @@ class Comparison(Board):
         if len(set(sizes.values())) > 1:
             raise ValueError(f"runs take different input sizes {sizes}; compare runs that read "
                              "the same inputs")
-        self._runs = {}
+        recorded = {}
         for n, system in systems.items():
             x = as_sequences(inputs, system.input_size, system.dtype,
                              what=f"run {n!r} ({system.source})")  # (B, T, I)
-            self._runs[n] = Run(n, system, record(system, x, h0), x, None, seed)
+            recorded[n] = Run(n, system, record(system, x, h0), x, None, seed)
+        super().__init__()  # only once the arguments are known to be good
+        self._runs = recorded
         self.traces = {n: r.trace for n, r in self._runs.items()}
         self.comparison: RunComparison | None = None
         self._colors = {n: to_hex(f"C{i % 10}") for i, n in enumerate(names)}

@@ -46,7 +46,6 @@ class Explorer(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
                  **wrap_options: Any) -> None:
-        super().__init__()
         names = check_analyses(analyses)
         system = as_system(model_or_system, **wrap_options)
         x = as_sequences(inputs, system.input_size, system.dtype,
@@ -54,6 +53,7 @@ class Explorer(Board):
         trace = record(system, x, h0)
         run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
                   seed)
+        super().__init__()  # only once the arguments are known to be good
         self._runs = {run.name: run}
         self.trace = trace
         B, T, S = trace.states.shape
