@@ -106,7 +106,9 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
     Returns
     -------
     Trace
-        ``states`` (B, T, S) after each step, ``initial`` (B, S), ``inputs`` (B, T, I).
+        ``states`` (B, T, S) after each step, ``initial`` (B, S), ``inputs`` (B, T, I). A
+        time-reversed system's trace runs in its own time: ``states[:, t]`` follows input
+        ``T-1-t`` and ``inputs`` are stored reversed (flip axis 1 to line up with the module).
 
     Warns
     -----
@@ -120,11 +122,11 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         x = x.flip(1)
     s0 = initial_states(system, h0, x.shape[0])  # (B, S)
     states = system.run(x, s0, progress=progress)  # (B, T, S)
-    states_np = states.numpy()
-    _warn_non_finite(states_np, system)
-    states_np.setflags(write=False)
-    return Trace(states=states_np, initial=s0.numpy(), inputs=x.numpy(), parts=system.parts,
-                 metadata=_metadata(system, x.shape))
+    arrays = {"states": states.numpy(), "initial": s0.numpy(), "inputs": x.numpy()}
+    _warn_non_finite(arrays["states"], system)
+    for a in arrays.values():  # fresh buffers nobody else holds: the Trace keeps them uncopied
+        a.setflags(write=False)
+    return Trace(**arrays, parts=system.parts, metadata=_metadata(system, x.shape))
 
 
 def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:
