@@ -2,7 +2,8 @@
 
 Prints the wall time of ``find_fixed_points`` and its ratio to one step of the system over the
 256 starts, to one batch of step Jacobians at the starts, and to recording the trace the starts
-come from (a T-step forward pass); once with one thread and once with torch's default.
+come from (a T-step forward pass); once with one thread and once with torch's default. A second,
+harder case (recurrent weights scaled by 4: several saddles, slow valleys) is timed as well.
 
 Run: python benchmarks/bench_fixed_points.py
 """
@@ -21,9 +22,10 @@ from hiddenlens._jacobians import step_jacobians
 H, I, N_STARTS = 128, 16, 256
 B, T = 64, 200
 GAIN = 2.0  # recurrent weights scaled up from PyTorch's init, so the dynamics are not trivial
+HARD_GAIN = 4.0
 
 
-def make_gru(seed: int = 0) -> nn.GRU:
+def make_gru(seed: int = 0, gain: float = GAIN) -> nn.GRU:
     gen = torch.Generator().manual_seed(seed)
     gru = nn.GRU(I, H, batch_first=True)
     bound = H**-0.5
@@ -31,7 +33,7 @@ def make_gru(seed: int = 0) -> nn.GRU:
         for name, p in gru.named_parameters():
             p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) * bound)
             if name.startswith("weight_hh"):
-                p.mul_(GAIN)
+                p.mul_(gain)
     return gru
 
 
@@ -75,6 +77,15 @@ def run(threads: int | None) -> None:
     print(f"  step Jacobians at the starts:  {1e3 * t_jac:8.1f} ms   ratio {t_find / t_jac:10.1f}")
     print(f"  recording the trace ({T} steps): {1e3 * t_record:7.1f} ms   "
           f"ratio {t_find / t_record:10.1f}")
+
+    hard = make_gru(gain=HARD_GAIN)
+    trace = hl.record(hard, inputs)
+    t0 = time.perf_counter()
+    fp = hl.find_fixed_points(hard, trace, n_starts=N_STARTS, progress=False)
+    t_hard = time.perf_counter() - t0
+    print(f"harder case, recurrent weights x{HARD_GAIN:g}: {t_hard:.3f} s "
+          f"(ratio to one step {t_hard / t_step:.0f})")
+    print(f"  result: {fp}")
     torch.set_num_threads(default)
 
 
