@@ -387,6 +387,11 @@ class Board(widgets.VBox):
             target = self._panels[name].message if name else self._summary
             target.value = _render.error_box(exc)
 
+    def __repr__(self) -> str:
+        runs = ", ".join(self._runs) if hasattr(self, "_runs") else ""
+        tabs = ", ".join(getattr(self, "_panels", {}))
+        return f"{type(self).__name__}(runs=[{runs}], tabs=[{tabs}])"
+
     # ------------------------------------------------------------------ public
     def compute_all(self) -> None:
         """Compute every tab with its current options (in the background unless disabled)."""
