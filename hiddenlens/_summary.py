@@ -162,7 +162,9 @@ def _defaults(name: str, system: RecurrentSystem, trace: Trace, seed: int) -> di
     k = None if S <= 64 else 16
     quiet = {"progress": False}
     if name == "spectra":
-        return {"k": k, **quiet}
+        # the spectral radius needs a non-symmetric eigensolver per step: affordable up to
+        # a few hundred states
+        return {"k": k, "radius": S <= 256, **quiet}
     if name == "gradient_flow":
         return {"seed": seed, **quiet}
     if name == "lyapunov":
@@ -466,6 +468,10 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
     verdict = figures.get("gradient_verdict")
     if verdict:
         parts.append(f"gradient flow {verdict}")
+    top = figures.get("top_singular_value_median")
+    if not parts and top is not None and math.isfinite(top):
+        # without the gradient figures, the step Jacobians say how one step stretches states
+        parts.append(f"one step stretches states by up to {top:.3g}x (median)")
     lam = figures.get("lyapunov_max")
     if lam is not None and math.isfinite(lam):
         kind = "chaotic on these inputs" if lam > 0.01 else (

@@ -205,6 +205,8 @@ def test_summary_sentence_in_plain_words():
         "gradients grow ~10x every 5 steps"
     assert summary_sentence({"gradient_half_life": 10 * math.log10(2)}) == \
         "gradients shrink ~10x every 10 steps"
+    assert summary_sentence({"top_singular_value_median": 1.5}) == \
+        "one step stretches states by up to 1.5x (median)"
 
 
 def test_format_figure_and_describe_inputs():
