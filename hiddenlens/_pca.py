@@ -166,9 +166,12 @@ class PCATrajectories:
 
         dims = _check_dims(dims, self.n_components)
         B, T, _ = self.projected.shape
-        rows = np.arange(B)[samples if samples is not None else slice(None)]
-        rows = np.atleast_1d(rows)
-        cols = np.arange(T)[steps if steps is not None else slice(None)]
+        try:
+            rows = np.atleast_1d(np.arange(B)[samples if samples is not None else slice(None)])
+            cols = np.arange(T)[steps if steps is not None else slice(None)]
+        except (IndexError, TypeError) as err:
+            raise ValueError(f"samples must index the {B} samples and steps must be a slice of "
+                             f"the {T} steps ({err})") from None
         if rows.size == 0 or cols.size == 0:
             raise ValueError("samples/steps select nothing to draw; pass a non-empty selection")
         P = self.projected[rows][:, cols, :dims]  # (b, t, dims)

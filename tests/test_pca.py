@@ -236,6 +236,8 @@ def test_plot_options_fail_clearly(agg, gru_run):
         res.plot(color_by="colour")
     with pytest.raises(ValueError, match=r"labels must have shape \(5,\)"):
         res.plot(color_by=[1, 2])
+    with pytest.raises(ValueError, match="samples must index the 5 samples"):
+        res.plot(samples=[7])
     with pytest.raises(TypeError, match="others must hold Traces"):
         res.plot(others=[np.zeros(3)])
     with pytest.raises(ValueError, match="a 3-D plot needs 3-D axes"):
