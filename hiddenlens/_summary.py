@@ -263,7 +263,8 @@ def run_analyses(
     Notes
     -----
     The default budgets (all exponents and singular values up to 64 states, 64 fixed-point
-    starts, memory lags up to 40 on 5 probe sequences of 640 steps) keep a 32-state model at a few seconds per analysis.
+    starts, memory lags up to 40 on 5 probe sequences of 640 steps) keep a 32-state model at
+    about a second per analysis.
     """
     if on_error not in ("raise", "skip"):
         raise ValueError(f"on_error must be 'raise' or 'skip', got {on_error!r}")
