@@ -306,7 +306,9 @@ def lyapunov_spectrum(
         spread over more than about ``log(1/eps) / qr_every`` per step (eps the dtype's
         precision); keep 1 unless the spectrum is narrow.
     seed : int, default 0
-        Seed of the random initial frame (a local generator; the global RNG is untouched).
+        Seed of the random initial frame (local numpy generators, one per sample; the global
+        RNGs are untouched). Column j of the frame does not depend on k, so ``k < S`` gives the
+        first k exponents of the full spectrum.
     progress : bool, optional
         Show a progress bar (default: only for long runs).
     **wrap_options
@@ -356,12 +358,15 @@ def lyapunov_spectrum(
     qr_every = _check_positive_int(qr_every, "qr_every", "re-orthonormalise every step: 1")
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
-        raise TypeError(f"seed must be an integer, got {type(seed).__name__}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
     chosen = _choose_method(system, k) if method == "auto" else method
     s0 = initial_states(system, h0, B)  # (B, S)
 
-    with preserved(system.model if system.kind == "callable" else None), torch.no_grad():
+    # per step: the frame's product and QR, and the state step itself (up to 4 gates)
+    step_flops = B * (2 * S * S * (k + 4) + 4 * S * k * k)
+    with preserved(system.model if system.kind == "callable" else None), torch.no_grad(), \
+            _threads_for(step_flops):
         if system.kind == "callable":
             _check_step_dtype(system, s0, x[:, 0])
         states = system.run(x, s0, progress=False)  # (B, T, S)
@@ -403,9 +408,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     xt = x.transpose(0, 1).contiguous()  # (T, B, I)
     del states
 
-    gen = torch.Generator(device="cpu").manual_seed(seed)
-    frame = torch.randn(B, S, k, generator=gen, dtype=torch.float64)
-    Q = torch.linalg.qr(frame).Q.to(dt)  # (B, S, k)
+    Q = torch.linalg.qr(_random_frame(seed, B, S, k)).Q.to(dt)  # (B, S, k)
 
     if method == "jacobian":
         chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
@@ -419,9 +422,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     carry = torch.zeros(k, dtype=torch.float64)
     diag = torch.ones(chunk, B, k, dtype=dt)
     show = progress if progress is not None else T * B * S * S * k > 4e10 or T * B > 2_000_000
-    step_flops = B * (2 * S * S * k + 4 * S * k * k)
-    with _threads_for(step_flops), \
-            tqdm(total=T, disable=not show, desc="Lyapunov QR", unit="step", leave=False) as bar:
+    with tqdm(total=T, disable=not show, desc="Lyapunov QR", unit="step", leave=False) as bar:
         for t0 in range(0, T, chunk):
             t1 = min(T, t0 + chunk)
             C = t1 - t0
@@ -454,13 +455,27 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     return sums.numpy(), running, points
 
 
+def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
+    """Gaussian frames (B, S, k) from local generators, one stream per sample.
+
+    Column j of sample b is the same whatever k is (numpy draws sequentially), and QR keeps the
+    first columns of the frame independent of the later ones, so a run with k < S reproduces the
+    first k exponents of the full spectrum to rounding.
+    """
+    streams = np.random.SeedSequence(seed).spawn(B)
+    cols = np.stack([np.random.default_rng(ss).standard_normal((k, S)) for ss in streams])
+    return torch.from_numpy(cols).transpose(1, 2)  # (B, S, k)
+
+
 @contextlib.contextmanager
 def _threads_for(step_flops: float) -> Iterator[None]:
     """Run small per-step work on one thread, restoring torch's thread count afterwards.
 
-    A QR of a few-by-few frame is microseconds of work; splitting it across threads costs more
-    than it saves, and on a loaded machine a thread waiting for a busy core makes each step take
-    milliseconds (measured: 20-6000 us per batched 2x2 QR with 2 threads, 5-30 us with one).
+    The trajectory and the frame advance one step at a time. When a step is microseconds of
+    work (a QR of a few-by-few frame, a small recurrent step), splitting it across threads costs
+    more than it saves, and on a loaded machine a thread waiting for a busy core makes each step
+    take milliseconds (measured: 20-6000 us per batched 2x2 QR with 2 threads, 5-30 us with one;
+    a 200-unit tanh RNN ran 60x slower on 2 threads than on one).
     """
     before = torch.get_num_threads()
     if step_flops >= _SMALL_STEP_FLOPS or before == 1:
