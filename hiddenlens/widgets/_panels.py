@@ -161,8 +161,28 @@ def _n_steps(run: Run) -> int:
 
 # ---------------------------------------------------------------------- drawing
 def _window(ax: Any, view: View) -> None:
-    if view.window is not None:
-        ax.set_xlim(view.window[0], view.window[1] - 1)
+    """Show the steps of the window only, with the y-range fitted to what is visible."""
+    if view.window is None:
+        return
+    t0, t1 = view.window[0], view.window[1] - 1
+    ax.set_xlim(t0, max(t1, t0 + 1))
+    ys = []
+    for line in ax.get_lines():
+        x = np.asarray(line.get_xdata(), dtype=float)
+        y = np.asarray(line.get_ydata(), dtype=float)
+        if x.shape == y.shape and x.size > 1:  # curves over time, not reference lines
+            ys.append(y[(x >= t0) & (x <= t1)])
+    y = np.concatenate(ys) if ys else np.empty(0)
+    log = ax.get_yscale() == "log"
+    y = y[np.isfinite(y) & (y > 0)] if log else y[np.isfinite(y)]
+    if y.size:
+        lo, hi = float(y.min()), float(y.max())
+        if log:
+            pad = (hi / lo) ** 0.05 if hi > lo else 1.1
+            ax.set_ylim(lo / pad, hi * pad)
+        else:
+            pad = 0.05 * (hi - lo) if hi > lo else 0.5 * (abs(hi) or 1.0)
+            ax.set_ylim(lo - pad, hi + pad)
 
 
 def _draw_spectra(result, axes, view, run, deps):
