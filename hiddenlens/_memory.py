@@ -329,7 +329,7 @@ def memory_curve(
             "seed": seed,
         }
         if opts["method"] == "decoding":
-            return _decoding(trace, cols, opts, meta)
+            return _decoding(trace, cols, opts, meta, progress)
         if opts["method"] == "perturbation":
             return _perturbation(system, trace, cols, in_std, opts, meta)
         return _sensitivity(system, trace, cols, in_std, opts, meta, progress)
@@ -469,8 +469,8 @@ def _span(adjusted: np.ndarray, threshold: float) -> int:
 
 
 # ====================================================================== decoding
-def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any],
-              meta: dict[str, Any]) -> MemoryCurve:
+def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[str, Any],
+              progress: bool | None) -> MemoryCurve:
     B, T = trace.batch_size, trace.n_steps
     K = opts["max_lag"]
     t_start = max(opts["washout"], K)
@@ -496,7 +496,8 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any],
         chance = 1.0 / classes.size
     else:
         target = _Targets(inputs, b_idx, t_idx)
-    fold_scores, feature_scores, chosen = _ridge_cv(X, target, K, folds, opts["alphas"])
+    fold_scores, feature_scores, chosen = _ridge_cv(X, target, K, folds, opts["alphas"],
+                                                    progress)
     scores = fold_scores.mean(axis=0)
     adjusted = scores if chance is None else (scores - chance) / (1.0 - chance)
     base = base_spread = base_cap = None
@@ -507,7 +508,7 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any],
                              f"{t_start}; pass baseline_window <= {t_start} or a larger washout")
         window = np.stack([inputs[b_idx, t_idx - j] for j in range(w + 1)], axis=1)
         base_folds, _, _ = _ridge_cv(window.reshape(len(b_idx), -1), target, K, folds,
-                                     opts["alphas"])
+                                     opts["alphas"], progress=False)
         base, base_spread = base_folds.mean(axis=0), base_folds.std(axis=0)
         base_adj = base if chance is None else (base - chance) / (1.0 - chance)
         base_cap = float(np.clip(base_adj, 0, None).sum())
@@ -589,8 +590,8 @@ def _standardise(X_train: np.ndarray, X_test: np.ndarray) -> tuple[np.ndarray, n
 
 
 def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
-              folds: list[tuple[np.ndarray, np.ndarray]], alphas: np.ndarray
-              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+              folds: list[tuple[np.ndarray, np.ndarray]], alphas: np.ndarray,
+              progress: bool | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Cross-validated ridge readouts for all lags 0..K at once.
 
     NOTE: [One factorisation for every lag and penalty]
@@ -608,6 +609,8 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     feature_scores : (K + 1, I) R^2 per feature averaged over folds (categorical: NaN)
     chosen : (n_folds, K + 1) chosen penalty (mean over the lag's targets)
     """
+    from tqdm.auto import tqdm
+
     n_folds = len(folds)
     width = target.width
     categorical = target.classes is not None
@@ -616,7 +619,10 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     chosen = np.empty((n_folds, K + 1))
     # lags per block: keep the (N, m) target blocks near 16 M numbers
     per_block = max(1, int(16e6 // max(1, X.shape[0] * width)))
-    for f, (tr, te) in enumerate(folds):
+    work = X.shape[0] * X.shape[1] * (K + 1) * width * len(alphas) * len(folds)
+    show = progress if progress is not None else work > 5e10
+    for f, (tr, te) in enumerate(tqdm(folds, disable=not show, desc="decoding folds",
+                                      leave=False)):
         Xtr, Xte = _standardise(X[tr], X[te])
         Xtr -= Xtr.mean(axis=0)  # exact centring after rounding
         lam, V = np.linalg.eigh(Xtr.T @ Xtr)
