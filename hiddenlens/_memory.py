@@ -280,8 +280,8 @@ def memory_curve(
         state spread (root of the summed variance of the unperturbed states; perturbation only)
         or not at all.
     seed : int, default 0
-        Seed of the local random generator (probe inputs, folds' order is fixed, impulse
-        directions).
+        Seed of the local ``np.random.default_rng`` that draws the probe inputs and impulse
+        directions (the folds are fixed, not drawn); the global random generators are unused.
     h0 : Tensor or ndarray, optional
         Initial states, see :func:`hiddenlens.record`.
     progress : bool, optional
@@ -299,6 +299,11 @@ def memory_curve(
     than predicting the mean) counts as no memory. For a linear system with N states and one
     i.i.d. input, MC <= N. All lags are fitted together: one standardised state matrix and one
     eigendecomposition of its Gram matrix per fold serve every lag and every penalty.
+
+    Cautions: linear decoding gives a lower bound on what the state holds; in data mode read the
+    curve against ``baseline`` (autocorrelated inputs predict their own past); a probe-mode
+    curve depends on the probe distribution and ``scale``; the span threshold is a convention.
+    See docs/memory.md.
 
     References
     ----------
@@ -383,7 +388,10 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
     if alphas is None:
         alphas = np.array(DEFAULT_ALPHAS)
     else:
-        alphas = np.atleast_1d(np.asarray(alphas, dtype=float))
+        try:
+            alphas = np.atleast_1d(np.asarray(alphas, dtype=float))
+        except (TypeError, ValueError):
+            alphas = np.array([np.nan])
         if alphas.ndim != 1 or alphas.size == 0 or not np.all(np.isfinite(alphas)) \
                 or np.any(alphas <= 0):
             raise ValueError(f"alphas must be one positive number or a non-empty sequence of "
@@ -408,6 +416,10 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
                          f"system has input_size={system.input_size}")
     parts = given["parts"]
     if parts is not None:
+        if not isinstance(parts, (str, Sequence)):
+            raise TypeError(f"parts must be a part name or a list of them, got "
+                            f"{type(parts).__name__}; the system has parts "
+                            f"{', '.join(map(repr, system.parts))}")
         names = [parts] if isinstance(parts, str) else list(parts)
         unknown = [n for n in names if n not in system.parts]
         if not names or unknown:
@@ -638,14 +650,16 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
             Yc = Ytr - ybar
             A = P.T @ Yc  # (S, m)
             best = np.full(Y.shape[1], np.inf)
-            best_a = np.zeros(Y.shape[1])
+            best_a = np.full(Y.shape[1], alphas.max())  # kept if every error is NaN
             for a in alphas:
                 d = 1.0 / (lam + a)  # (S,)
-                inv = 1.0 / (1.0 - (1.0 / n + P2 @ d))  # 1 / (1 - h_ii), (n,)
+                with np.errstate(divide="ignore"):  # h_ii = 1: that penalty is never chosen
+                    inv = 1.0 / (1.0 - (1.0 / n + P2 @ d))  # 1 / (1 - h_ii), (n,)
                 loo = P @ (d[:, None] * A)  # fitted values, (n, m)
                 np.subtract(Yc, loo, out=loo)
-                loo *= inv[:, None]  # leave-one-out residuals
-                err = np.einsum("ij,ij->j", loo, loo)  # (m,)
+                with np.errstate(invalid="ignore", over="ignore"):
+                    loo *= inv[:, None]  # leave-one-out residuals
+                    err = np.einsum("ij,ij->j", loo, loo)  # (m,)
                 if categorical:  # one penalty per lag, shared by its class columns
                     err = np.repeat(err.reshape(len(lags), width).sum(axis=1), width)
                 better = err < best
@@ -867,6 +881,7 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
         spread=spread, samples=samples, capacity=float(scores.sum()),
         span=_span(scores, opts["threshold"]), threshold=opts["threshold"],
         score_name=_score_name("‖ds_t/dx_(t-k)‖", opts["normalize"]),
-        time_constant=_time_constant(scores, system.dtype), reference=math.exp(log_ref),
+        time_constant=_time_constant(scores, system.dtype),
+        reference=float(np.exp(np.float64(log_ref))) if log_ref < 709 else float("inf"),
         categorical=bool(opts["categorical"]), metadata=meta,
     )
