@@ -74,17 +74,16 @@ code{background:#f4f4f4;padding:0 .2em}
 
 
 # ---------------------------------------------------------------------- figures
-def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None) -> str:
+def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
+         left: float = 0.15) -> str:
     """Run ``draw(ax)`` on a fresh Agg figure and return it as a base64 PNG string."""
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=figsize, dpi=90)
+    fig = Figure(figsize=figsize, dpi=80)
+    # fixed margins: an automatic layout costs a second full draw of every figure
+    fig.subplots_adjust(left=left, right=0.95, bottom=0.14, top=0.9)
     ax = fig.add_subplot(projection=projection)
     draw(ax)
-    try:
-        fig.tight_layout()
-    except (ValueError, RuntimeError):  # 3-D axes and colorbars may refuse: keep the layout
-        pass
     buf = io.BytesIO()
     fig.savefig(buf, format="png", metadata={"Software": None})
     return base64.b64encode(buf.getvalue()).decode("ascii")
@@ -358,7 +357,9 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                f"{_figures_table(runs, comp)}</section>")
     # similarity
     if comp is not None and multi:
-        b64 = _png(lambda ax: plot_cka(comp.cka, comp.names, ax=ax), figsize=(5.6, 4.6))
+        width = max(len(n) for n in comp.names)
+        b64 = _png(lambda ax: plot_cka(comp.cka, comp.names, ax=ax), figsize=(6.0, 4.8),
+                   left=min(0.45, 0.06 + 0.016 * width))
         n_img += 1
         parts = ("top-layer hidden states" if comp.cka_parts == "output"
                  else "whole flat states")
