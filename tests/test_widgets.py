@@ -18,6 +18,7 @@ import torch
 pytest.importorskip("ipywidgets")
 
 import hiddenlens  # noqa: E402
+import hiddenlens._summary  # noqa: E402
 from example_models.sorting_line import SortingLineNet, make_inputs  # noqa: E402
 from hiddenlens._summary import analysis_function, key_figures, summary_sentence  # noqa: E402
 from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
@@ -107,6 +108,20 @@ def test_view_controls_redraw_without_recomputing(model, inputs, calls):
         seen.append(png)
     assert calls == {"pca": 1}
     assert view.computed == {"pca": 1}
+
+
+def test_spectra_sample_and_window_only_redraw(model, inputs, calls):
+    if "spectra" not in hiddenlens._summary.available_analyses():
+        pytest.skip("jacobian_spectra is not part of this installation")
+    view = explore(model, inputs, analyses=["spectra"], background=False)
+    seen = [view.images["spectra"]]
+    for control, value in ((view._sample, 2), (view._window, (10, 25)), (view._sample, None)):
+        control.value = value
+        assert view.images["spectra"] not in seen
+        seen.append(view.images["spectra"])
+    assert calls == {"spectra": 1}
+    view._panels["spectra"].options["k"].value = 2
+    assert calls == {"spectra": 2}
 
 
 def test_compute_option_recomputes_once_then_caches(model, inputs, calls):
