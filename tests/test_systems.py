@@ -309,7 +309,7 @@ def test_system_is_a_snapshot_of_the_weights(make, gen):
 
 
 # ---------------------------------------------------------------------------- step functions
-HENON_A, HENON_B = 1.4, 0.3  # the classic parameters (Hénon 1976, Commun. Math. Phys. 50, 69)
+HENON_A, HENON_B = 1.4, 0.3  # classic values, Hénon 1976 Commun. Math. Phys. (value from memory)
 
 
 def henon(s, x):
