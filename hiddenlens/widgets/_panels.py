@@ -193,7 +193,8 @@ def _draw_spectra(result, axes, view, run, deps):
 
 
 def _draw_gradient_flow(result, axes, view, run, deps):
-    kw = _accepted_kw(result.plot, sample=view.sample, samples=view.sample)
+    kw = _accepted_kw(result.plot, sample=view.sample, samples=view.sample,
+                      norm=view.extra.get("norm", "spectral"))
     result.plot(ax=axes[0], **kw)
 
 
@@ -258,7 +259,14 @@ register(Analysis(
                     tip="how many of the largest singular values of each step Jacobian"),),
     uses=frozenset({"sample", "window"})))
 register(Analysis(
-    "gradient_flow", "Gradient flow", _draw_gradient_flow, uses=frozenset({"sample"})))
+    "gradient_flow", "Gradient flow", _draw_gradient_flow,
+    options=(Option("max_lag", "max lag", lambda r: r.trace.n_steps - 1,
+                    high=lambda r: r.trace.n_steps - 1,
+                    tip="the longest lag T - t followed back from the last step"),),
+    views=(Option("norm", "norm", lambda r: "spectral",
+                  choices=lambda r: [("spectral", "spectral"), ("Frobenius", "frobenius")],
+                  tip="operator 2-norm or Frobenius norm of d s_T / d s_t"),),
+    uses=frozenset({"sample"}), part_option="parts"))
 register(Analysis(
     "lyapunov", "Lyapunov", _draw_lyapunov,
     options=(Option("k", "exponents", _default("lyapunov", "k", _state_size), high=_state_size,
