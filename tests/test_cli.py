@@ -33,6 +33,12 @@ def test_version_via_python_m():
     assert r.stdout.strip() == f"hiddenlens {hiddenlens.__version__}"
 
 
+def test_console_script_points_at_main():
+    tomllib = pytest.importorskip("tomllib")
+    meta = tomllib.loads((ROOT / "pyproject.toml").read_text())
+    assert meta["project"]["scripts"]["hiddenlens"] == "hiddenlens.cli:main"
+
+
 def test_no_command_prints_help(capsys):
     assert cli.main([]) == 2
     assert "report" in capsys.readouterr().err

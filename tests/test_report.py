@@ -163,6 +163,16 @@ def test_report_data_writes_non_finite_numbers_as_strings(inputs):
     json.dumps(doc, allow_nan=False)
 
 
+def test_report_modules_import_without_matplotlib():
+    import subprocess
+    import sys
+
+    code = ("import sys, hiddenlens._report, hiddenlens._compare, hiddenlens.cli; "
+            "print(sorted(m for m in ('matplotlib', 'ipywidgets', 'pandas') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
 def test_write_report_refuses_other_objects(tmp_path):
     with pytest.raises(TypeError, match="write_report takes"):
         write_report([1, 2], tmp_path / "x.html")
