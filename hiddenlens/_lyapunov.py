@@ -17,7 +17,7 @@ import numpy as np
 import torch
 
 from ._guard import preserved
-from ._jacobians import step_jacobians
+from ._jacobians import step_jacobians, step_jvp
 from ._record import as_system, initial_states
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
@@ -39,24 +39,23 @@ _SMALL_STEP_FLOPS = 2**21
 
 # NOTE: [Choosing between explicit Jacobians and JVPs]
 # Per step and sample, the explicit route costs one Jacobian (closed form for nn.RNN/GRU/LSTM:
-# a few S^2 elementwise operations; autograd for a step function: S reverse passes) plus the
-# product J Q, 2 S^2 k flops; the JVP route costs k forward-mode passes through the step plus a
-# fixed dispatch overhead per step (about a millisecond) that is not shared across steps, since
-# the frame of step t+1 needs the QR of step t. The QR is common to both. Measured in
-# benchmarks/bench_lyapunov.py: with closed-form Jacobians the explicit route is faster at every
-# size tried up to S=1024 (the overhead of the JVP route dominates, and J Q is one GEMM); for
-# step functions, whose Jacobians cost S backward passes, JVPs win once S is large and k small.
-_JVP_CALLABLE_MIN_STATE = 512
-_JVP_MODULE_MIN_STATE = 2048
-_JVP_MAX_K_FRACTION = 0.125
+# a few S^2 elementwise operations, memory-bound; autograd for a step function: S reverse
+# passes, batched over a chunk of steps) plus the product J Q (2 S^2 k flops); the JVP route
+# costs k tangents through the step (closed form: the gate weights applied to k vectors; a step
+# function: forward-mode autograd) plus a fixed dispatch overhead per step that cannot be shared
+# across steps, since the frame of step t+1 needs the QR of step t. The QR is common to both.
+# Measured in benchmarks/bench_lyapunov.py (B=1, float32, one thread): explicit Jacobians win
+# below S=512 at every k; from S=512 on, JVPs win for few exponents, up to k of about S/32 for
+# modules (whose Jacobians are cheap) and S/16 for step functions; for k near S explicit
+# Jacobians win or tie everywhere.
+_JVP_MIN_STATE = 512
+_JVP_MAX_K_FRACTION = {"module": 1 / 32, "callable": 1 / 16}
 
 
 def _choose_method(system: RecurrentSystem, k: int) -> str:
     S = system.state_size
-    min_state = _JVP_MODULE_MIN_STATE if system.is_module else _JVP_CALLABLE_MIN_STATE
-    if S >= min_state and k <= _JVP_MAX_K_FRACTION * S:
-        return "jvp"
-    return "jacobian"
+    fraction = _JVP_MAX_K_FRACTION["module" if system.is_module else "callable"]
+    return "jvp" if S >= _JVP_MIN_STATE and k <= fraction * S else "jacobian"
 
 
 # ---------------------------------------------------------------------- result
@@ -328,9 +327,9 @@ def lyapunov_spectrum(
     Cost per step and sample: the QR of an (S, k) frame, about 4 S k^2 flops, plus ``J Q``
     (2 S^2 k) and the Jacobian for the explicit route, or k forward-mode passes through the
     step for the JVP route. The explicit route holds the Jacobians of one chunk of steps
-    (about 32 MB in float32); ``method="jvp"`` holds none. ``"auto"`` uses JVPs only for large
-    states with few exponents (``k <= S/8`` and ``S >= 512`` for step functions, ``S >= 2048``
-    for modules with closed-form Jacobians), where they were measured to be faster.
+    (about 32 MB in float32); ``method="jvp"`` holds none. ``"auto"`` uses JVPs for large
+    states with few exponents (``S >= 512`` and ``k <= S/32`` for modules, ``k <= S/16`` for
+    step functions), where they were measured to be faster.
 
     The exponents of an input-driven system depend on the statistics of the inputs; exponents
     of a sampled flow are per step (divide by the step length). Stop the run with Ctrl-C at any
@@ -434,7 +433,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
                 if method == "jacobian":
                     Q = torch.matmul(J[j], Q)  # (B, S, k)
                 else:
-                    Q = _jvp_frame(system, prev[t], xt[t], Q)  # (B, S, k)
+                    Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
                 if _qr_due(t, warmup, qr_every, T):
                     Q, R = torch.linalg.qr(Q)
                     diag[j] = R.diagonal(dim1=-2, dim2=-1)
@@ -522,32 +521,6 @@ def _chunk_jacobians(system, prev, x):
             J[a:a + per_call] = step_jacobians(system, flat_prev[a:a + per_call],
                                                flat_x[a:a + per_call])
     return J.reshape(C, B, S, S)
-
-
-def _jvp_frame(system, s, x, Q):
-    """J Q without forming J: s (B, S), x (B, I), Q (B, S, k) -> (B, S, k).
-
-    NOTE: [Jacobian-vector products by two reverse passes]
-    With y = F(s) on the k tangents folded into the batch, g(u) = J^T u is linear in u, so the
-    reverse pass of g with cotangent q gives (J^T)^T q = J q. Measured against
-    torch.func.jvp (forward mode, tangents folded or vmapped): 1.5-3x faster here, because
-    forward mode pays per-op overhead for the zero tangents of the weights. The step only needs
-    ordinary (twice) differentiable torch operations.
-    """
-    B, S, k = Q.shape
-    s_rep = s.repeat_interleave(k, dim=0)  # (B*k, S), sample-major like the tangents
-    x_rep = x.repeat_interleave(k, dim=0)  # (B*k, I)
-    tangents = Q.transpose(1, 2).reshape(B * k, S)  # (B*k, S)
-    with torch.enable_grad():
-        s_rep.requires_grad_(True)
-        y = system.step(s_rep, x_rep)  # (B*k, S)
-        u = torch.zeros_like(y, requires_grad=True)
-        (g,) = torch.autograd.grad(y, s_rep, u, create_graph=True, allow_unused=True,
-                                   materialize_grads=True)  # J^T u, (B*k, S)
-        if not g.requires_grad:  # F does not depend on the state: J = 0
-            return torch.zeros_like(Q)
-        (jq,) = torch.autograd.grad(g, u, tangents, allow_unused=True, materialize_grads=True)
-    return jq.reshape(B, k, S).transpose(1, 2)  # (B, S, k)
 
 
 # ---------------------------------------------------------------------- checks
