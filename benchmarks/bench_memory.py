@@ -66,9 +66,10 @@ def main() -> None:
                 print(f"{label:48s} {t_mem:7.3f} s   recording {shape[0]}x{shape[1]} steps "
                       f"{t_rec:7.4f} s   ratio {t_mem / t_rec:7.0f}   capacity "
                       f"{curve.capacity:6.2f}   span {curve.span}")
-    torch.set_num_threads(default_threads)
+    torch.set_num_threads(1)
     with threadpool_limits(1):
         against_sklearn(system, rng)
+    torch.set_num_threads(default_threads)
 
 
 def against_sklearn(system, rng) -> None:
