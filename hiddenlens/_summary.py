@@ -191,6 +191,10 @@ def _call_options(name: str, fn: Callable[..., Any], defaults: Mapping[str, Any]
     names, var_kw = _accepted(fn)
     # a default budget the function does not know is dropped; a user's option is not
     opts = {k: v for k, v in defaults.items() if var_kw or k in names}
+    if name == "memory" and (user.get("inputs") is not None or user.get("mode") == "data"):
+        # the user's sequences set the size of a data-mode curve: no probe budget
+        opts.pop("n_steps", None)
+        opts.pop("n_sequences", None)
     unknown = [k for k in user if not (var_kw or k in names)]
     if unknown:
         raise ValueError(

@@ -71,6 +71,18 @@ def test_run_analyses_options_override_defaults(inputs):
     assert out["pca"].projected.shape == (3, 40, 2)
 
 
+def test_memory_in_data_mode_drops_the_probe_budget(inputs):
+    if "memory" not in available_analyses():
+        pytest.skip("memory_curve is not available")
+    model = _rnn()
+    out = run_analyses(model, inputs, which=["memory"],
+                       options={"memory": {"inputs": inputs, "max_lag": 3}})
+    assert "n_steps" not in out.options["memory"]
+    direct = hiddenlens.memory_curve(model, inputs, max_lag=3, seed=0)
+    assert out["memory"].mode == "data"
+    assert_allclose(out["memory"].scores, direct.scores)
+
+
 def test_run_analyses_refuses_bad_options(inputs):
     model = _rnn()
     with pytest.raises(ValueError, match="unknown analysis 'pcaa'"):
