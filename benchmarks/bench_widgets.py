@@ -85,7 +85,7 @@ def run(threads: int | None, repeats: int) -> None:
         computed = dict(view.computed)
         pca = view._panels["pca"]
         cases = [
-            ("sample", view._sample, [1, 2, 3, None]),
+            ("sample", view._sample, [1, 2, 3, "all"]),
             ("step window", view._window, [(0, 250), (100, 400), (250, 500), (0, 500)]),
             ("colour by", pca.views["color_by"], ["sample", "time"]),
             ("2-D / 3-D", pca.views["dims"], [3, 2]),
@@ -101,7 +101,7 @@ def run(threads: int | None, repeats: int) -> None:
             t0 = time.perf_counter()
             assert view.wait(600)
             print(f"spectra tab computed and drawn in {time.perf_counter() - t0:.2f} s")
-            wall, cpu = redraws(view, view._sample, [1, 2, None], repeats)
+            wall, cpu = redraws(view, view._sample, [1, 2, "all"], repeats)
             print(f"redraw on 'sample' (spectra tab): median {wall * 1e3:6.1f} ms wall, "
                   f"{cpu * 1e3:6.1f} ms CPU")
             computed = dict(view.computed)

@@ -100,7 +100,7 @@ def test_view_controls_redraw_without_recomputing(model, inputs, calls):
     panel = view._panels["pca"]
     for control, value in ((view._sample, 1), (view._window, (5, 30)),
                            (panel.views["color_by"], "sample"), (panel.views["dims"], 3),
-                           (view._sample, None)):
+                           (view._sample, "all")):
         control.value = value
         png = view.images["pca"]
         assert png.startswith(PNG_MAGIC)
@@ -115,7 +115,7 @@ def test_spectra_sample_and_window_only_redraw(model, inputs, calls):
         pytest.skip("jacobian_spectra is not part of this installation")
     view = explore(model, inputs, analyses=["spectra"], background=False)
     seen = [view.images["spectra"]]
-    for control, value in ((view._sample, 2), (view._window, (10, 25)), (view._sample, None)):
+    for control, value in ((view._sample, 2), (view._window, (10, 25)), (view._sample, "all")):
         control.value = value
         assert view.images["spectra"] not in seen
         seen.append(view.images["spectra"])

@@ -161,7 +161,7 @@ class Board(widgets.VBox):
         controls = row(self._shared)
 
         self.children = [self._title, self._summary, controls, self._tabs, status_row]
-        self.layout = widgets.Layout(width="100%", max_width="980px")
+        self.layout = widgets.Layout(width="100%", max_width="980px", padding="2px 6px")
         self.add_class("hiddenlens-board")
 
         self._tabs.observe(lambda _: self._guard(self._on_tab), names="selected_index")

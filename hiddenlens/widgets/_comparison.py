@@ -73,7 +73,7 @@ class Comparison(Board):
                        for n in names}
         shown_box = row([widgets.Label("runs:"), *self._shown.values()], space="8px")
         self._sample = widgets.Dropdown(
-            options=[("all", None)] + [(str(b), b) for b in range(B)], value=None,
+            options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
             description="sample", layout=widgets.Layout(width="140px"),
             style={"description_width": "initial"})
         self._window = widgets.IntRangeSlider(
@@ -120,7 +120,8 @@ class Comparison(Board):
         t0, t1 = self._window.value
         t0 = min(t0, T - 1)
         window = None if (t0, t1) == (0, T) else (t0, max(t1, t0 + 1))
-        return View(sample=self._sample.value, window=window,
+        sample = None if self._sample.value == "all" else self._sample.value
+        return View(sample=sample, window=window,
                     extra={k: w.value for k, w in panel.views.items()})
 
     def _update_shared_state(self) -> None:

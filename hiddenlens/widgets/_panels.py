@@ -254,7 +254,7 @@ _COLOR = Option("color_by", "colour by", lambda run: "time",
                 + ([("label", "label")] if run.labels is not None else []))
 
 register(Analysis(
-    "spectra", "Jacobian spectra", _draw_spectra,
+    "spectra", "Spectra", _draw_spectra,
     options=(Option("k", "top k", _default("spectra", "k", _state_size), high=_state_size,
                     tip="how many of the largest singular values of each step Jacobian"),),
     uses=frozenset({"sample", "window"})))
@@ -276,7 +276,7 @@ register(Analysis(
                     tip="leading steps that advance the frame without counting")),
     n_axes=lambda view: (2, None)))
 register(Analysis(
-    "pca", "Trajectories (PCA)", _draw_pca, views=(_DIMS, _COLOR),
+    "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
     uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims))
 register(Analysis(
     "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
@@ -288,7 +288,7 @@ register(Analysis(
                     tip="the constant input under which points are fixed")),
     needs=("pca",), n_axes=_dims, prepare=_held_input))
 register(Analysis(
-    "memory", "Memory span", _draw_memory,
+    "memory", "Memory", _draw_memory,
     options=(Option("method", "method", lambda r: "decoding",
                     choices=lambda r: [("decoding", "decoding"),
                                        ("perturbation", "perturbation"),
