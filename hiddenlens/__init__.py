@@ -44,9 +44,9 @@ _LAZY = {
 __all__ = ["__version__", *_LAZY]
 
 if TYPE_CHECKING:  # pragma: no cover - for type checkers and IDEs only
-    from ._record import NonFiniteStateWarning, record
-    from ._systems import LayerWeights, RecurrentSystem, wrap
-    from ._trace import Trace, load_trace
+    from ._record import NonFiniteStateWarning, record  # noqa: F401
+    from ._systems import LayerWeights, RecurrentSystem, wrap  # noqa: F401
+    from ._trace import Trace, load_trace  # noqa: F401
 
 
 def __getattr__(name: str) -> Any:

@@ -7,7 +7,8 @@ from typing import Any
 __all__ = ["get_axes", "time_colors"]
 
 
-def get_axes(ax: Any = None, *, projection: str | None = None, figsize: tuple[float, float] = (6, 4)):
+def get_axes(ax: Any = None, *, projection: str | None = None,
+             figsize: tuple[float, float] = (6, 4)):
     """Return ``ax`` or a new Axes (3-D when ``projection="3d"``) on a new pyplot figure."""
     if ax is not None:
         if projection == "3d" and getattr(ax, "name", "") != "3d":
