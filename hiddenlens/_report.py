@@ -124,6 +124,37 @@ def _result_pngs(analysis: str, result: Any, run: Mapping[str, Any], *, extras: 
     return out
 
 
+def _setting(analysis: str, results: Mapping[str, Any]) -> str:
+    """How an analysis was set up, in words (what its cautions depend on); '' if unknown."""
+    try:
+        if analysis == "memory":
+            modes = {getattr(r, "mode", None) for r in results.values()}
+            if modes == {"probe"}:
+                r = next(iter(results.values()))
+                meta = r.metadata or {}
+                return (f"Measured in probe mode: i.i.d. Gaussian inputs of standard deviation "
+                        f"{meta.get('scale', 1.0):g} on every feature, {meta.get('n_sequences')} "
+                        f"sequences of {meta.get('n_steps')} steps (not the inputs above); "
+                        f"{r.method} method, span threshold {r.threshold:g}.")
+            if modes == {"data"}:
+                return "Measured in data mode on the inputs above; read it against the baseline."
+        if analysis == "fixed_points":
+            xs = [np.asarray(r.x) for r in results.values()]
+            const = "x* = 0 on every feature" if not any(np.any(x) for x in xs) else \
+                "the given constant input x*"
+            starts = sorted({int(r.n_starts) for r in results.values()})
+            return (f"Constant input {const}; {', '.join(map(str, starts))} starting states "
+                    "sampled from the recorded states.")
+        if analysis == "lyapunov":
+            r = next(iter(results.values()))
+            return (f"QR method driven by the inputs above: {r.warmup} warm-up steps, then "
+                    f"{r.n_steps} counted steps per sequence; exponents are the mean over "
+                    "sequences, natural log per step.")
+    except (AttributeError, TypeError, ValueError):
+        return ""
+    return ""
+
+
 def _img(b64: str, caption: str) -> str:
     alt = html.escape(caption, quote=True)
     return (f'<figure><img src="data:image/png;base64,{b64}" alt="{alt}">'
@@ -381,9 +412,11 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                 out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
                            f'<p class="note">Skipped \u2014 {_esc(reason)}</p></section>')
             continue
-        out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
-                   f'<p class="caution">{_esc(CAUTIONS[a])}</p>')
         present = {n: r[a] for n, r in runs.items() if a in r}
+        setting = _setting(a, present)
+        out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
+                   + (f"<p>{_esc(setting)}</p>" if setting else "")
+                   + f'<p class="caution">{_esc(CAUTIONS[a])}</p>')
         if multi:
             if progress:
                 progress(f"figure: {a} (overlay)")

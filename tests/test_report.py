@@ -95,6 +95,14 @@ def test_report_states_cautions_and_inputs(single):
     for c in GENERAL_CAUTIONS[:-1]:
         assert c.replace("'", "&#x27;") in page
     assert "2 sequences of 30 steps with 3 input features" in page
+    sections = _sections(page)
+    if "memory" in sections:
+        assert "Measured in probe mode" in sections["memory"]
+    if "fixed_points" in sections:
+        assert "Constant input x* = 0 on every feature; 8 starting states" in \
+            sections["fixed_points"]
+    if "lyapunov" in sections:
+        assert "7 warm-up steps" in sections["lyapunov"]  # min(100, T // 4), T = 30
     assert doc["inputs"]["shape"] == [2, 30, 3]
     assert doc["inputs"]["description"].startswith("2 sequences of 30 steps")
 
