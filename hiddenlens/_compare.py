@@ -357,9 +357,16 @@ def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw
             elif analysis == "gradient_flow":
                 y = _median_over_leading(r.norms)  # (L,)
                 lags = np.asarray(r.lags, dtype=float).reshape(-1)[: y.size]
-                ax.semilogy(lags, y[: lags.size], label=n, **kw)
+                logs = getattr(r, "log_norms", None)
+                if logs is not None and not np.all(np.isfinite(y) & (y > 0)):
+                    # beyond float64's range: draw the exact logs on a linear axis
+                    y = _median_over_leading(logs) / np.log(10.0)
+                    ax.plot(lags, y[: lags.size], label=n, **kw)
+                    ax.set_ylabel("log10 of median ||d s_T / d s_t||")
+                else:
+                    ax.semilogy(lags, y[: lags.size], label=n, **kw)
+                    ax.set_ylabel("median ||d s_T / d s_t||")
                 ax.set_xlabel("lag T - t (steps)")
-                ax.set_ylabel("median ||d s_T / d s_t||")
             elif analysis == "lyapunov":
                 y = np.asarray(r.exponents, dtype=float).reshape(-1)
                 ax.plot(np.arange(1, y.size + 1), y, marker=".", label=n, **kw)

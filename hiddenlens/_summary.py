@@ -536,7 +536,8 @@ def array_summaries(results: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
     -------
     dict
         ``spectra``: ``singular_values_median`` (k,), median over samples and steps per index;
-        ``gradient_flow``: ``lags`` (L,), ``norms_median`` (L,), median over every other axis;
+        ``gradient_flow``: ``lags`` (L,), ``norms_median`` (L,), median over every other axis,
+        and ``log_norms_median`` (natural log, exact where the norms leave float64's range);
         ``lyapunov``: ``exponents`` (k,); ``pca``: ``explained_variance_ratio`` (n,);
         ``fixed_points``: ``stability`` (n,), ``spectral_radius`` (n,), the largest eigenvalue
         modulus at each point; ``memory``: ``lags`` (L,), ``scores`` (L,).
@@ -548,6 +549,8 @@ def array_summaries(results: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
     r = results.get("gradient_flow")
     if r is not None:
         out["gradient_flow"] = {"lags": _floats(r.lags), "norms_median": _median_curve(r.norms)}
+        if getattr(r, "log_norms", None) is not None:
+            out["gradient_flow"]["log_norms_median"] = _median_curve(r.log_norms)
     r = results.get("lyapunov")
     if r is not None:
         out["lyapunov"] = {"exponents": _floats(r.exponents)}
