@@ -24,8 +24,10 @@ Every model holds exactly one batch-first recurrent layer (``model.rnn``) and a 
 ================  ====================================================================
 
 The three ``rnn-gain*`` runs differ only in the gain g of the recurrent initialisation
-(W_hh drawn from N(0, g**2 / 32)) and were trained briefly, so the gain still shows in the
-trained dynamics. Retrain with ``python -m example_models.train``.
+(W_hh starts as g times a random orthogonal matrix, spectral radius exactly g). Their
+recurrent weights were trained with a small step size, so the gain still shows in the trained
+dynamics: contractive at 0.5, expansive and chaotic at 2.0. Retrain with
+``python -m example_models.train``.
 
 Examples
 --------
@@ -83,7 +85,7 @@ RUNS: Mapping[str, Run] = MappingProxyType(
         "rnn-gain1.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain1.0.pt"),
         "rnn-gain2.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain2.0.pt"),
         "gru": Run("example_models.sorting_line:make_gru", "gru.pt"),
-        "greenhouse-lstm": Run("example_models.greenhouse:make_model", "greenhouse.pt"),
+        "greenhouse-lstm": Run("example_models.greenhouse:make_model", "greenhouse-lstm.pt"),
     }
 )
 

@@ -34,15 +34,18 @@ class RecurrentReadout(nn.Module):
     hidden_size : int
         State size S (for the LSTM, the size of h and of c).
     gain : float
-        Every recurrent block of ``weight_hh_l0`` (one per gate) is drawn from N(0, gain**2 / S),
-        so a tanh RNN starts with a spectral radius close to ``gain`` (circular law).
+        Every recurrent block of ``weight_hh_l0`` (one per gate) starts as ``gain`` times a
+        random orthogonal matrix, so each block starts with all singular values and all
+        eigenvalue moduli equal to ``gain``: spectral radius exactly ``gain``.
+    input_std : float
+        Input weights are drawn from N(0, input_std**2).
     seed : int
         Seed of the private generator used for initialisation.
 
     Notes
     -----
-    Input weights are drawn from N(0, 1 / I), readout weights from N(0, 1 / S); all biases
-    start at zero except the LSTM forget gate bias, which starts at 1 (common practice).
+    Readout weights are drawn from N(0, 1 / S). All biases start at zero except the LSTM
+    forget gate bias, which starts at 1 (common practice).
     """
 
     def __init__(
@@ -53,6 +56,7 @@ class RecurrentReadout(nn.Module):
         cell: str,
         hidden_size: int,
         gain: float,
+        input_std: float,
         seed: int,
     ) -> None:
         super().__init__()
@@ -76,15 +80,15 @@ class RecurrentReadout(nn.Module):
         self.rnn = CELLS[cell](n_inputs, hidden_size, batch_first=True, device="meta", **kwargs)
         self.readout = nn.Linear(hidden_size, n_outputs, device="meta")
         self.to_empty(device="cpu")
-        self._initialise(float(gain), int(seed))
+        self._initialise(float(gain), float(input_std), int(seed))
 
     @torch.no_grad()
-    def _initialise(self, gain: float, seed: int) -> None:
+    def _initialise(self, gain: float, input_std: float, seed: int) -> None:
         gen = torch.Generator().manual_seed(seed)
         n_in, size = self.rnn.input_size, self.rnn.hidden_size
         n_gates = len(GATE_NAMES[self.cell])
-        w_ih = torch.randn(n_gates * size, n_in, generator=gen) / math.sqrt(n_in)
-        w_hh = torch.randn(n_gates * size, size, generator=gen) * (gain / math.sqrt(size))
+        w_ih = torch.randn(n_gates * size, n_in, generator=gen) * input_std
+        w_hh = torch.cat([gain * _random_orthogonal(size, gen) for _ in range(n_gates)])
         self.rnn.weight_ih_l0.copy_(w_ih)
         self.rnn.weight_hh_l0.copy_(w_hh)
         self.rnn.bias_ih_l0.zero_()
@@ -120,6 +124,14 @@ class RecurrentReadout(nn.Module):
         self._check_inputs(x)
         states, _ = self.rnn(x)  # (B, T, S)
         return self.readout(states)  # (B, T, n_out)
+
+
+def _random_orthogonal(size: int, gen: torch.Generator) -> torch.Tensor:
+    """Haar-distributed orthogonal matrix: QR of a Gaussian matrix with the signs of R's
+    diagonal moved into Q (Mezzadri 2007, "How to generate random matrices from the classical
+    compact groups")."""
+    q, r = torch.linalg.qr(torch.randn(size, size, generator=gen, dtype=torch.float64))
+    return (q * torch.sign(torch.diagonal(r))).to(torch.float32)  # (S, S)
 
 
 def recurrent_spectral_radii(model: RecurrentReadout) -> dict[str, float]:

@@ -168,7 +168,7 @@ class GreenhouseNet(RecurrentReadout):
     hidden_size : int
         State size S.
     gain : float, keyword-only
-        Recurrent weight blocks start as N(0, gain**2 / S); see ``RecurrentReadout``.
+        Each recurrent weight block starts as ``gain`` times a random orthogonal matrix.
     seed : int, keyword-only
         Seed of the private initialisation generator.
 
@@ -178,9 +178,11 @@ class GreenhouseNet(RecurrentReadout):
     def __init__(
         self, cell: str = "lstm", hidden_size: int = 32, *, gain: float = 1.0, seed: int = 0
     ) -> None:
-        super().__init__(N_INPUTS, 1, cell=cell, hidden_size=hidden_size, gain=gain, seed=seed)
+        super().__init__(
+            N_INPUTS, 1, cell=cell, hidden_size=hidden_size, gain=gain, input_std=1.0, seed=seed
+        )
 
 
-def make_model(*, seed: int = 0) -> GreenhouseNet:
+def make_model(*, gain: float = 1.0, seed: int = 0) -> GreenhouseNet:
     """Untrained ``nn.LSTM`` greenhouse model with 32 states."""
-    return GreenhouseNet("lstm", 32, seed=seed)
+    return GreenhouseNet("lstm", 32, gain=gain, seed=seed)
