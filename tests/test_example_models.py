@@ -1,0 +1,313 @@
+"""Tests for example_models: shipped runs, task generators, factories and the training script."""
+
+from __future__ import annotations
+
+import importlib
+import inspect
+import json
+import math
+
+import numpy as np
+import pytest
+import torch
+from scipy import signal, stats
+from sklearn.metrics import accuracy_score, r2_score
+from torch import nn
+
+import example_models
+from example_models import (
+    RUNS,
+    list_runs,
+    load_run,
+    make_run_inputs,
+    probe_inputs_path,
+    weights_path,
+)
+from example_models import greenhouse as gh
+from example_models import sorting_line as sl
+from example_models._nets import recurrent_spectral_radii
+from example_models.train import RECIPES, fit, largest_lyapunov
+
+SORTING_RUNS = [name for name in RUNS if RUNS[name].factory.startswith("example_models.sorting")]
+RECORD_PATH = weights_path(list_runs()[0]).parent / "training_record.json"
+
+
+def _factory(name):
+    module, _, attr = RUNS[name].factory.partition(":")
+    return getattr(importlib.import_module(module), attr)
+
+
+@pytest.fixture(scope="module")
+def models():
+    return {name: load_run(name) for name in RUNS}
+
+
+@pytest.fixture(scope="module")
+def sorting_eval():
+    # Fresh inputs: training used data seeds 10_000 and up, its report seed 1.
+    return sl.make_dataset(64, 200, seed=0)
+
+
+def test_run_names_and_order():
+    assert list_runs() == list(RUNS)
+    assert list_runs() == ["rnn-gain0.5", "rnn-gain1.0", "rnn-gain2.0", "gru", "greenhouse-lstm"]
+    assert set(RECIPES) == set(RUNS)
+    with pytest.raises(TypeError):
+        RUNS["extra"] = RUNS["gru"]  # read-only mapping
+
+
+@pytest.mark.parametrize("name", list(RUNS))
+def test_weights_load_with_weights_only(name):
+    # torch.load(weights_only=True) is torch's restricted unpickler for untrusted files.
+    state = torch.load(weights_path(name), map_location="cpu", weights_only=True)
+    model = load_run(name)
+    assert isinstance(model, nn.Module)
+    assert not model.training
+    loaded = model.state_dict()
+    assert loaded.keys() == state.keys()
+    for key, value in state.items():
+        assert torch.equal(loaded[key], value), key
+    recurrent = [m for m in model.modules() if isinstance(m, nn.RNNBase)]
+    assert len(recurrent) == 1
+    assert recurrent[0].batch_first
+    assert 32 <= recurrent[0].hidden_size <= 48
+
+
+def test_shipped_files_are_small():
+    total = sum(weights_path(name).stat().st_size for name in RUNS)
+    print(f"weights: {total} bytes in total")
+    assert total < 300_000
+    assert probe_inputs_path().stat().st_size < 200_000
+
+
+@pytest.mark.parametrize("name", list(RUNS))
+def test_forward_on_make_inputs(models, name):
+    model = models[name]
+    x = torch.from_numpy(make_run_inputs(name, 3, 60, seed=5))  # (B, T, I)
+    with torch.no_grad():
+        y = model(x)
+    n_out = 3 if name in SORTING_RUNS else 1
+    assert y.shape == (3, 60, n_out)
+    assert y.dtype == torch.float32
+    assert torch.isfinite(y).all()
+    # Unbatched (T, I) input, as nn.RNN allows, gives the first sequence's outputs.
+    with torch.no_grad():
+        y0 = model(x[0])
+    torch.testing.assert_close(y0, y[0], rtol=1e-5, atol=1e-5)
+
+
+def test_default_input_shapes():
+    x = sl.make_inputs()
+    assert x.shape == (16, 200, 5) and x.dtype == np.float32
+    g = gh.make_inputs()
+    assert g.shape == (16, 300, 3) and g.dtype == np.float32
+    assert make_run_inputs("greenhouse-lstm").shape == (16, 300, 3)
+    assert make_run_inputs("gru", 2).shape == (2, 200, 5)
+
+
+@pytest.mark.parametrize("make", [sl.make_inputs, gh.make_inputs])
+def test_inputs_are_deterministic_for_a_seed(make):
+    a = make(4, 80, seed=7)
+    b = make(4, 80, seed=7)
+    np.testing.assert_array_equal(a, b)
+    assert not np.array_equal(a, make(4, 80, seed=8))
+
+
+def test_sorting_line_trials_follow_the_scenario():
+    data = sl.make_dataset(32, 200, seed=3)
+    cues = np.argwhere(data.targets != sl.IGNORE)
+    assert len(cues) > 32 * 4  # several crates per sequence
+    for b, t in cues:
+        delay = data.delays[b, t]
+        assert 2 <= delay <= 40
+        assert data.inputs[b, t, 3] > 0.5  # gate cue
+        tag = data.inputs[b, t - delay, :3]
+        assert int(np.argmax(tag)) == data.targets[b, t]
+        assert tag.max() > 0.5
+    # Cue channel is high exactly at the scored steps (sensor noise std 0.05).
+    np.testing.assert_array_equal(data.inputs[..., 3] > 0.5, data.targets != sl.IGNORE)
+    assert set(np.unique(data.targets)) == {sl.IGNORE, 0, 1, 2}
+
+
+def test_input_functions_reject_bad_arguments():
+    with pytest.raises(ValueError, match="n_sequences=0 is not an integer"):
+        sl.make_inputs(0)
+    with pytest.raises(ValueError, match="max_delay=3 is below min_delay=5"):
+        sl.make_dataset(2, 50, min_delay=5, max_delay=3)
+    with pytest.raises(ValueError, match="n_steps=2.5 is not a positive integer"):
+        gh.make_inputs(2, 2.5)
+
+
+@pytest.mark.parametrize("name", list(RUNS))
+def test_factories_take_no_arguments(name):
+    factory = _factory(name)
+    params = inspect.signature(factory).parameters.values()
+    assert all(p.default is not inspect.Parameter.empty for p in params)
+    model = factory()
+    assert isinstance(model, nn.Module)
+    assert model.state_dict().keys() == load_run(name).state_dict().keys()
+
+
+def test_factories_are_seeded():
+    a, b = sl.make_gru(), sl.make_gru()
+    for (key, p), q in zip(a.state_dict().items(), b.state_dict().values(), strict=True):
+        assert torch.equal(p, q), key
+    assert not torch.equal(sl.make_gru(seed=1).rnn.weight_hh_l0, a.rnn.weight_hh_l0)
+
+
+def test_loading_and_factories_leave_global_rng_untouched():
+    torch_before = torch.get_rng_state()
+    # Reading numpy's legacy global state is the point here: it must not move.
+    numpy_before = np.random.get_state()[1].copy()  # noqa: NPY002
+    for name in RUNS:
+        load_run(name)
+        _factory(name)()
+        make_run_inputs(name, 2, 30, seed=1)
+    sl.SortingLineNet("gru", 40, gain=2.0)
+    gh.GreenhouseNet("rnn", 32)
+    assert torch.equal(torch_before, torch.get_rng_state())
+    np.testing.assert_array_equal(numpy_before, np.random.get_state()[1])  # noqa: NPY002
+
+
+def test_unknown_run_name_lists_available_runs():
+    with pytest.raises(KeyError, match="available runs: rnn-gain0.5, rnn-gain1.0"):
+        load_run("rnn-gain3.0")
+    with pytest.raises(KeyError, match="greenhouse-lstm"):
+        weights_path("nope")
+    with pytest.raises(TypeError, match="run name must be a str"):
+        load_run(3)
+
+
+@pytest.mark.parametrize("name", SORTING_RUNS)
+def test_trained_sorting_runs_beat_chance(models, sorting_eval, name):
+    data = sorting_eval
+    acc = sl.accuracy(models[name], data.inputs, data.targets)
+    mask = data.targets != sl.IGNORE
+    with torch.no_grad():
+        pred = models[name](torch.from_numpy(data.inputs)).argmax(-1).numpy()
+    # Oracle for the scoring itself: scikit-learn's accuracy_score on the cue steps.
+    assert acc == pytest.approx(accuracy_score(data.targets[mask], pred[mask]))
+    n = int(mask.sum())
+    # One-sided exact binomial test against guessing among 3 bins (scipy.stats.binomtest).
+    p_value = stats.binomtest(round(acc * n), n, 1 / 3, alternative="greater").pvalue
+    print(f"{name}: accuracy {acc:.3f} on {n} fresh decisions (chance 0.333), p = {p_value:.1e}")
+    assert p_value < 1e-6
+    assert acc > 0.42
+
+
+def test_gain_shapes_memory_span(models, sorting_eval):
+    data = sorting_eval
+    short = (data.delays >= 2) & (data.delays <= 4)
+    long = data.delays >= 20
+
+    def acc(name, where):
+        return sl.accuracy(models[name], data.inputs, data.targets, where=where)
+
+    # Designed contrast of the three runs: all remember a few steps; only gain 1.0 holds the
+    # tag over 20-40 steps.
+    for name in ("rnn-gain0.5", "rnn-gain1.0", "rnn-gain2.0"):
+        assert acc(name, short) > 0.6, name
+    assert acc("rnn-gain0.5", long) < 0.45
+    assert acc("rnn-gain2.0", long) < 0.45
+    assert acc("rnn-gain1.0", long) > 0.7
+    assert acc("gru", data.targets != sl.IGNORE) > 0.95
+
+
+def test_spectral_radii_follow_the_gain(models):
+    radii = {}
+    for name in ("rnn-gain0.5", "rnn-gain1.0", "rnn-gain2.0"):
+        w_hh = models[name].rnn.weight_hh_l0.detach().double()
+        # Oracle: torch.linalg.eigvals beside numpy.linalg.eigvals inside the helper.
+        radius = float(torch.linalg.eigvals(w_hh).abs().max())
+        assert recurrent_spectral_radii(models[name])["h"] == pytest.approx(radius, rel=1e-9)
+        radii[name] = radius
+    assert radii["rnn-gain0.5"] < 1.0 < radii["rnn-gain2.0"]
+    assert radii["rnn-gain0.5"] < radii["rnn-gain1.0"] < radii["rnn-gain2.0"]
+
+
+def test_training_record_matches_shipped_weights(models):
+    record = json.loads(RECORD_PATH.read_text())["runs"]
+    assert list(record) == list(RUNS)
+    for name, figures in record.items():
+        radii = recurrent_spectral_radii(models[name])
+        assert radii == pytest.approx(figures["spectral_radius"], rel=1e-6), name
+        assert figures["factory"] == RUNS[name].factory
+
+
+@pytest.mark.parametrize("gain", [0.5, 1.0, 2.0])
+def test_initial_recurrent_blocks_are_scaled_orthogonal(gain):
+    # An orthogonal matrix has all singular values 1 (numpy.linalg.svd as oracle).
+    for model in (sl.make_tanh_rnn(gain=gain), sl.make_gru(gain=gain), gh.make_model(gain=gain)):
+        w_hh = model.rnn.weight_hh_l0.detach().double().numpy()
+        size = model.rnn.hidden_size
+        for k in range(w_hh.shape[0] // size):
+            singular = np.linalg.svd(w_hh[k * size : (k + 1) * size], compute_uv=False)
+            np.testing.assert_allclose(singular, gain, rtol=1e-5)
+
+
+def test_largest_lyapunov_of_a_linear_contraction():
+    # Near the fixed point 0 (no input, no bias) tanh is the identity to first order, so the
+    # exponent is log of the common modulus of W's singular values: log(0.5)
+    # (common practice: Lyapunov exponents of a linear map).
+    model = sl.make_tanh_rnn(gain=0.5)
+    x = np.zeros((2, 80, 5), dtype=np.float32)
+    assert largest_lyapunov(model, x, burn_in=10) == pytest.approx(math.log(0.5), abs=1e-6)
+
+
+def test_greenhouse_linear_case_matches_lfilter():
+    drivers = gh.make_inputs(3, 120, seed=2).astype(np.float64)
+    drivers[..., 1] = 0.0  # vent shut
+    params = gh.GreenhouseParams(soil_coupling=0.0)
+    air = gh.air_temperature(drivers, params=params)
+    # Without vent and soil the heat balance is a first-order leaky integrator:
+    # A[t] = (1 - 1/tau) A[t-1] + drive[t] / tau, i.e. scipy.signal.lfilter([1/tau], [1, 1/tau-1]).
+    drive = params.sun_gain * drivers[..., 0] + params.heater_gain * drivers[..., 2]
+    tau = params.tau
+    expected = signal.lfilter([1.0 / tau], [1.0, 1.0 / tau - 1.0], drive, axis=1)
+    np.testing.assert_allclose(air, expected, rtol=1e-10, atol=1e-12)
+
+
+def test_greenhouse_run_tracks_temperature(models):
+    data = gh.make_dataset(16, 300, seed=0)
+    with torch.no_grad():
+        pred = models["greenhouse-lstm"](torch.from_numpy(data.inputs)).numpy()
+    # Oracle: scikit-learn's r2_score over all steps.
+    r2 = r2_score(data.targets.reshape(-1), pred.reshape(-1))
+    print(f"greenhouse-lstm: R^2 {r2:.4f} on fresh inputs")
+    assert r2 > 0.98
+
+
+def test_forward_rejects_bad_inputs(models):
+    model = models["gru"]
+    with pytest.raises(ValueError, match=r"expects \(B, T, 5\)"):
+        model(torch.zeros(2, 10, 4))
+    with pytest.raises(TypeError, match="takes a torch.Tensor"):
+        model(np.zeros((2, 10, 5), dtype=np.float32))
+    with pytest.raises(TypeError, match="float32 parameters"):
+        model(torch.zeros(2, 10, 5, dtype=torch.float64))
+    with pytest.raises(ValueError, match="cell='conv' is not a known recurrent layer"):
+        sl.SortingLineNet("conv")
+    with pytest.raises(ValueError, match="gain=-1.0 is not a finite positive number"):
+        sl.make_tanh_rnn(gain=-1.0)
+
+
+def test_probe_inputs_file_matches_generator():
+    with np.load(probe_inputs_path(), allow_pickle=False) as stored:
+        np.testing.assert_array_equal(stored["inputs"], sl.make_inputs(16, 200, seed=0))
+
+
+def test_training_is_deterministic_and_leaves_global_rng_alone():
+    torch_before = torch.get_rng_state()
+    recipe = RECIPES["rnn-gain2.0"]
+    a = fit(recipe, steps=3)
+    b = fit(recipe, steps=3)
+    for key, value in a.state_dict().items():
+        assert torch.equal(value, b.state_dict()[key]), key
+    assert not torch.equal(a.rnn.weight_ih_l0, recipe.factory(gain=2.0).rnn.weight_ih_l0)
+    assert torch.equal(torch_before, torch.get_rng_state())
+
+
+def test_package_docstring_describes_the_scenario():
+    doc = example_models.__doc__
+    for word in ("Sorting line", "Greenhouse", "rnn-gain2.0", "python -m example_models.train"):
+        assert word in doc
