@@ -1,6 +1,8 @@
 """How long `hiddenlens demo` takes from the shell, with 1 thread and with torch's default.
 
-The target is under 60 s on 2 cores, start-up of the interpreter included. Each configuration runs
+The target is under 60 s on 2 cores, start-up of the interpreter included. CPU seconds (user +
+system over all threads) are printed too: unlike wall time they hardly change when other work
+shares the machine, so compare them across runs. Each configuration runs
 the real command in a fresh process (so imports count), then reads the JSON it wrote to split the
 time into analyses (per analysis, summed over runs) and the rest (imports, recording, figures).
 
@@ -12,6 +14,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import resource
 import subprocess
 import sys
 import tempfile
@@ -23,12 +26,18 @@ import torch
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def run_demo(threads: int, out: Path) -> float:
+def _children_cpu() -> float:
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return r.ru_utime + r.ru_stime
+
+
+def run_demo(threads: int, out: Path) -> tuple[float, float]:
+    """Wall seconds and CPU seconds (user + system, all threads) of one demo process."""
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    t0 = time.perf_counter()
+    c0, t0 = _children_cpu(), time.perf_counter()
     subprocess.run([sys.executable, "-m", "hiddenlens", "demo", "-q", "--threads", str(threads),
                     "-o", str(out)], env=env, check=True, cwd=ROOT, stdout=subprocess.DEVNULL)
-    return time.perf_counter() - t0
+    return time.perf_counter() - t0, _children_cpu() - c0
 
 
 def main() -> None:
@@ -43,10 +52,12 @@ def main() -> None:
                (f"torch's default, {torch.get_num_threads()} threads", torch.get_num_threads())]
     with tempfile.TemporaryDirectory() as tmp:
         for label, threads in configs:
-            times = []
+            times, cpus = [], []
             for i in range(args.repeats):
                 out = Path(tmp) / f"demo-{threads}-{i}"
-                times.append(run_demo(threads, out))
+                wall, cpu = run_demo(threads, out)
+                times.append(wall)
+                cpus.append(cpu)
             best = min(times)
             doc = json.loads((out / "report.json").read_text())
             per = {}
@@ -56,7 +67,7 @@ def main() -> None:
             analyses = sum(per.values())
             size = (out / "report.html").stat().st_size / 2**20
             print(f"\n{label}: hiddenlens demo took {best:.1f} s (best of {len(times)}; target "
-                  f"< 60 s), {len(doc['runs'])} runs, report {size:.1f} MiB")
+                  f"< 60 s), {min(cpus):.1f} CPU s, {len(doc['runs'])} runs, report {size:.1f} MiB")
             for a, s in per.items():
                 print(f"  {a:14s} {s:6.2f} s  ({s / best:5.1%})")
             print(f"  {'analyses':14s} {analyses:6.2f} s  ({analyses / best:5.1%})")
