@@ -66,10 +66,18 @@ class SortingLineData(NamedTuple):
     delays: np.ndarray
 
 
-def _check_count(name: str, value: object, minimum: int) -> int:
+def _check_count(name: str, value: object, minimum: int, example: int) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise ValueError(f"{name}={value!r} is not an integer >= {minimum}; pass e.g. {name}=16")
+        raise ValueError(
+            f"{name}={value!r} is not an integer >= {minimum}; pass e.g. {name}={example}"
+        )
     return int(value)
+
+
+def _check_seed(seed: object) -> int:
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
+    return int(seed)
 
 
 def make_dataset(
@@ -97,15 +105,13 @@ def make_dataset(
     SortingLineData
         ``inputs`` (B, T, 5) float32, ``targets`` (B, T) int64, ``delays`` (B, T) int64.
     """
-    n_seq = _check_count("n_sequences", n_sequences, 1)
-    n_t = _check_count("n_steps", n_steps, 1)
-    lo = _check_count("min_delay", min_delay, 1)
-    hi = _check_count("max_delay", max_delay, 1)
+    n_seq = _check_count("n_sequences", n_sequences, 1, 16)
+    n_t = _check_count("n_steps", n_steps, 1, 200)
+    lo = _check_count("min_delay", min_delay, 1, 2)
+    hi = _check_count("max_delay", max_delay, 1, 40)
     if hi < lo:
-        raise ValueError(
-            f"max_delay={hi} is below min_delay={lo}; pass max_delay >= min_delay"
-        )
-    rng = np.random.default_rng(seed)
+        raise ValueError(f"max_delay={hi} is below min_delay={lo}; pass max_delay >= min_delay")
+    rng = np.random.default_rng(_check_seed(seed))
     inputs = np.zeros((n_seq, n_t, N_INPUTS))  # (B, T, I)
     targets = np.full((n_seq, n_t), IGNORE, dtype=np.int64)  # (B, T)
     delays = np.zeros((n_seq, n_t), dtype=np.int64)  # (B, T)

@@ -136,6 +136,10 @@ def test_input_functions_reject_bad_arguments():
         sl.make_dataset(2, 50, min_delay=5, max_delay=3)
     with pytest.raises(ValueError, match="n_steps=2.5 is not a positive integer"):
         gh.make_inputs(2, 2.5)
+    with pytest.raises(TypeError, match="seed='a' is not a non-negative integer"):
+        sl.make_inputs(2, 10, seed="a")
+    with pytest.raises(TypeError, match="seed=-1 is not a non-negative integer"):
+        gh.make_inputs(2, 10, seed=-1)
 
 
 @pytest.mark.parametrize("name", list(RUNS))
@@ -178,30 +182,51 @@ def test_unknown_run_name_lists_available_runs():
         load_run(3)
 
 
-@pytest.mark.parametrize("name", SORTING_RUNS)
-def test_trained_sorting_runs_beat_chance(models, sorting_eval, name):
-    data = sorting_eval
-    acc = sl.accuracy(models[name], data.inputs, data.targets)
-    mask = data.targets != sl.IGNORE
+@pytest.fixture(scope="module")
+def sorting_predictions(models, sorting_eval):
     with torch.no_grad():
-        pred = models[name](torch.from_numpy(data.inputs)).argmax(-1).numpy()
-    # Oracle for the scoring itself: scikit-learn's accuracy_score on the cue steps.
-    assert acc == pytest.approx(accuracy_score(data.targets[mask], pred[mask]))
+        return {
+            name: models[name](torch.from_numpy(sorting_eval.inputs)).argmax(-1).numpy()
+            for name in SORTING_RUNS
+        }  # name -> (B, T) predicted bins
+
+
+def test_accuracy_matches_sklearn(models):
+    data = sl.make_dataset(8, 200, seed=4)
+    mask = data.targets != sl.IGNORE
+    model = models["rnn-gain1.0"]
+    with torch.no_grad():
+        pred = model(torch.from_numpy(data.inputs)).argmax(-1).numpy()  # (B, T)
+    # Oracle: scikit-learn's accuracy_score on the cue steps.
+    expected = accuracy_score(data.targets[mask], pred[mask])
+    assert sl.accuracy(model, data.inputs, data.targets) == pytest.approx(expected)
+    short = data.delays <= 4
+    expected = accuracy_score(data.targets[mask & short], pred[mask & short])
+    assert sl.accuracy(model, data.inputs, data.targets, where=short) == pytest.approx(expected)
+
+
+@pytest.mark.parametrize("name", SORTING_RUNS)
+def test_trained_sorting_runs_beat_chance(sorting_predictions, sorting_eval, name):
+    data = sorting_eval
+    mask = data.targets != sl.IGNORE
     n = int(mask.sum())
+    hits = int((sorting_predictions[name][mask] == data.targets[mask]).sum())
+    acc = hits / n
     # One-sided exact binomial test against guessing among 3 bins (scipy.stats.binomtest).
-    p_value = stats.binomtest(round(acc * n), n, 1 / 3, alternative="greater").pvalue
+    p_value = stats.binomtest(hits, n, 1 / 3, alternative="greater").pvalue
     print(f"{name}: accuracy {acc:.3f} on {n} fresh decisions (chance 0.333), p = {p_value:.1e}")
     assert p_value < 1e-6
     assert acc > 0.42
 
 
-def test_gain_shapes_memory_span(models, sorting_eval):
+def test_gain_shapes_memory_span(sorting_predictions, sorting_eval):
     data = sorting_eval
-    short = (data.delays >= 2) & (data.delays <= 4)
-    long = data.delays >= 20
+    cue = data.targets != sl.IGNORE
+    short = cue & (data.delays <= 4)
+    long = cue & (data.delays >= 20)
 
     def acc(name, where):
-        return sl.accuracy(models[name], data.inputs, data.targets, where=where)
+        return float(np.mean(sorting_predictions[name][where] == data.targets[where]))
 
     # Designed contrast of the three runs: all remember a few steps; only gain 1.0 holds the
     # tag over 20-40 steps.
@@ -210,7 +235,7 @@ def test_gain_shapes_memory_span(models, sorting_eval):
     assert acc("rnn-gain0.5", long) < 0.45
     assert acc("rnn-gain2.0", long) < 0.45
     assert acc("rnn-gain1.0", long) > 0.7
-    assert acc("gru", data.targets != sl.IGNORE) > 0.95
+    assert acc("gru", cue) > 0.95
 
 
 def test_spectral_radii_follow_the_gain(models):
