@@ -108,6 +108,15 @@ def test_view_controls_redraw_without_recomputing(model, inputs, calls):
         seen.append(png)
     assert calls == {"pca": 1}
     assert view.computed == {"pca": 1}
+    # back to a view shown before: the kept figure, without drawing again
+    draws = panel.draws
+    panel.views["dims"].value = 2
+    view._sample.value = 1
+    assert panel.draws == draws + 1  # only the 2-D change met a combination not shown yet
+    view._window.value = (0, 40)
+    view._sample.value = "all"
+    panel.views["color_by"].value = "time"
+    assert view.images["pca"] == seen[0]
 
 
 def test_spectra_sample_and_window_only_redraw(model, inputs, calls):

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import threading
 import time
+from collections import OrderedDict
 from collections.abc import Hashable, Mapping, Sequence
 from concurrent.futures import Executor
 from dataclasses import dataclass, field
@@ -27,6 +28,7 @@ __all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses"]
 DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory")
 
 _ALL = "__all__"  # value of the "whole state" choice of the part control
+_KEEP_PNGS = 48  # recent figures kept, so going back to a view needs no drawing
 
 
 def check_analyses(analyses: Sequence[str] | None) -> list[str]:
@@ -129,6 +131,7 @@ class Board(widgets.VBox):
                               on_progress=self._on_progress)
         self._draw_lock = threading.RLock()
         self._layouts = _render.LayoutMemo()
+        self._pngs: OrderedDict[Hashable, bytes] = OrderedDict()  # recent figures by view
         self.last_draw_seconds = float("nan")
         first = next(iter(self._runs.values()))
 
@@ -315,15 +318,25 @@ class Board(widgets.VBox):
                 self._show(panel)
                 return
             t0 = time.perf_counter()
-            try:
-                view = self._view(panel)
-                png = self._layouts.render(self._layout_key(panel, view),
-                                           lambda layout: self._draw_panel(panel, view, layout))
-            except Exception as exc:  # shown in the tab, never lost
-                self._show_error(panel, exc, what=f"drawing {panel.analysis.label.lower()}")
-                return
+            view = self._view(panel)
+            seen = (tuple(s.key for s in steps), self._layout_key(panel, view), view.sample,
+                    view.window)
+            png = self._pngs.get(seen)
+            if png is None:
+                try:
+                    png = self._layouts.render(
+                        self._layout_key(panel, view),
+                        lambda layout: self._draw_panel(panel, view, layout))
+                except Exception as exc:  # shown in the tab, never lost
+                    self._show_error(panel, exc, what=f"drawing {panel.analysis.label.lower()}")
+                    return
+                panel.draws += 1
+                self._pngs[seen] = png
+                while len(self._pngs) > _KEEP_PNGS:
+                    self._pngs.popitem(last=False)
+            else:
+                self._pngs.move_to_end(seen)
             panel.png = png
-            panel.draws += 1
             panel.image.value = png
             panel.image.layout.display = None
             panel.message.value = ""
