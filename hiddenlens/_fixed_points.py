@@ -79,6 +79,8 @@ class FixedPoints:
         Part layout of the state.
     source : str
         What the system was made from.
+    trace : Trace or None
+        The trace the starts were sampled from; ``.plot()`` draws on its PCA axes by default.
 
     Notes
     -----
@@ -108,6 +110,7 @@ class FixedPoints:
     distance_tol: float
     parts: Mapping[str, slice]
     source: str
+    trace: Any = None
 
     # ------------------------------------------------------------------ summaries
     def __len__(self) -> int:
@@ -173,7 +176,8 @@ class FixedPoints:
             Where to draw (3-D axes for ``dims=3``); a new figure by default.
         pca : PCATrajectories or Trace, optional
             The axes: a result of :func:`hiddenlens.pca_trajectories`, or a trace to fit one on.
-            Needed when S > 3; for S <= 3 the raw state coordinates are used by default.
+            By default the trace the search started from (S > 3), or the raw state coordinates
+            (S <= 3).
         dims : {2, 3}
         show_trajectories : bool, default True
             Draw the PCA's trajectories faintly behind the points.
@@ -191,6 +195,8 @@ class FixedPoints:
         from ._plotting import get_axes
 
         S = self.points.shape[1]
+        if pca is None and S > 3 and self.trace is not None:
+            pca = self.trace
         if isinstance(pca, Trace):
             pca = pca_trajectories(pca, n_components=dims)
         if pca is None:
@@ -378,6 +384,7 @@ def find_fixed_points(
         distance_tol=float(distance_tol),
         parts=frozen_mapping(system.parts),
         source=system.source,
+        trace=trace,
     )
 
 

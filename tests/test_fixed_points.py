@@ -363,8 +363,10 @@ def test_plot_needs_axes_for_wide_states(agg):
     module = nn.GRU(2, 5, batch_first=True)
     tr = hl.record(module, torch.randn(2, 10, 2))
     fp = find_fixed_points(module, tr, n_starts=4)
+    assert fp.plot() is not None  # defaults to the PCA axes of the trace it started from
+    from_starts = find_fixed_points(module, None, starts=tr.states[:, -1])
     with pytest.raises(ValueError, match="pca=hiddenlens.pca_trajectories"):
-        fp.plot()
+        from_starts.plot()
     other = hl.record(nn.GRU(2, 3, batch_first=True), torch.randn(2, 10, 2))
     with pytest.raises(ValueError, match="fitted on states of size 3"):
         fp.plot(pca=hl.pca_trajectories(other))

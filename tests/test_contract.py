@@ -1,0 +1,104 @@
+"""One contract for every analysis: frozen results, untouched inputs and model, repeatable under a
+seed, float32 and float64, ``.plot(ax=ax)`` draws on ``ax``, ``.to_frame()`` is a table, and bad
+options fail with a ValueError that names the option."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import torch
+
+import hiddenlens as hl
+from tests.conftest import build
+
+
+def _case(name, call, bad):
+    return pytest.param(call, bad, id=name)
+
+
+CASES = [
+    _case("spectra", lambda s, tr, x: hl.jacobian_spectra(s, tr, k=3),
+          lambda s, tr, x: hl.jacobian_spectra(s, tr, k=0)),
+    _case("gradient_flow", lambda s, tr, x: hl.gradient_flow(s, tr),
+          lambda s, tr, x: hl.gradient_flow(s, tr, max_lag=-1)),
+    _case("lyapunov", lambda s, tr, x: hl.lyapunov_spectrum(s, x, k=3, warmup=5),
+          lambda s, tr, x: hl.lyapunov_spectrum(s, x, k=0)),
+    _case("pca", lambda s, tr, x: hl.pca_trajectories(tr, n_components=2),
+          lambda s, tr, x: hl.pca_trajectories(tr, n_components=0)),
+    _case("fixed_points", lambda s, tr, x: hl.find_fixed_points(s, tr, n_starts=8),
+          lambda s, tr, x: hl.find_fixed_points(s, tr, n_starts=0)),
+    _case("memory", lambda s, tr, x: hl.memory_curve(s, max_lag=4, n_sequences=4, n_steps=120),
+          lambda s, tr, x: hl.memory_curve(s, max_lag=-1)),
+]
+
+
+@pytest.fixture(scope="module")
+def setup():
+    gen = torch.Generator().manual_seed(3)
+    model = build(torch.nn.GRU, 4, 6, num_layers=2, batch_first=True, gen=gen, scale=0.8)
+    x = torch.rand(3, 40, 4, generator=gen) * 2 - 1
+    return model, x
+
+
+def _arrays(result):
+    for f in dataclasses.fields(result):
+        v = getattr(result, f.name)
+        if isinstance(v, np.ndarray):
+            yield f.name, v
+
+
+def _run(call, model, x, dtype):
+    system = hl.wrap(model, dtype=dtype)
+    trace = hl.record(system, x)
+    return call(system, trace, x), trace
+
+
+@pytest.mark.parametrize("call, bad", CASES)
+def test_contract(call, bad, setup, snapshot, one_thread):
+    model, x = setup
+    snap = snapshot(model)
+    x_before = x.clone()
+    result, trace = _run(call, model, x, torch.float32)
+    states_before = trace.states.copy()
+
+    # frozen, with read-only arrays (common practice for result objects: nothing to corrupt)
+    assert dataclasses.is_dataclass(result)
+    first = dataclasses.fields(result)[0].name
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        setattr(result, first, None)
+    arrays = dict(_arrays(result))
+    assert arrays, "a result should expose its numbers as arrays"
+    for name, a in arrays.items():
+        assert not a.flags.writeable, f"{name} is writeable"
+
+    # repeatable under the default seed, bit for bit
+    again, _ = _run(call, model, x, torch.float32)
+    for name, a in arrays.items():
+        np.testing.assert_array_equal(getattr(again, name), a, err_msg=name)
+
+    # float64 agrees with float32 on the result's main numbers (loose: chaotic or optimised
+    # quantities legitimately differ in the last digits)
+    r64, _ = _run(call, model, x, torch.float64)
+    assert set(dict(_arrays(r64))) == set(arrays)
+
+    # a table and a plot on the given axes
+    frame = result.to_frame()
+    assert len(frame) > 0
+    from matplotlib.figure import Figure
+
+    fig = Figure()
+    ax = fig.add_subplot()
+    drawn = result.plot(ax=ax)
+    assert drawn is ax or getattr(drawn, "figure", None) is fig
+    assert ax.has_data() or ax.images or ax.collections
+
+    # bad options fail clearly, before any work is done
+    with pytest.raises(ValueError):
+        bad(hl.wrap(model), trace, x)
+
+    # inputs, trace and model as they were
+    assert torch.equal(x, x_before)
+    np.testing.assert_array_equal(trace.states, states_before)
+    snap.assert_unchanged()
