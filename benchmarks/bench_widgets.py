@@ -51,6 +51,9 @@ def redraws(view, control, values, repeats: int, *, fresh: bool = True) -> tuple
     """
     walls, cpus = [], []
     control.value = values[-1]  # first drawing of this arrangement measures its layout
+    if not fresh:
+        for value in values:  # show every view once, so that the figures are kept
+            control.value = value
     for i in range(repeats):
         value = values[i % len(values)]
         if control.value == value:
