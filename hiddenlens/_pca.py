@@ -229,7 +229,7 @@ def pca_trajectories(
     n_components: int = 3,
     parts: str | Sequence[str] | None = None,
     *,
-    svd_solver: str = "full",
+    svd_solver: str | None = None,
     seed: int = 0,
 ) -> PCATrajectories:
     """Fit PCA to the recorded states and project the trajectories onto the leading components.
@@ -247,8 +247,10 @@ def pca_trajectories(
     parts : str or sequence of str, optional
         Parts of the state to analyse (e.g. ``"layer1.h"``); the whole flat state by default.
         Parts with different scales (an LSTM's h and c) are best analysed one at a time.
-    svd_solver : str, default "full"
-        Passed to scikit-learn; "randomized" is faster for very wide states.
+    svd_solver : str, optional
+        Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
+        D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
+        "randomized" is faster for very wide states.
     seed : int, default 0
         Random state of the randomized solver.
 
@@ -285,6 +287,9 @@ def pca_trajectories(
     if not total > 0:
         raise ValueError("the selected states do not vary over samples and steps, so they have "
                          "no principal components; record longer or more varied inputs")
+    if svd_solver is None:
+        svd_solver = "covariance_eigh" if _has_covariance_eigh() and X.shape[0] >= X.shape[1] \
+            else "full"
     pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X)
     cumulative = np.minimum(np.cumsum(spectrum) / total, 1.0)  # (D,)
     projected = pca.transform(X).reshape(B, T, n_components)  # (B, T, k)
@@ -308,6 +313,14 @@ def pca_trajectories(
 
 
 # ---------------------------------------------------------------------- computing
+def _has_covariance_eigh() -> bool:
+    """scikit-learn >= 1.5 offers the "covariance_eigh" PCA solver."""
+    import sklearn
+
+    major, minor = (int(v) for v in sklearn.__version__.split(".")[:2])
+    return (major, minor) >= (1, 5)
+
+
 def _check_data(X: np.ndarray, n_components: Any) -> None:
     N, D = X.shape
     if N < 2:
