@@ -45,11 +45,11 @@ _SMALL_STEP_FLOPS = 2**21
 # function: forward-mode autograd) plus a fixed dispatch overhead per step that cannot be shared
 # across steps, since the frame of step t+1 needs the QR of step t. The QR is common to both.
 # Measured in benchmarks/bench_lyapunov.py (B=1, float32, one thread): explicit Jacobians win
-# below S=512 at every k; from S=512 on, JVPs win for few exponents, up to k of about S/32 for
-# modules (whose Jacobians are cheap) and S/16 for step functions; for k near S explicit
-# Jacobians win or tie everywhere.
+# below S=512 at every k; from S=512 on, JVPs win for few exponents: up to k of about S/128 for
+# modules (whose Jacobians are cheap; between S/128 and S/32 the two tie within noise) and S/16
+# for step functions; for k near S explicit Jacobians win or tie everywhere.
 _JVP_MIN_STATE = 512
-_JVP_MAX_K_FRACTION = {"module": 1 / 32, "callable": 1 / 16}
+_JVP_MAX_K_FRACTION = {"module": 1 / 128, "callable": 1 / 16}
 
 
 def _choose_method(system: RecurrentSystem, k: int) -> str:
@@ -331,7 +331,7 @@ def lyapunov_spectrum(
     JVP route (the gate weights applied to k vectors for nn modules, forward-mode autograd for
     a step function). The explicit route holds the Jacobians of one chunk of steps
     (about 32 MB in float32); ``method="jvp"`` holds none. ``"auto"`` uses JVPs for large
-    states with few exponents (``S >= 512`` and ``k <= S/32`` for modules, ``k <= S/16`` for
+    states with few exponents (``S >= 512`` and ``k <= S/128`` for modules, ``k <= S/16`` for
     step functions), where they were measured to be faster.
 
     The exponents of an input-driven system depend on the statistics of the inputs; exponents
