@@ -72,7 +72,7 @@ def test_tanh_rnn_bound_of_pascanu(make, gen):
                       dtype=torch.float64)
     res = hl.gradient_flow(model, trace)
     # ||d h_T / d h_t|| <= (||W_hh||_2 * max|tanh'|)^(T-t) = 0.9^(T-t)
-    # (Pascanu, Mikolov & Bengio 2013, eq. 7)
+    # (Pascanu, Mikolov & Bengio 2013)
     bound = 0.9 ** res.lags.astype(float)
     assert np.all(res.norms <= bound * (1 + 1e-6))
     assert res.verdict == "vanishing"
