@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
@@ -306,11 +307,22 @@ def _dense_top(J: torch.Tensor, k: int, method: str, tol: float) -> torch.Tensor
     J32 = J.to(torch.float32)
     G = torch.bmm(J32.mT, J32).numpy()  # (N, S, S)
     V = np.empty((N, S, r), dtype=np.float32)
-    # one LAPACK call per small matrix: BLAS threads only add contention there
-    with threadpool_limits(limits=1, user_api="blas"):
-        for i in range(N):
+
+    def solve(indices: range) -> None:
+        for i in indices:
             V[i] = scipy.linalg.eigh(G[i], subset_by_index=[S - r, S - 1], driver="evr",
                                      check_finite=False, overwrite_a=True)[1]
+
+    # one LAPACK call per matrix, single-threaded BLAS inside (threads only add contention on
+    # a matrix this size); torch's thread count of them run side by side (LAPACK releases the
+    # GIL)
+    workers = max(1, min(torch.get_num_threads(), N))
+    with threadpool_limits(limits=1, user_api="blas"):
+        if workers == 1:
+            solve(range(N))
+        else:
+            with ThreadPoolExecutor(workers) as pool:
+                list(pool.map(solve, [range(w, N, workers) for w in range(workers)]))
     V = torch.linalg.qr(torch.from_numpy(V).to(J.dtype))[0]  # (N, S, r)
     U, sig, Wt = torch.linalg.svd(torch.bmm(J, V), full_matrices=False)
     U, sig = U[:, :, :k], sig[:, :k]  # (N, S, k), (N, k)
@@ -426,15 +438,17 @@ def _extend(op, Qs, Zs, M, p, S):
     m = M.shape[-1]
     K = torch.cat(Qs, dim=2)  # (n, S, m)
     Y = op.vjp(Zs[-1])[:, :, : min(p, S - m)]
-    before = torch.linalg.vector_norm(Y, dim=1)  # (n, p)
+    scale = torch.linalg.vector_norm(Y, dim=1).amax(1)  # (n,)
     for _ in range(2):
         Y = Y - K @ (K.mT @ Y)
-    Q = torch.linalg.qr(Y)[0]
-    after = torch.linalg.vector_norm(Y, dim=1)
-    if bool((after <= 1e-6 * before).any()):
-        # a (nearly) invariant space leaves Y at rounding level: one more pass keeps Q
-        # orthogonal to K whatever QR made of it
-        Q = torch.linalg.qr(Q - K @ (K.mT @ Q))[0]
+    Q, R = torch.linalg.qr(Y)
+    if bool((R.diagonal(dim1=1, dim2=2).abs().amin(1) <= 1e-8 * scale).any()):
+        # the new directions are (nearly) dependent, e.g. J has low rank and the space is
+        # (nearly) invariant: QR then fills Q with rounding noise that is not orthogonal to
+        # K; two more passes make it so (any orthonormal extension keeps Rayleigh-Ritz valid)
+        for _ in range(2):
+            Q = Q - K @ (K.mT @ Q)
+        Q = torch.linalg.qr(Q)[0]
     Z = op.jvp(Q)
     C = torch.cat(Zs, dim=2).mT @ Z  # (n, m, p)
     M = torch.cat([torch.cat([M, C], dim=2), torch.cat([C.mT, Z.mT @ Z], dim=2)], dim=1)
