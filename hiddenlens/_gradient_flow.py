@@ -286,8 +286,10 @@ def gradient_flow(
         norms, frob = np.exp(log_n), np.exp(log_f)
     fit = (lags >= lo_fit) & (lags <= hi_fit)
     rates = np.array([_fit_rate(lags[fit], log_n[b, fit])[0] for b in range(B)])
-    with np.errstate(invalid="ignore"):
-        pooled = log_n[:, fit].mean(axis=0)
+    # mean over the samples whose norms are defined (a trajectory that blew up to NaN has none)
+    known = ~np.isnan(log_n[:, fit])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pooled = np.where(known, log_n[:, fit], 0.0).sum(axis=0) / known.sum(axis=0)
     rate, intercept = _fit_rate(lags[fit], pooled)
     return GradientFlow(
         lags=readonly(lags), norms=readonly(norms), log_norms=readonly(log_n),

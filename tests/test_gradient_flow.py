@@ -272,3 +272,17 @@ def test_loss_gradient_errors(make, gen):
     bi.rnn = nn.GRU(3, 4, bidirectional=True, batch_first=True)
     with pytest.raises(ValueError, match="does not handle bidirectional"):
         hl.loss_gradient_norms(bi, x, lambda out: out[0].sum())
+
+
+def test_non_finite_trajectories(make, gen):
+    model = make(nn.GRU, 2, 5, gen=gen)
+    trace = hl.record(model, np.random.default_rng(0).normal(size=(2, 10, 2)).astype(np.float32))
+    states = np.array(trace.states)
+    states[1, 3:] = np.nan
+    broken = hl.Trace(states, trace.initial, trace.inputs, trace.parts, trace.metadata)
+    res = hl.gradient_flow(model, broken)
+    assert np.isnan(res.log_norms[1]).all() and np.isfinite(res.log_norms[0]).all()
+    assert res.rate == pytest.approx(res.rates[0]) and res.verdict != "undetermined"
+    states[0, 3:] = np.nan
+    dead = hl.Trace(states, trace.initial, trace.inputs, trace.parts, trace.metadata)
+    assert hl.gradient_flow(model, dead).verdict == "undetermined"
