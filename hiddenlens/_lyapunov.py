@@ -365,16 +365,18 @@ def lyapunov_spectrum(
     chosen = _choose_method(system, k) if method == "auto" else method
     s0 = initial_states(system, h0, B)  # (B, S)
 
-    # per step: the frame's product and QR, and the state step itself (up to 4 gates)
-    step_flops = B * (2 * S * S * (k + 4) + 4 * S * k * k)
-    with preserved(system.model if system.kind == "callable" else None), torch.no_grad(), \
-            _threads_for(step_flops):
+    # flops of one step of the state (up to 4 gates) and of the frame (J Q and its QR)
+    state_flops = B * 8 * S * (S + system.input_size)
+    frame_flops = B * (2 * S * S * k + 4 * S * k * k)
+    with preserved(system.model if system.kind == "callable" else None), torch.no_grad():
         if system.kind == "callable":
             _check_step_dtype(system, s0, x[:, 0])
-        states = system.run(x, s0, progress=False)  # (B, T, S)
+        with _threads_for(state_flops):
+            states = system.run(x, s0, progress=False)  # (B, T, S)
         _check_trajectory(states, system)
-        sums, running, running_steps = _qr_sweep(
-            system, x, s0, states, k, warmup, qr_every, chosen, int(seed), progress)
+        with _threads_for(frame_flops):
+            sums, running, running_steps = _qr_sweep(
+                system, x, s0, states, k, warmup, qr_every, chosen, int(seed), progress)
 
     per_sample = sums / (T - warmup)  # (B, k)
     exponents = per_sample.mean(axis=0)
