@@ -12,7 +12,7 @@ Part 1, speed at equal accuracy: the k=10 largest singular values of B*n step Ja
 Accuracy: max relative error of the top k against float64 svdvals, target <= 1e-4.
 
 Part 2, memory: ``jacobian_spectra`` of a GRU with H=512 over T=2000 steps, B=8 (16,000
-Jacobians of 512 x 512, 16 GiB if all were held in float64) in a fresh subprocess; peak RSS from
+Jacobians of 512 x 512, 31 GiB if all were held in float64) in a fresh subprocess; peak RSS from
 ``resource.getrusage`` (target < 2 GiB). It takes minutes; ``--rss-steps`` shortens it.
 
 Runs once with 1 thread (torch, and BLAS through threadpoolctl) and once with the defaults.
