@@ -131,6 +131,14 @@ class StepLinearization:
         """J^T @ W: (N, S, k) -> (N, S, k)."""
         raise NotImplementedError
 
+    def input_jvp(self, tangents: torch.Tensor) -> torch.Tensor:
+        """K @ U for input tangents U (N, I, k) -> (N, S, k)."""
+        raise NotImplementedError
+
+    def input_vjp(self, cotangents: torch.Tensor) -> torch.Tensor:
+        """K^T @ W for cotangents W (N, S, k) -> (N, I, k)."""
+        raise NotImplementedError
+
     def dense(self, out: torch.Tensor | None = None) -> torch.Tensor:
         """The state Jacobians J, (N, S, S), written into ``out`` when given."""
         raise NotImplementedError
@@ -175,6 +183,26 @@ class _Autograd(StepLinearization):
             return pull(w)[0]
 
         return vmap(one, in_dims=2, out_dims=2)(cotangents.to(self.prev.dtype))
+
+    def _g(self, x: torch.Tensor) -> torch.Tensor:
+        return self.system.step(self.prev, x)
+
+    def input_jvp(self, tangents: torch.Tensor) -> torch.Tensor:
+        def one(u: torch.Tensor) -> torch.Tensor:
+            return jvp(self._g, (self.x,), (u,))[1]
+
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=r".*torch\.jit\.script.*",
+                                    category=DeprecationWarning)
+            return vmap(one, in_dims=2, out_dims=2)(tangents.to(self.x.dtype))
+
+    def input_vjp(self, cotangents: torch.Tensor) -> torch.Tensor:
+        _, pull = vjp(self._g, self.x)
+
+        def one(w: torch.Tensor) -> torch.Tensor:
+            return pull(w)[0]
+
+        return vmap(one, in_dims=2, out_dims=2)(cotangents.to(self.x.dtype))
 
     def dense(self, out: torch.Tensor | None = None) -> torch.Tensor:
         J = vmap(jacrev(_per_sample(self.system), argnums=0))(self.prev, self.x)

@@ -164,6 +164,10 @@ def test_callable_jvp_vjp_match_dense(gen):
     torch.testing.assert_close(J, _reference(system, prev, x))
     torch.testing.assert_close(step_jvp(system, prev, x, V), J @ V)
     torch.testing.assert_close(step_vjp(system, prev, x, V), J.mT @ V)
+    K = _reference(system, prev, x, argnums=1)
+    lin = linearize(system, prev, x)
+    torch.testing.assert_close(lin.input_jvp(V[:, :2]), K @ V[:, :2])
+    torch.testing.assert_close(lin.input_vjp(V), K.mT @ V)
     sub = linearize(system, prev, x).select(torch.tensor([1, 3]))
     torch.testing.assert_close(sub.dense(), J[[1, 3]])
 
