@@ -39,6 +39,15 @@ _LAZY = {
     "explore": "widgets",
     "compare": "widgets",
     "write_report": "_report",
+    # result types, for isinstance checks and type annotations
+    "JacobianSpectra": "_spectra",
+    "GradientFlow": "_gradient_flow",
+    "LossGradientNorms": "_gradient_flow",
+    "LyapunovSpectrum": "_lyapunov",
+    "PCATrajectories": "_pca",
+    "FixedPoints": "_fixed_points",
+    "MemoryCurve": "_memory",
+    "RunComparison": "_compare",
 }
 
 __all__ = ["__version__", *_LAZY]
