@@ -345,6 +345,15 @@ class Board(widgets.VBox):
     def _view(self, panel: Panel) -> View:
         return View(extra={k: w.value for k, w in panel.views.items()})
 
+    def _sample_window_view(self, panel: Panel, T: int) -> View:
+        """The view from the shared sample and step-window controls of a board over T steps."""
+        t0, t1 = self._window.value
+        t0 = min(t0, T - 1)
+        window = None if (t0, t1) == (0, T) else (t0, max(t1, t0 + 1))
+        sample = None if self._sample.value == "all" else self._sample.value
+        return View(sample=sample, window=window,
+                    extra={k: w.value for k, w in panel.views.items()})
+
     def _results(self, name: str, run: Run) -> Any:
         return self._cache.get(self._key(name, run))
 

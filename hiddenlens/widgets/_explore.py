@@ -91,13 +91,7 @@ class Explorer(Board):
         return None if self._part.value == _ALL else self._part.value
 
     def _view(self, panel: Panel) -> View:
-        T = self.trace.n_steps
-        t0, t1 = self._window.value
-        t0 = min(t0, T - 1)
-        window = None if (t0, t1) == (0, T) else (t0, max(t1, t0 + 1))
-        sample = None if self._sample.value == "all" else self._sample.value
-        return View(sample=sample, window=window,
-                    extra={k: w.value for k, w in panel.views.items()})
+        return self._sample_window_view(panel, self.trace.n_steps)
 
     def _update_shared_state(self) -> None:
         name = self.current
