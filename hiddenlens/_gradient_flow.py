@@ -8,9 +8,8 @@ loss at every step.
 
 from __future__ import annotations
 
-import contextlib
 import math
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -20,6 +19,7 @@ from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
 from ._results import frozen_mapping, readonly
+from ._threads import single_thread
 from ._validation import as_float_tensor
 
 __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_norms",
@@ -301,23 +301,9 @@ def gradient_flow(
     )
 
 
-@contextlib.contextmanager
-def _threads_for(step_flops: float) -> Iterator[None]:
-    """Run a loop of small per-step tensor operations on one thread, then restore the count.
-
-    Splitting microseconds of work across threads costs more than it saves, and on a loaded
-    machine a thread waiting for a busy core turns each small product into milliseconds
-    (measured here: 18 ms instead of 0.2 ms per batched 64 x 64 product with 2 threads).
-    """
-    before = torch.get_num_threads()
-    if step_flops >= _SMALL_STEP_FLOPS or before == 1:
-        yield
-        return
-    torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
+def _threads_for(step_flops: float):
+    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see hiddenlens._threads)."""
+    return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 
 def _top_singular(P: torch.Tensor, V: torch.Tensor, ok: torch.Tensor, tol: float,

@@ -8,9 +8,7 @@ system uses torch.func transforms batched over all requested states at once.
 
 from __future__ import annotations
 
-import contextlib
 import warnings
-from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
@@ -19,6 +17,7 @@ import torch.nn.functional as F
 from torch.func import jacrev, jvp, vjp, vmap
 
 from ._systems import LayerWeights, RecurrentSystem
+from ._threads import single_thread
 from ._validation import as_dtype
 
 __all__ = [
@@ -359,7 +358,7 @@ class _LayerTerms:
         R, K = W.shape[1], W.shape[2]
         step = max(1, _CACHE_ELEMENTS // max(R * K, 1))
         G = a.shape[1]
-        with _one_thread():
+        with single_thread():  # memory-bound blocks: a second thread adds no bandwidth
             self._write_blocks(out, rows, cols, a, W, diag, step, G)
 
     @staticmethod
@@ -372,25 +371,6 @@ class _LayerTerms:
                 o.addcmul_(aa[:, g, :, None], W[g])
             if diag is not None:
                 o.diagonal(dim1=1, dim2=2).add_(diag[n0:n0 + step])
-
-
-@contextlib.contextmanager
-def _one_thread() -> Iterator[None]:
-    """Write cache-sized blocks on one thread, restoring torch's thread count afterwards.
-
-    Each block is a fraction of a millisecond of memory-bound work: a second thread adds no
-    bandwidth, and on a loaded machine waiting for it made the writer 3x slower (measured:
-    GRU H=256, B*T=1600 Jacobians in 0.26 s on one thread, 0.87 s on two).
-    """
-    before = torch.get_num_threads()
-    if before == 1:
-        yield
-        return
-    torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
 
 
 def _write_diag(out: torch.Tensor, rows: slice, cols: slice, diag: torch.Tensor) -> None:
