@@ -44,6 +44,7 @@ _LAZY = {
     "GradientFlow": "_gradient_flow",
     "LossGradientNorms": "_gradient_flow",
     "LyapunovSpectrum": "_lyapunov",
+    "kaplan_yorke_dimension": "_lyapunov",
     "PCATrajectories": "_pca",
     "FixedPoints": "_fixed_points",
     "MemoryCurve": "_memory",

@@ -7,9 +7,8 @@ re-orthonormalised by QR. See docs/lyapunov.md for the definition and the cautio
 
 from __future__ import annotations
 
-import contextlib
 import math
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -21,6 +20,7 @@ from ._jacobians import step_jacobians, step_jvp
 from ._record import as_system, initial_states
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
+from ._threads import single_thread
 from ._validation import as_dtype, as_sequences
 
 __all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension"]
@@ -486,25 +486,9 @@ def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
     return torch.from_numpy(cols).transpose(1, 2)  # (B, S, k)
 
 
-@contextlib.contextmanager
-def _threads_for(step_flops: float) -> Iterator[None]:
-    """Run small per-step work on one thread, restoring torch's thread count afterwards.
-
-    The trajectory and the frame advance one step at a time. When a step is microseconds of
-    work (a QR of a few-by-few frame, a small recurrent step), splitting it across threads costs
-    more than it saves, and on a loaded machine a thread waiting for a busy core makes each step
-    take milliseconds (measured: 20-6000 us per batched 2x2 QR with 2 threads, 5-30 us with one;
-    a 200-unit tanh RNN ran 60x slower on 2 threads than on one).
-    """
-    before = torch.get_num_threads()
-    if step_flops >= _SMALL_STEP_FLOPS or before == 1:
-        yield
-        return
-    torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
+def _threads_for(step_flops: float):
+    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see hiddenlens._threads)."""
+    return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 
 def _qr_due(t: int, warmup: int, qr_every: int, T: int) -> bool:
