@@ -342,7 +342,8 @@ def lyapunov_spectrum(
     ----------
     Benettin, Galgani, Giorgilli & Strelcyn (1980), Meccanica 15, 9-20.
     Eckmann & Ruelle (1985), Rev. Mod. Phys. 57, 617-656.
-    Kaplan & Yorke (1979), Lecture Notes in Mathematics 730, 204-227.
+    Kaplan & Yorke (1979), in Functional Differential Equations and Approximation of Fixed
+    Points, Springer, vol. 730, 204-227.
     """
     if dtype is not None and not isinstance(system, RecurrentSystem):
         wrap_options.setdefault("dtype", dtype)
