@@ -4,7 +4,7 @@ Two invented tasks:
 
 * **Sorting line** (:mod:`example_models.sorting_line`): fruit crates pass a colour scanner on
   a conveyor. The scanner flashes a crate's tag (red, green or yellow; one-hot on channels
-  0-2) for one step; 5 to 40 steps later the diverter-gate cue arrives on channel 3 and the
+  0-2) for one step; 2 to 40 steps later the diverter-gate cue arrives on channel 3 and the
   network must name the bin, i.e. the tag colour, at that step. Belt vibration streams in on
   channel 4 and all channels carry a little sensor noise. A classification task that needs
   memory; inputs (B, T, 5), logits (B, T, 3).
