@@ -98,3 +98,17 @@ def one_thread():
         yield
     finally:
         torch.set_num_threads(before)
+
+
+def gaussian_module(cls: type, n_in: int, hidden: int, *, seed: int = 0, std: float = 0.5,
+                    **kwargs):
+    """A batch-first recurrent module with N(0, std^2) weights from a private generator.
+
+    Built on the meta device and filled in place, so torch's global RNG is never used.
+    """
+    m = cls(n_in, hidden, batch_first=True, device="meta", **kwargs).to_empty(device="cpu")
+    gen = torch.Generator().manual_seed(seed)
+    with torch.no_grad():
+        for p in m.parameters():
+            p.copy_(torch.randn(p.shape, generator=gen) * std)
+    return m

@@ -14,6 +14,7 @@ import hiddenlens
 from hiddenlens import compare_runs, linear_cka
 from hiddenlens._compare import RunComparison
 from hiddenlens._summary import ANALYSES, available_analyses, key_figures
+from tests.conftest import gaussian_module
 
 
 def _hsic_cka(X, Y):
@@ -91,13 +92,7 @@ def runs():
 
 
 def _module(cls, hidden, seed, n_in=3):
-    # built on the meta device and filled from a private generator: torch's global RNG is unused
-    m = cls(n_in, hidden, batch_first=True, device="meta").to_empty(device="cpu")
-    gen = torch.Generator().manual_seed(seed)
-    with torch.no_grad():
-        for p in m.parameters():
-            p.copy_(torch.randn(p.shape, generator=gen) * 0.5)
-    return m
+    return gaussian_module(cls, n_in, hidden, seed=seed, std=0.5)
 
 
 @pytest.fixture(scope="module")

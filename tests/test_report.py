@@ -18,6 +18,7 @@ from hiddenlens._summary import (
     key_figures,
     run_analyses,
 )
+from tests.conftest import gaussian_module
 
 IMG = '<img src="data:image/png;base64,'
 # figures per result in a one-model report (a comparison shows one per run plus an overlay)
@@ -27,12 +28,7 @@ OPTIONS = {"memory": {"max_lag": 5, "n_steps": 300}, "fixed_points": {"n_starts"
 
 
 def _module(cls, hidden, seed, n_in=3):
-    m = cls(n_in, hidden, batch_first=True, device="meta").to_empty(device="cpu")
-    gen = torch.Generator().manual_seed(seed)
-    with torch.no_grad():
-        for p in m.parameters():
-            p.copy_(torch.randn(p.shape, generator=gen) * 0.5)
-    return m
+    return gaussian_module(cls, n_in, hidden, seed=seed, std=0.5)
 
 
 @pytest.fixture(scope="module")

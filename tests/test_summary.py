@@ -22,18 +22,13 @@ from hiddenlens._summary import (
     run_analyses,
     summary_sentence,
 )
+from tests.conftest import gaussian_module
 
 ALL = set(available_analyses()) == set(ANALYSES)
 
 
 def _rnn(hidden=6, n_in=3, seed=0):
-    # meta device + private generator: torch's global RNG stays untouched
-    m = torch.nn.RNN(n_in, hidden, batch_first=True, device="meta").to_empty(device="cpu")
-    gen = torch.Generator().manual_seed(seed)
-    with torch.no_grad():
-        for p in m.parameters():
-            p.copy_(torch.randn(p.shape, generator=gen) * 0.4)
-    return m
+    return gaussian_module(torch.nn.RNN, n_in, hidden, seed=seed, std=0.4)
 
 
 @pytest.fixture(scope="module")
