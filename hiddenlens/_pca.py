@@ -381,6 +381,9 @@ def _colouring(color_by: Any, B: int, rows: np.ndarray):
     return ("labels", labels[rows])
 
 
+_TIME_PIECES = 128  # most colour bands drawn along one trajectory coloured by time
+
+
 def _draw_lines(ax, P: np.ndarray, colouring, steps, *, label: str | None = None,
                 ls: str = "-") -> list:
     """Draw trajectories P (b, t, dims) as one line collection; return legend handles."""
@@ -394,25 +397,31 @@ def _draw_lines(ax, P: np.ndarray, colouring, steps, *, label: str | None = None
         handles.append(Line2D([], [], color=extra, ls=ls, label=label))
     if t < 2:
         return handles
-    segs = np.stack([P[:, :-1], P[:, 1:]], axis=2).reshape(b * (t - 1), 2, dims)  # (b*(t-1), 2, d)
+    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
+    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
+    # that matplotlib builds and strokes on every redraw).
+    m = t - 1 if kind != "time" else -(-(t - 1) // _TIME_PIECES)
+    firsts = np.arange(0, t - 1, m)  # first step of each piece
+    segs = [P[i, a:min(a + m, t - 1) + 1] for i in range(b) for a in firsts]  # (<= m+1, dims)
+    per_sample = firsts.size
     kw: dict[str, Any] = {"linewidths": 1.0, "linestyles": ls}
     if kind == "single":
         kw["colors"] = extra
     elif kind == "sample":
         from ._plotting import time_colors
 
-        kw["colors"] = np.repeat(time_colors(b, "turbo"), t - 1, axis=0)
+        kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
     elif kind == "labels":
         uniq, code = np.unique(extra, return_inverse=True)
         palette = np.array([f"C{i % 10}" for i in range(uniq.size)])
-        kw["colors"] = np.repeat(palette[code], t - 1)
+        kw["colors"] = np.repeat(palette[code], per_sample)
     if dims == 3:
         from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
     else:
         Collection = LineCollection
     coll = Collection(segs, **kw)
     if kind == "time":
-        coll.set_array(np.tile(steps[:-1], b).astype(float))
+        coll.set_array(np.tile(steps[firsts], b).astype(float))
         coll.set_cmap("viridis")
     ax.add_collection(coll)
     if kind == "time":
