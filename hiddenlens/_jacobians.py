@@ -148,6 +148,29 @@ class StepLinearization:
 
 
 # ---------------------------------------------------------------------- torch.func fallback
+def _batched_jvp(f, primal: torch.Tensor, tangents: torch.Tensor) -> torch.Tensor:
+    """J v for a block of tangents (N, ., p), with f batched over N: one jvp per column."""
+    def one(v: torch.Tensor) -> torch.Tensor:
+        return jvp(f, (primal,), (v,))[1]
+
+    with warnings.catch_warnings():
+        # torch's first forward-mode call scripts its decompositions and warns about
+        # torch.jit.script itself; nothing the caller can act on
+        warnings.filterwarnings("ignore", message=r".*torch\.jit\.script.*",
+                                category=DeprecationWarning)
+        return vmap(one, in_dims=2, out_dims=2)(tangents.to(primal.dtype))
+
+
+def _batched_vjp(f, primal: torch.Tensor, cotangents: torch.Tensor) -> torch.Tensor:
+    """J^T w for a block of cotangents (N, S, p): one pull-back, vmapped over the columns."""
+    _, pull = vjp(f, primal)
+
+    def one(w: torch.Tensor) -> torch.Tensor:
+        return pull(w)[0]
+
+    return vmap(one, in_dims=2, out_dims=2)(cotangents.to(primal.dtype))
+
+
 class _Autograd(StepLinearization):
     """Any step function: transforms of the batched step (samples are independent)."""
 
@@ -164,44 +187,19 @@ class _Autograd(StepLinearization):
         return self.system.step(s, self.x)
 
     def jvp(self, tangents: torch.Tensor) -> torch.Tensor:
-        # the step is batched over N, so one jvp with an (N, S) tangent gives J_n v_n for every n
-        def one(v: torch.Tensor) -> torch.Tensor:
-            return jvp(self._f, (self.prev,), (v,))[1]
-
-        with warnings.catch_warnings():
-            # torch's first forward-mode call scripts its decompositions and warns about
-            # torch.jit.script itself; nothing the caller can act on
-            warnings.filterwarnings("ignore", message=r".*torch\.jit\.script.*",
-                                    category=DeprecationWarning)
-            return vmap(one, in_dims=2, out_dims=2)(tangents.to(self.prev.dtype))
+        return _batched_jvp(self._f, self.prev, tangents)
 
     def vjp(self, cotangents: torch.Tensor) -> torch.Tensor:
-        _, pull = vjp(self._f, self.prev)
-
-        def one(w: torch.Tensor) -> torch.Tensor:
-            return pull(w)[0]
-
-        return vmap(one, in_dims=2, out_dims=2)(cotangents.to(self.prev.dtype))
+        return _batched_vjp(self._f, self.prev, cotangents)
 
     def _g(self, x: torch.Tensor) -> torch.Tensor:
         return self.system.step(self.prev, x)
 
     def input_jvp(self, tangents: torch.Tensor) -> torch.Tensor:
-        def one(u: torch.Tensor) -> torch.Tensor:
-            return jvp(self._g, (self.x,), (u,))[1]
-
-        with warnings.catch_warnings():
-            warnings.filterwarnings("ignore", message=r".*torch\.jit\.script.*",
-                                    category=DeprecationWarning)
-            return vmap(one, in_dims=2, out_dims=2)(tangents.to(self.x.dtype))
+        return _batched_jvp(self._g, self.x, tangents)
 
     def input_vjp(self, cotangents: torch.Tensor) -> torch.Tensor:
-        _, pull = vjp(self._g, self.x)
-
-        def one(w: torch.Tensor) -> torch.Tensor:
-            return pull(w)[0]
-
-        return vmap(one, in_dims=2, out_dims=2)(cotangents.to(self.x.dtype))
+        return _batched_vjp(self._g, self.x, cotangents)
 
     def dense(self, out: torch.Tensor | None = None) -> torch.Tensor:
         J = vmap(jacrev(_per_sample(self.system), argnums=0))(self.prev, self.x)
