@@ -126,6 +126,8 @@ class Board(widgets.VBox):
     def _build(self, analyses: Sequence[str], *, title: str, background: bool,
                executor: Executor | None, extra_tabs: Sequence[tuple[str, widgets.Widget]] = (),
                shared: Sequence[widgets.Widget] = ()) -> None:
+        for w, what in ((self._sample, "sample"), (self._window, "window"), (self._part, "part")):
+            w.add_class(f"hiddenlens-{what}")  # stable hooks for styling and browser tests
         self._cache = Cache()
         self._runner = Runner(self._cache, background=background, executor=executor,
                               on_progress=self._on_progress)

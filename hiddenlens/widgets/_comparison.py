@@ -96,8 +96,6 @@ class Comparison(Board):
         title = (f"<div style='font-size:15px'><b>Comparing {len(names)} runs</b> "
                  f"<span style='color:#4a5568'>· {_render.esc(', '.join(names))} · {B} "
                  f"sequence{'s' if B != 1 else ''} × {T} steps</span></div>")
-        for w, what in ((self._sample, "sample"), (self._window, "window"), (self._part, "part")):
-            w.add_class(f"hiddenlens-{what}")
         self._build(tabs, title=title, background=background, executor=executor,
                     extra_tabs=[(_TABLE_TAB, table_box)],
                     shared=[shown_box, self._sample, self._window, self._part])

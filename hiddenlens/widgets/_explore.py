@@ -77,8 +77,6 @@ class Explorer(Board):
         title = (f"<div style='font-size:15px'><b>{_render.esc(run.name)}</b> "
                  f"<span style='color:#4a5568'>· {system.kind} · {size} · {B} sequence"
                  f"{'s' if B != 1 else ''} × {T} steps</span></div>")
-        for w, what in ((self._sample, "sample"), (self._window, "window"), (self._part, "part")):
-            w.add_class(f"hiddenlens-{what}")
         self._build(names, title=title, background=background, executor=executor,
                     shared=[self._sample, self._window, self._part])
 
