@@ -26,6 +26,7 @@ from __future__ import annotations
 import argparse
 import time
 
+import bench_spectra  # a sibling script: benchmarks/ is on sys.path when run
 import numpy as np
 import torch
 from torch import nn
@@ -33,20 +34,15 @@ from torch.func import jacrev, vmap
 
 import hiddenlens as hl
 
-H, I, T, B = 256, 16, 200, 8
+H, T = 256, 200
+B, I = bench_spectra.B, bench_spectra.I  # 8, 16: one seeded model builder for both
 NAIVE_CALLS = 3
 TARGETS = {"naive": 100.0, "vmap": 5.0, "floor": 3.0}
 
 
 def build(cls):
-    gen = torch.Generator().manual_seed(0)
-    with torch.random.fork_rng(devices=[]):
-        model = cls(I, H, batch_first=True).eval()
-    with torch.no_grad():
-        for p in model.parameters():
-            p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) / H**0.5)
-    x = torch.randn(B, T, I, generator=gen)
-    return model, hl.record(model, x)
+    # the same seeded model and trace as the spectra benchmark
+    return bench_spectra.build(cls, H, T)
 
 
 def timed(fn):
