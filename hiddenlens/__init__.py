@@ -39,6 +39,14 @@ _LAZY = {
     "explore": "widgets",
     "compare": "widgets",
     "write_report": "_report",
+    # the analysis registry and the runner every face uses
+    "register_analysis": "_registry",
+    "unregister_analysis": "_registry",
+    "analyses": "_registry",
+    "AnalysisSpec": "_registry",
+    "run_analyses": "_runner",
+    "key_figures": "_figures",
+    "summary_sentence": "_figures",
     # result types, for isinstance checks and type annotations
     "JacobianSpectra": "_spectra",
     "GradientFlow": "_gradient_flow",

@@ -1,5 +1,6 @@
 """run_analyses, key figures and the plain-words summary shared by report, comparison, widgets."""
 
+import dataclasses
 import math
 from types import SimpleNamespace
 
@@ -104,7 +105,11 @@ def test_run_analyses_failure_raises_or_is_skipped(inputs):
 
 
 def test_missing_analysis_is_skipped_with_a_note(monkeypatch, inputs):
-    monkeypatch.setitem(_summary._FUNCTIONS, "memory", ("hiddenlens._no_such_module", "f"))
+    from hiddenlens import _registry
+
+    spec = _registry.analysis_spec("memory")
+    monkeypatch.setitem(_registry._SPECS, "memory", dataclasses.replace(
+        spec, function="hiddenlens._no_such_module:f"))
     assert "memory" not in available_analyses()
     out = run_analyses(_rnn(), inputs[:1, :20], progress=False, on_error="skip")
     assert "memory" not in out and "not available" in out.skipped["memory"]
