@@ -14,7 +14,6 @@ from typing import Any
 from ._figures import (
     array_summaries,
     describe_inputs,
-    figure_labels,
     format_figure,
     key_figures,
     summary_sentence,

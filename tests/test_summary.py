@@ -10,7 +10,6 @@ import torch
 from numpy.testing import assert_allclose
 
 import hiddenlens
-from hiddenlens import _summary
 from hiddenlens._summary import (
     ANALYSES,
     FIGURES,
