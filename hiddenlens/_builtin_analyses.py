@@ -32,9 +32,9 @@ Runs = Sequence[tuple[str, Any]]
 # ---------------------------------------------------------------------- call adapters
 def _call_lyapunov(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
     # lyapunov_spectrum(system, inputs): driven by the recorded inputs
-    from ._validation import as_sequences
+    import torch
 
-    x = as_sequences(trace.inputs, system.input_size, system.dtype)  # (B, T, I)
+    x = torch.tensor(trace.inputs, dtype=system.dtype)  # (B, T, I), a private copy
     return fn(system, x, **opts)
 
 

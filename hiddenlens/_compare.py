@@ -2,27 +2,22 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from ._figures import figure_rows, key_figures, summary_sentence
 from ._record import as_system
+from ._registry import analyses, analysis_spec
 from ._results import frozen_mapping, readonly
-from ._summary import (
-    ANALYSES,
-    FIGURES,
-    TITLES,
-    AnalysisResults,
-    _nanmedian,
-    key_figures,
-    run_analyses,
-    summary_sentence,
-)
+from ._runner import AnalysisResults, run_analyses
+from ._systems import RecurrentSystem
 from ._trace import Trace
 
-__all__ = ["RunComparison", "compare_runs", "linear_cka"]
+__all__ = ["RunComparison", "compare_runs", "comparison_of", "figure_table", "linear_cka",
+           "plot_overlay", "plot_cka"]
 
 
 # ---------------------------------------------------------------------- linear CKA
@@ -112,8 +107,8 @@ class RunComparison:
         Run names, in the order given; the first run is the reference for differences.
     table : pandas.DataFrame
         One row per run: model kind and state size, then each key figure (see
-        :data:`hiddenlens._summary.FIGURES`) followed by ``"Δ <figure>"``, its difference
-        from the first run (numeric figures only).
+        :func:`hiddenlens.key_figures`, registered analyses included) followed by
+        ``"Δ <figure>"``, its difference from the first run (numeric figures only).
     results : Mapping[str, AnalysisResults]
         Per run, analysis name -> result object (with ``.trace`` and ``.skipped``).
     cka : ndarray of shape (R, R)
@@ -157,9 +152,9 @@ class RunComparison:
         Parameters
         ----------
         analysis : str, default "cka"
-            ``"cka"`` or a name from :data:`hiddenlens._summary.ANALYSES`. PCA is overlaid as
-            cumulative explained variance (the axes of different runs are not comparable),
-            fixed points as counts per stability class.
+            ``"cka"`` or a name from :func:`hiddenlens.analyses`, drawn by the analysis'
+            overlay: PCA as cumulative explained variance (the axes of different runs are
+            not comparable), fixed points as counts per stability class.
         ax : matplotlib Axes, optional
 
         Returns
@@ -168,9 +163,9 @@ class RunComparison:
         """
         if analysis == "cka":
             return plot_cka(self.cka, self.names, ax=ax, **kw)
-        if analysis not in ANALYSES:
+        if analysis not in analyses():
             raise ValueError(f"unknown analysis {analysis!r}; expected 'cka' or one of "
-                             f"{', '.join(ANALYSES)}")
+                             f"{', '.join(analyses())}")
         present = {n: self.results[n][analysis] for n in self.names
                    if analysis in self.results[n]}
         if not present:
@@ -184,7 +179,7 @@ class RunComparison:
 
 # ---------------------------------------------------------------------- comparing
 def compare_runs(
-    runs: Mapping[str, Any],
+    runs: Mapping[str, RecurrentSystem | Any],
     inputs: Any,
     *,
     which: Iterable[str] | None = None,
@@ -193,6 +188,7 @@ def compare_runs(
     seed: int = 0,
     cka_parts: str = "output",
     on_error: str = "raise",
+    context: Mapping[str, Any] | None = None,
 ) -> RunComparison:
     """Analyse several runs on the same inputs and put their key figures side by side.
 
@@ -203,8 +199,8 @@ def compare_runs(
         state sizes may differ; the input size must be the same.
     inputs : Tensor or ndarray of shape (B, T, I)
         The same sequences for every run.
-    which, options, seed, on_error
-        As in :func:`hiddenlens._summary.run_analyses`, applied to every run.
+    which, options, seed, on_error, context
+        As in :func:`hiddenlens.run_analyses`, applied to every run.
     progress : bool or callable, optional
         ``True`` shows one bar over all runs and analyses; a callable is called as
         ``progress("<run>: <analysis>", done, total)``.
@@ -266,13 +262,31 @@ def compare_runs(
     try:
         for n in names:
             results[n] = run_analyses(systems[n], inputs, which=which_list, options=options,
-                                      progress=per_run(n), seed=seed, on_error=on_error)
+                                      progress=per_run(n), seed=seed, on_error=on_error,
+                                      context=context)
         if callable(progress):
             progress("done", done, done)
     finally:
         if bar is not None:
             bar.close()
+    return comparison_of(results, systems, cka_parts=cka_parts)
 
+
+def comparison_of(results: Mapping[str, AnalysisResults],
+                  systems: Mapping[str, RecurrentSystem], *,
+                  cka_parts: str = "output") -> RunComparison:
+    """The comparison of runs already analysed: key-figure table, Δ columns and CKA.
+
+    Parameters
+    ----------
+    results : Mapping[str, AnalysisResults]
+        Run name -> its results (with ``.trace``), in order; the first run is the reference.
+    systems : Mapping[str, RecurrentSystem]
+        Run name -> the system the results came from.
+    cka_parts : {"output", "all"}, default "output"
+        As in :func:`compare_runs`.
+    """
+    names = [str(n) for n in results]
     cka = np.eye(len(names))
     states = {}
     for n in names:
@@ -289,115 +303,61 @@ def compare_runs(
             cka[i, j] = cka[j, i] = v
 
     figures = {n: key_figures(results[n]) for n in names}
-    table = _table(names, systems, figures)
-    return RunComparison(names=tuple(names), table=table, results=results, cka=cka,
+    table = figure_table(names, systems, figures)
+    return RunComparison(names=tuple(names), table=table, results=dict(results), cka=cka,
                          figures=figures, cka_parts=cka_parts)
 
 
-def _table(names, systems, figures):
+def figure_table(names: Sequence[str], systems: Mapping[str, RecurrentSystem],
+                 figures: Mapping[str, Mapping[str, Any]]):
+    """One row per run: kind, state size, then each figure and its ``"Δ <figure>"``."""
     import pandas as pd
 
-    keys = [k for k in FIGURES if any(k in figures[n] for n in names)]
-    ref = figures[names[0]]
-    rows = []
-    for n in names:
-        f = figures[n]
-        row: dict[str, Any] = {"kind": systems[n].kind, "state_size": systems[n].state_size}
-        for k in keys:
-            v = f.get(k)
-            row[k] = v
-            r = ref.get(k)
-            if isinstance(v, str) or isinstance(r, str):
-                continue
-            row[f"\u0394 {k}"] = (v - r) if (v is not None and r is not None) else np.nan
-        rows.append(row)
-    table = pd.DataFrame(rows, index=pd.Index(names, name="run"))
-    for k in keys:
-        if k.startswith("fixed_points_") and table[k].notna().all():
-            table[k] = table[k].astype(int)
-            table[f"\u0394 {k}"] = table[f"\u0394 {k}"].astype(int)
+    rows: dict[str, dict[str, Any]] = {
+        n: {"kind": systems[n].kind, "state_size": systems[n].state_size} for n in names}
+    counts = []
+    for fr in figure_rows({n: figures[n] for n in names}):
+        for n in names:
+            rows[n][fr.key] = fr.values[n]
+            if fr.numeric:
+                d = fr.deltas[n] if n != names[0] else (0 if fr.values[n] is not None else None)
+                rows[n][f"\u0394 {fr.key}"] = np.nan if d is None else d
+        if fr.numeric and all(_is_int(v) for v in fr.values.values()):
+            counts.append(fr.key)
+    table = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="run"))
+    for k in counts:  # counts stay integers when every run has one
+        table[k] = table[k].astype(int)
+        table[f"\u0394 {k}"] = table[f"\u0394 {k}"].astype(int)
     return table
 
 
+def _is_int(v: Any) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, bool)
+
+
 # ---------------------------------------------------------------------- overlay plots
-def _median_over_leading(a: Any) -> np.ndarray:
-    arr = np.asarray(a, dtype=float)
-    if arr.ndim <= 1:
-        return arr.reshape(-1)
-    return np.asarray(_nanmedian(arr.reshape(-1, arr.shape[-1]), axis=0))
+def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, *,
+                 colors: Sequence[str] | None = None):
+    """Draw one analysis of several runs on one Axes; ``results`` maps run name -> result.
 
-
-def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw: Any):
-    """Draw one analysis of several runs on one Axes; ``results`` maps run name -> result."""
+    The analysis' ``overlay`` draws; one without an overlay draws each run's ``.plot`` on the
+    same Axes. ``colors`` gives one colour per run (default: matplotlib's cycle).
+    """
     from ._plotting import get_axes
 
+    spec = analysis_spec(analysis)
     ax = get_axes(ax)
-    names = list(results)
-    if analysis == "fixed_points":
-        classes = ("stable", "saddle", "unstable", "marginal")
-        width = 0.8 / max(len(names), 1)
-        for i, n in enumerate(names):
-            stab = [str(s) for s in np.asarray(results[n].stability, dtype=object).ravel()]
-            counts = [sum(s == c for s in stab) for c in classes]
-            ax.bar(np.arange(len(classes)) + (i - (len(names) - 1) / 2) * width, counts,
-                   width=width, label=n, **kw)
-        ax.set_xticks(np.arange(len(classes)), classes)
-        ax.set_ylabel("number of points")
-        from matplotlib.ticker import MaxNLocator
-
-        ax.yaxis.set_major_locator(MaxNLocator(integer=True))
+    if colors is not None:
+        ax.set_prop_cycle(color=list(colors))
+    runs = [(str(n), r) for n, r in results.items()]
+    if spec.overlay is not None:
+        spec.overlay(runs, ax)
     else:
-        for n in names:
-            r = results[n]
-            if analysis == "spectra":
-                y = _median_over_leading(r.singular_values)  # (k,)
-                ax.semilogy(np.arange(1, y.size + 1), y, marker=".", label=n, **kw)
-                ax.set_xlabel("singular value index")
-                ax.set_ylabel("median singular value of J_t")
-            elif analysis == "gradient_flow":
-                y = _median_over_leading(r.norms)  # (L,)
-                lags = np.asarray(r.lags, dtype=float).reshape(-1)[: y.size]
-                logs = getattr(r, "log_norms", None)
-                if logs is not None and not np.all(np.isfinite(y) & (y > 0)):
-                    # beyond float64's range: draw the exact logs on a linear axis
-                    y = _median_over_leading(logs) / np.log(10.0)
-                    ax.plot(lags, y[: lags.size], label=n, **kw)
-                    ax.set_ylabel("log10 of median ||d s_T / d s_t||")
-                else:
-                    ax.semilogy(lags, y[: lags.size], label=n, **kw)
-                    ax.set_ylabel("median ||d s_T / d s_t||")
-                ax.set_xlabel("lag T - t (steps)")
-            elif analysis == "lyapunov":
-                y = np.asarray(r.exponents, dtype=float).reshape(-1)
-                ax.plot(np.arange(1, y.size + 1), y, marker=".", label=n, **kw)
-                ax.set_xlabel("exponent index")
-                ax.set_ylabel("Lyapunov exponent (per step)")
-            elif analysis == "pca":
-                y = np.cumsum(np.asarray(r.explained_variance_ratio, dtype=float).reshape(-1))
-                pr = getattr(r, "participation_ratio", None)
-                label = n if pr is None else f"{n} (PR {float(pr):.3g})"
-                ax.plot(np.arange(1, y.size + 1), y, marker="o", label=label, **kw)
-                ax.set_xlabel("number of components")
-                ax.set_ylabel("cumulative explained variance")
-                ax.set_ylim(0, 1.02)
-            elif analysis == "memory":
-                y = _median_over_leading(r.scores)
-                lags = np.asarray(r.lags, dtype=float).reshape(-1)[: y.size]
-                ax.plot(lags, y[: lags.size], marker=".", label=n, **kw)
-                ax.set_xlabel("lag k (steps)")
-                ax.set_ylabel(str(getattr(r, "score_name", None) or "memory score"))
-            else:
-                raise ValueError(f"unknown analysis {analysis!r}; expected one of "
-                                 f"{', '.join(ANALYSES)}")
-    if analysis == "lyapunov":
-        ax.axhline(0.0, color="0.5", lw=0.8)
-    if analysis == "memory":
-        levels = {float(getattr(results[n], "threshold", np.nan)) for n in names}
-        raw = all(getattr(results[n], "chance", None) is None for n in names)
-        if raw and len(levels) == 1 and np.isfinite(next(iter(levels))):
-            ax.axhline(next(iter(levels)), ls="--", color="0.5", lw=0.8, label="span threshold")
-    ax.set_title(TITLES.get(analysis, analysis))
-    ax.legend(fontsize="small")
+        for _, r in runs:
+            r.plot(ax=ax)
+    ax.set_title(spec.title)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize="small")
     return ax
 
 
