@@ -22,17 +22,17 @@ from typing import Any
 import numpy as np
 
 from ._compare import RunComparison, plot_cka, plot_overlay
-from ._summary import (
-    ANALYSES,
-    CAUTIONS,
-    FIGURES,
-    TITLES,
+from ._figures import (
     array_summaries,
     describe_inputs,
+    figure_rows,
+    format_delta,
     format_figure,
     key_figures,
     summary_sentence,
 )
+from ._registry import AnalysisSpec, analyses, registered
+from ._runner import AnalysisResults
 from ._version import __version__
 
 __all__ = ["write_report", "report_data", "GENERAL_CAUTIONS"]
@@ -89,70 +89,25 @@ def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
-def _draws(analysis: str, result: Any, run: Mapping[str, Any], *, extras: bool = True
-           ) -> list[tuple[str, Any, bool]]:
-    """The figures of one result: (caption, draw(ax), 3-D axes?) triples.
+def _result_pngs(spec: AnalysisSpec, result: Any, run: Mapping[str, Any], *,
+                 extras: bool = True) -> list[tuple[str, str]]:
+    """The figures of one result as (caption, base64 PNG) pairs, drawn as its spec says.
 
-    ``extras=False`` keeps only the main plot (a comparison shows the rest as overlays).
+    ``extras=False`` keeps only the main plots (a comparison shows the rest as overlays).
     """
-    draws: list[tuple[str, Any, bool]] = [("", lambda ax: result.plot(ax=ax), False)]
-    if not extras and analysis != "fixed_points":
-        return draws
-    if analysis == "lyapunov":
-        draws.append(("spectrum", lambda ax: result.plot(ax=ax, kind="spectrum"), False))
-    elif analysis == "pca" and hasattr(result, "plot_variance"):
-        draws.append(("variance", lambda ax: result.plot_variance(ax=ax), False))
-    elif analysis == "fixed_points":
-        # drawn on the PCA axes of the same run (the state has more than three units)
-        axes = run.get("pca") if "pca" in run else getattr(run, "trace", None)
-        if axes is not None:
-            draws[0] = ("", lambda ax: result.plot(ax=ax, pca=axes), False)
-    return draws
-
-
-def _result_pngs(analysis: str, result: Any, run: Mapping[str, Any], *, extras: bool = True
-                 ) -> list[tuple[str, str]]:
     out = []
-    for caption, draw, _ in _draws(analysis, result, run, extras=extras):
-        try:
-            b64 = _png(draw)
-        except ValueError as err:  # a plot that needs 3-D axes says so
-            if "3-D" not in str(err):
-                raise
-            b64 = _png(draw, projection="3d", figsize=(6.4, 5.0))
-        out.append((caption, b64))
+    for d in spec.drawings(result, run, extras=extras):
+        size = (6.4, 5.0) if d.projection == "3d" else (6.4, 4.0)
+        out.append((d.caption, _png(d.draw, projection=d.projection, figsize=size)))
     return out
 
 
-def _setting(analysis: str, results: Mapping[str, Any]) -> str:
+def _setting(spec: AnalysisSpec, results: Mapping[str, Any]) -> str:
     """How an analysis was set up, in words (what its cautions depend on); '' if unknown."""
     try:
-        if analysis == "memory":
-            modes = {getattr(r, "mode", None) for r in results.values()}
-            if modes == {"probe"}:
-                r = next(iter(results.values()))
-                meta = r.metadata or {}
-                return (f"Measured in probe mode: i.i.d. Gaussian inputs of standard deviation "
-                        f"{meta.get('scale', 1.0):g} on every feature, {meta.get('n_sequences')} "
-                        f"sequences of {meta.get('n_steps')} steps (not the inputs above); "
-                        f"{r.method} method, span threshold {r.threshold:g}.")
-            if modes == {"data"}:
-                return "Measured in data mode on the inputs above; read it against the baseline."
-        if analysis == "fixed_points":
-            xs = [np.asarray(r.x) for r in results.values()]
-            const = "x* = 0 on every feature" if not any(np.any(x) for x in xs) else \
-                "the given constant input x*"
-            starts = sorted({int(r.n_starts) for r in results.values()})
-            return (f"Constant input {const}; {', '.join(map(str, starts))} starting states "
-                    "sampled from the recorded states.")
-        if analysis == "lyapunov":
-            r = next(iter(results.values()))
-            return (f"QR method driven by the inputs above: {r.warmup} warm-up steps, then "
-                    f"{r.n_steps} counted steps per sequence; exponents are the mean over "
-                    "sequences, natural log per step.")
+        return spec.setting(results)
     except (AttributeError, TypeError, ValueError):
         return ""
-    return ""
 
 
 def _img(b64: str, caption: str) -> str:
@@ -209,8 +164,10 @@ def _as_runs(results_or_runs: Any, name: str) -> tuple[dict[str, Mapping[str, An
     if isinstance(results_or_runs, RunComparison):
         comp = results_or_runs
         return {n: comp.results[n] for n in comp.names}, comp
+    if isinstance(results_or_runs, AnalysisResults):
+        return {name: results_or_runs}, None
     if isinstance(results_or_runs, Mapping):
-        if all(k in ANALYSES for k in results_or_runs):
+        if all(k in analyses() for k in results_or_runs):
             return {name: results_or_runs}, None
         if all(isinstance(v, Mapping) for v in results_or_runs.values()):
             return {str(k): v for k, v in results_or_runs.items()}, None
@@ -231,7 +188,7 @@ def report_data(results_or_runs: Any, *, name: str = "model", title: str | None 
         ``format``, ``format_version``, ``hiddenlens_version``, ``created``, ``title``,
         ``inputs`` (``description``, ``shape``), ``analyses`` (names shown), ``runs``: per run
         ``model`` (class, kind, sizes, fingerprint), ``summary`` (a sentence),
-        ``key_figures``, ``arrays`` (see :func:`hiddenlens._summary.array_summaries`),
+        ``key_figures``, ``arrays`` (see :func:`hiddenlens._figures.array_summaries`),
         ``skipped`` (analysis -> reason), ``options``, ``seconds``; and for several runs
         ``comparison`` with ``names``, ``cka`` (R x R) and ``cka_parts``. Numbers that are not
         finite are written as the strings ``"nan"``, ``"inf"`` and ``"-inf"``.
@@ -250,7 +207,7 @@ def report_data(results_or_runs: Any, *, name: str = "model", title: str | None 
             or (describe_inputs(trace) if trace is not None else None),
             "shape": list(trace.inputs.shape) if trace is not None else None,
         },
-        "analyses": [a for a in ANALYSES if any(a in r for r in runs.values())],
+        "analyses": [a for a in analyses() if any(a in r for r in runs.values())],
         "runs": {},
     }
     for n, res in runs.items():
@@ -281,39 +238,22 @@ def _esc(v: Any) -> str:
     return html.escape(str(v), quote=True)
 
 
-def _figures_table(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None) -> str:
-    figs = {n: key_figures(r) for n, r in runs.items()}
-    keys = [k for k in FIGURES if any(k in f for f in figs.values())]
-    if not keys:
+def _figures_table(runs: Mapping[str, Mapping[str, Any]]) -> str:
+    rows = figure_rows({n: key_figures(r) for n, r in runs.items()})
+    if not rows:
         return "<p>No key figures: no analysis ran.</p>"
     names = list(runs)
-    head = '<tr><th class="text">figure</th>' + "".join(
-        f"<th>{_esc(n)}</th>" for n in names)
-    if len(names) > 1:
-        head += "".join(f"<th>\u0394 {_esc(n)}</th>" for n in names[1:])
-    head += "</tr>"
-    rows = []
-    ref = figs[names[0]]
-    for k in keys:
-        label, unit, _ = FIGURES[k]
-        cells = "".join(f"<td>{_esc(format_figure(k, figs[n].get(k)))}</td>" for n in names)
-        if len(names) > 1:
-            for n in names[1:]:
-                v, r = figs[n].get(k), ref.get(k)
-                if isinstance(v, (int, float)) and isinstance(r, (int, float)):
-                    d = v - r
-                    cells += f"<td>{'+' if d > 0 else ''}{_esc(format_figure(k, d))}</td>"
-                elif v is not None and r is not None:
-                    cells += f"<td>{'same' if v == r else 'changed'}</td>"
-                else:
-                    cells += "<td>-</td>"
-        text = f"{label} ({unit})" if unit else label
-        rows.append(f'<tr><td class="text">{_esc(text)}</td>{cells}</tr>')
-    note = ""
-    if len(names) > 1:
-        note = (f"<p class=\"meta\">\u0394 columns: difference from the first run, "
-                f"<b>{_esc(names[0])}</b>.</p>")
-    return f"<table>{head}{''.join(rows)}</table>{note}"
+    others = names[1:]
+    head = ('<tr><th class="text">figure</th>' + "".join(f"<th>{_esc(n)}</th>" for n in names)
+            + "".join(f"<th>\u0394 {_esc(n)}</th>" for n in others) + "</tr>")
+    body = []
+    for fr in rows:
+        cells = "".join(f"<td>{_esc(format_figure(fr.key, fr.values[n]))}</td>" for n in names)
+        cells += "".join(f"<td>{_esc(format_delta(fr.key, fr.deltas[n]))}</td>" for n in others)
+        body.append(f'<tr><td class="text">{_esc(fr.text)}</td>{cells}</tr>')
+    note = (f"<p class=\"meta\">\u0394 columns: difference from the first run, "
+            f"<b>{_esc(names[0])}</b>.</p>") if others else ""
+    return f"<table>{head}{''.join(body)}</table>{note}"
 
 
 def _cka_table(comp: RunComparison) -> str:
@@ -343,12 +283,47 @@ def _options_block(runs: Mapping[str, Any]) -> str:
     return f"<ul>{''.join(items)}</ul>" if items else "<p>Defaults.</p>"
 
 
+def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
+                      skipped: Mapping[str, Mapping[str, str]], progress: Any
+                      ) -> tuple[list[str], int]:
+    """The HTML section of one analysis (nothing if no run has it nor skipped it)."""
+    a, multi = spec.name, len(runs) > 1
+    why = {n: s[a] for n, s in skipped.items() if a in s}
+    present = {n: r[a] for n, r in runs.items() if a in r}
+    head = f'<section id="analysis-{_esc(a)}"><h2>{_esc(spec.title)}</h2>'
+    if not present:
+        if not why:
+            return [], 0
+        reason = "; ".join(f"{n}: {r}" for n, r in why.items()) if multi else \
+            next(iter(why.values()))
+        return [f'{head}<p class="note">Skipped \u2014 {_esc(reason)}</p></section>'], 0
+    setting = _setting(spec, present)
+    out = [head + (f"<p>{_esc(setting)}</p>" if setting else "")
+           + (f'<p class="caution">{_esc(spec.caution)}</p>' if spec.caution else "")]
+    n_img = 0
+    if multi:
+        if progress:
+            progress(f"figure: {a} (overlay)")
+        out.append(_img(_png(lambda ax: plot_overlay(a, present, ax=ax)),
+                        f"{spec.title}: all runs"))
+        n_img += 1
+    for n, res in present.items():
+        if progress:
+            progress(f"figure: {a} ({n})" if multi else f"figure: {a}")
+        for caption, b64 in _result_pngs(spec, res, runs[n], extras=not multi):
+            n_img += 1
+            label = " \u00b7 ".join(c for c in ((n if multi else spec.title), caption) if c)
+            out.append(_img(b64, label))
+    out += [f'<p class="note">{_esc(n)}: skipped \u2014 {_esc(r)}</p>' for n, r in why.items()]
+    out.append("</section>")
+    return out, n_img
+
+
 def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None, *,
                 title: str, inputs_description: str | None, notes: Iterable[str],
                 progress: Any) -> tuple[str, int]:
     names = list(runs)
     multi = len(names) > 1
-    analyses = [a for a in ANALYSES if any(a in r for r in runs.values())]
     skipped = {n: dict(getattr(r, "skipped", {}) or {}) for n, r in runs.items()}
     n_img = 0
     out = [
@@ -385,7 +360,7 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                + "</section>")
     # key figures
     out.append('<section id="key-figures"><h2>Key figures</h2>'
-               f"{_figures_table(runs, comp)}</section>")
+               f"{_figures_table(runs)}</section>")
     # similarity
     if comp is not None and multi:
         width = max(len(n) for n in comp.names)
@@ -403,36 +378,10 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
             f"{_cka_table(comp)}{_img(b64, 'linear CKA between runs')}</section>"
         )
     # analyses
-    for a in ANALYSES:
-        why = {n: s[a] for n, s in skipped.items() if a in s}
-        if a not in analyses:
-            if why:
-                reason = "; ".join(f"{n}: {r}" for n, r in why.items()) if multi else \
-                    next(iter(why.values()))
-                out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
-                           f'<p class="note">Skipped \u2014 {_esc(reason)}</p></section>')
-            continue
-        present = {n: r[a] for n, r in runs.items() if a in r}
-        setting = _setting(a, present)
-        out.append(f'<section id="analysis-{a}"><h2>{_esc(TITLES[a])}</h2>'
-                   + (f"<p>{_esc(setting)}</p>" if setting else "")
-                   + f'<p class="caution">{_esc(CAUTIONS[a])}</p>')
-        if multi:
-            if progress:
-                progress(f"figure: {a} (overlay)")
-            b64 = _png(lambda ax, p=present, a=a: plot_overlay(a, p, ax=ax))
-            n_img += 1
-            out.append(_img(b64, f"{TITLES[a]}: all runs"))
-        for n, res in present.items():
-            if progress:
-                progress(f"figure: {a} ({n})" if multi else f"figure: {a}")
-            for caption, b64 in _result_pngs(a, res, runs[n], extras=not multi):
-                n_img += 1
-                label = " \u00b7 ".join(c for c in ((n if multi else TITLES[a]), caption) if c)
-                out.append(_img(b64, label))
-        for n, r in why.items():
-            out.append(f'<p class="note">{_esc(n)}: skipped \u2014 {_esc(r)}</p>')
-        out.append("</section>")
+    for spec in registered():
+        section, n = _analysis_section(spec, runs, skipped, progress)
+        out += section
+        n_img += n
     # cautions and options
     out.append('<section id="cautions"><h2>Reading these numbers with care</h2><ul>'
                + "".join(f"<li>{_esc(c)}</li>" for c in GENERAL_CAUTIONS[: -1 if not multi
@@ -459,7 +408,7 @@ def write_report(
     Parameters
     ----------
     results_or_runs : mapping or RunComparison
-        The results of :func:`hiddenlens._summary.run_analyses` for one model (a mapping
+        The results of :func:`hiddenlens.run_analyses` for one model (a mapping
         analysis name -> result); a :class:`RunComparison` from :func:`hiddenlens.compare_runs`
         (adds the comparison table, CKA and overlay plots); or a mapping run name -> results.
     path : str or PathLike
