@@ -18,13 +18,16 @@ from typing import Any
 
 import ipywidgets as widgets
 
+from .._registry import analyses as registered_analyses
+from .._registry import analysis_spec
 from . import _render
 from ._jobs import Cache, Job, Runner, Step
-from ._panels import REGISTRY, Analysis, Option, Run, View
+from ._panels import Analysis, Option, Run, View, tab
 
 __all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses"]
 
-#: Tab order: the cheap overview first, so the first figure shows up quickly.
+#: Tab order of the built-in analyses: the cheap overview first, so the first figure shows up
+#: quickly; other registered analyses follow in registry order.
 DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory")
 
 _ALL = "__all__"  # value of the "whole state" choice of the part control
@@ -33,17 +36,19 @@ _KEEP_PNGS = 48  # recent figures kept, so going back to a view needs no drawing
 
 def check_analyses(analyses: Sequence[str] | None) -> list[str]:
     """Validate the ``analyses`` argument; None means every available analysis."""
+    known = registered_analyses()
     if analyses is None:
-        return [n for n in DEFAULT_ORDER if n in REGISTRY and REGISTRY[n].available()] + [
-            n for n in REGISTRY if n not in DEFAULT_ORDER and REGISTRY[n].available()]
+        order = [n for n in DEFAULT_ORDER if n in known] + [
+            n for n in known if n not in DEFAULT_ORDER]
+        return [n for n in order if analysis_spec(n).available()]
     if isinstance(analyses, str):
         analyses = [analyses]
     names = list(analyses)
-    unknown = [n for n in names if n not in REGISTRY]
+    unknown = [n for n in names if n not in known]
     if unknown or not names:
         raise ValueError(f"unknown analyses {unknown}; choose one or more of "
-                         f"{', '.join(REGISTRY)} (or pass analyses=None for all)")
-    missing = [n for n in names if not REGISTRY[n].available()]
+                         f"{', '.join(known)} (or pass analyses=None for all)")
+    missing = [n for n in names if not analysis_spec(n).available()]
     if missing:
         raise ValueError(f"analyses {missing} are not available in this installation; "
                          "leave them out of analyses=")
@@ -141,7 +146,7 @@ class Board(widgets.VBox):
         self._summary = widgets.HTML(layout=widgets.Layout(margin="0 0 4px 0"))
         self._panels: dict[str, Panel] = {}
         for name in analyses:
-            self._panels[name] = self._make_panel(REGISTRY[name], first)
+            self._panels[name] = self._make_panel(tab(name), first)
 
         self._shared = list(shared)
         self._extra = list(extra_tabs)
@@ -221,7 +226,7 @@ class Board(widgets.VBox):
     def _key(self, name: str, run: Run) -> Hashable:
         panel = self._panels.get(name)
         if panel is None:  # a dependency without its own tab: default options
-            analysis = REGISTRY[name]
+            analysis = tab(name)
             opts = {}
             if analysis.part_option is not None:
                 opts[analysis.part_option] = self._part_value(run)
@@ -234,14 +239,15 @@ class Board(widgets.VBox):
 
     def _steps(self, name: str, runs: Sequence[Run]) -> list[Step]:
         steps = []
-        analysis = REGISTRY[name]
+        analysis = tab(name)
         for dep in (*analysis.needs, name):
             for run in runs:
                 key = self._key(dep, run)
                 opts = dict(key[2])
-                label = REGISTRY[dep].label + (f" of {run.name}" if len(self._runs) > 1 else "")
+                entry = tab(dep)
+                label = entry.label + (f" of {run.name}" if len(self._runs) > 1 else "")
                 steps.append(Step(key, dep, label,
-                                  lambda a=REGISTRY[dep], r=run, o=opts: a.compute(r, o)))
+                                  lambda a=entry, r=run, o=opts: a.compute(r, o)))
         return steps
 
     # ------------------------------------------------------------------ show / draw

@@ -7,24 +7,23 @@ from concurrent.futures import Executor
 from typing import Any
 
 import ipywidgets as widgets
-import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 
-from .._compare import RunComparison, _table, linear_cka, plot_cka, plot_overlay
+from .._compare import RunComparison, comparison_of, plot_cka, plot_overlay
+from .._figures import figure_rows, format_delta, format_figure, key_figures, summary_sentence
 from .._record import as_system, record
-from .._summary import FIGURES, AnalysisResults, format_figure, key_figures, summary_sentence
+from .._runner import AnalysisResults
 from .._validation import as_sequences
 from . import _render
 from ._board import _ALL, Board, Panel, check_analyses, row
 from ._jobs import Step
-from ._panels import REGISTRY, Run, View
+from ._panels import Run, View, tab
 
 __all__ = ["Comparison", "compare"]
 
 _OUTPUT = "__output__"  # value of the "top-layer h" choice of the part control
-_OVERLAID = ("spectra", "gradient_flow", "lyapunov", "memory")  # same axes for every run
 _TABLE_TAB = "Key figures"
 
 
@@ -118,28 +117,27 @@ class Comparison(Board):
 
     def _update_shared_state(self) -> None:
         name = self.current
-        self._sample.disabled = self._window.disabled = name != "pca"
-        analysis = REGISTRY.get(name)
+        analysis = tab(name) if name else None
+        self._sample.disabled = self._window.disabled = analysis is None or not analysis.per_run
         self._part.disabled = analysis is None or not (analysis.part_option or any(
-            REGISTRY[d].part_option for d in analysis.needs))
+            tab(d).part_option for d in analysis.needs))
 
     def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
         analysis = panel.analysis
         runs = self._runs_for(panel)
         name = analysis.name
-        if name in _OVERLAID:
+        colors = [self._colors[r.name] for r in runs]
+        if not analysis.per_run:  # one overlay of every run on shared axes
             fig, axes = _render.new_figure(1, layout=layout)
-            ax = axes[0]
-            for run in runs:
-                plot_overlay(name, {run.name: self._results(name, run)}, ax=ax,
-                             color=self._colors[run.name])
+            plot_overlay(name, {r.name: self._results(name, r) for r in runs}, ax=axes[0],
+                         colors=colors)
             return fig
-        # trajectories and fixed points live in each run's own PCA axes: one panel per run
+        # e.g. trajectories in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
         ncols = min(len(runs), 4)
         nrows = -(-len(runs) // ncols)
         row_height = 3.4 if projection == "3d" or ncols <= 2 else 2.9
-        extra = name == "pca"  # variance spectra are comparable across runs, the axes are not
+        extra = int(analysis.overlay_row)  # what is comparable across runs, below
         fig = Figure(figsize=(_render.WIDTH_IN, row_height * nrows + 2.4 * extra),
                      dpi=_render.DPI, layout=layout)
         FigureCanvasAgg(fig)
@@ -148,16 +146,17 @@ class Comparison(Board):
         for i, run in enumerate(runs):
             ax = fig.add_subplot(grid[i // ncols, i % ncols], projection=projection)
             deps = {d: self._results(d, run) for d in analysis.needs}
-            analysis.draw(self._results(name, run), [ax], view, run, deps)
+            result = self._results(name, run)
+            analysis.draw(result, [ax], view, run, deps)
             title = run.name
-            if name == "pca":
-                title += f" · PR {self._results(name, run).participation_ratio:.1f}"
+            if analysis.run_title is not None:
+                title += f" · {analysis.run_title(result)}"
             ax.set_title(title, color=self._colors[run.name], fontsize="medium")
             if ax.get_legend() is not None and len(runs) > 1:
                 ax.get_legend().remove()
         if extra:
-            _draw_cumulative(fig.add_subplot(grid[nrows, :]),
-                             {r.name: self._results("pca", r) for r in runs}, self._colors)
+            plot_overlay(name, {r.name: self._results(name, r) for r in runs},
+                         ax=fig.add_subplot(grid[nrows, :]), colors=colors)
         return fig
 
     def _summary_html(self) -> str:
@@ -212,31 +211,18 @@ class Comparison(Board):
 
     def _fill_table(self) -> None:
         runs = self._runs_for(None)
-        names = [r.name for r in runs]
         results = {}
         for run in runs:
             res = AnalysisResults({n: self._results(n, run) for n in self._panels})
             res.trace = run.trace
             res.options = {n: dict(self._key(n, run)[2]) for n in self._panels}
             results[run.name] = res
-        figures = {n: key_figures(results[n]) for n in names}
-        table = _table(names, {r.name: r.system for r in runs}, figures)
-        cka = np.eye(len(runs))
-        for i, a in enumerate(runs):
-            for j in range(i + 1, len(runs)):
-                b = runs[j]
-                try:
-                    v = linear_cka(a.trace.part(a.system.output_part),
-                                   b.trace.part(b.system.output_part))
-                except ValueError:  # constant or non-finite states: no similarity to report
-                    v = float("nan")
-                cka[i, j] = cka[j, i] = v
-        self.comparison = RunComparison(names=tuple(names), table=table, results=results,
-                                        cka=cka, figures=figures)
-        self._table.value = _table_html(table, names, self._colors)
+        self.comparison = comparison_of(results, {r.name: r.system for r in runs})
+        names = list(self.comparison.names)
+        self._table.value = _table_html(self.comparison, self._colors)
         size = min(1.6 + 0.7 * len(runs), 6.0)
         fig, axes = _render.new_figure(1, height=size - 0.4, width=size + 1.8)
-        plot_cka(cka, names, ax=axes[0])
+        plot_cka(self.comparison.cka, names, ax=axes[0])
         self._cka.value = _render.png_bytes(fig)
         self._cka.layout.display = None
         self._table_message.value = _render.note_box(
@@ -246,58 +232,29 @@ class Comparison(Board):
     def _static_extra(self) -> list[str]:
         if self.comparison is None:
             return []
-        names = list(self.comparison.names)
         return [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
-                _table_html(self.comparison.table, names, self._colors)]
+                _table_html(self.comparison, self._colors)]
 
 
-def _draw_cumulative(ax, results: Mapping[str, Any], colors: Mapping[str, str]) -> None:
-    """Cumulative variance over the whole covariance spectrum of each run, on one Axes."""
-    n = min(30, max(r.cumulative.size for r in results.values()))
-    for name, r in results.items():
-        k = min(n, r.cumulative.size)
-        ax.plot(np.arange(1, k + 1), r.cumulative[:k], "o-", ms=3, color=colors[name],
-                label=f"{name} (PR {r.participation_ratio:.1f})")
-    ax.axhline(0.9, color="0.6", lw=0.8, ls=":")
-    ax.set_ylim(0, 1.02)
-    ax.set_xlabel("number of components")
-    ax.set_ylabel("cumulative variance")
-    ax.set_title("explained variance (comparable across runs; the axes above are not)",
-                 fontsize="medium")
-    ax.legend(fontsize="small", loc="lower right")
-
-
-def _table_html(table, names: list[str], colors: Mapping[str, str]) -> str:
+def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
     """Runs as columns, key figures as rows, each difference beside its value."""
+    names = list(comparison.names)
     head = "".join(f"<th style='text-align:right;padding:2px 10px;color:{colors[n]}'>"
                    f"{_render.esc(n)}</th>" for n in names)
     rows = []
-    for key, (label, unit, _) in FIGURES.items():
-        if key not in table.columns:
-            continue
+    for fr in figure_rows({n: comparison.figures[n] for n in names}):
         cells = []
-        for i, n in enumerate(names):
-            value = table.loc[n, key]
-            text = format_figure(key, None if _missing(value) else value)
-            delta = table.loc[n, f"\u0394 {key}"] if f"\u0394 {key}" in table.columns else None
-            if i > 0 and delta is not None and not _missing(delta):
-                sign = "+" if float(delta) > 0 else ""
-                text += (f" <span style='color:#718096;font-size:11.5px'>(Δ {sign}"
-                         f"{format_figure(key, delta)})</span>")
+        for n in names:
+            text = _render.esc(format_figure(fr.key, fr.values[n]))
+            delta = fr.deltas[n]
+            if delta is not None and fr.numeric:
+                text += (f" <span style='color:#718096;font-size:11.5px'>(Δ "
+                         f"{_render.esc(format_delta(fr.key, delta))})</span>")
             cells.append(f"<td style='text-align:right;padding:2px 10px'>{text}</td>")
-        what = _render.esc(label + (f" ({unit})" if unit else ""))
-        rows.append(f"<tr><td style='padding:2px 10px'>{what}</td>{''.join(cells)}</tr>")
+        rows.append(f"<tr><td style='padding:2px 10px'>{_render.esc(fr.text)}</td>"
+                    f"{''.join(cells)}</tr>")
     return ("<table class='hiddenlens-table' style='border-collapse:collapse;font-size:13px'>"
             f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
-
-
-def _missing(value: Any) -> bool:
-    if value is None:
-        return True
-    try:
-        return bool(np.isnan(value))
-    except TypeError:
-        return False
 
 
 def compare(runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
@@ -306,10 +263,11 @@ def compare(runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
             **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
-    Each analysis tab overlays the runs (spectra, gradient flow, Lyapunov exponents, memory
-    curves on shared axes; trajectories and fixed points in each run's own PCA axes, beside
-    the runs' cumulative variance). The "Key figures" tab lists the figures of every run with
-    their differences from the first run and the linear CKA of the runs' states.
+    Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
+    flow, Lyapunov exponents, memory curves on shared axes; trajectories and fixed points in
+    each run's own PCA axes, the runs' cumulative variance below the trajectories). The "Key
+    figures" tab lists the figures of every run with their differences from the first run
+    and the linear CKA of the runs' states.
 
     Parameters
     ----------

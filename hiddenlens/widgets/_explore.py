@@ -14,7 +14,7 @@ from .._summary import key_figures, summary_sentence
 from .._validation import as_sequences
 from . import _render
 from ._board import _ALL, Board, Panel, check_analyses
-from ._panels import REGISTRY, Run, View
+from ._panels import Run, View, tab
 
 __all__ = ["Explorer", "explore"]
 
@@ -93,12 +93,12 @@ class Explorer(Board):
 
     def _update_shared_state(self) -> None:
         name = self.current
-        analysis = REGISTRY.get(name)
+        analysis = tab(name) if name else None
         uses = analysis.uses if analysis else frozenset()
         self._sample.disabled = "sample" not in uses
         self._window.disabled = "window" not in uses
         takes_part = analysis is not None and (analysis.part_option is not None or any(
-            REGISTRY[d].part_option for d in analysis.needs))
+            tab(d).part_option for d in analysis.needs))
         self._part.disabled = len(self._part.options) == 1 or not takes_part
 
     def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
@@ -148,7 +148,8 @@ def explore(model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = 
         A label per sequence; adds "colour by label" to the trajectories tab.
     analyses : sequence of str, optional
         Which tabs to show, in order (default: every available analysis, trajectories first).
-        Names: "pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory".
+        Names: those of :func:`hiddenlens.analyses` ("pca", "spectra", "gradient_flow",
+        "lyapunov", "fixed_points", "memory" and any registered analysis).
     background : bool, default True
         Compute in a worker thread. False computes inline, in the calling thread (scripts,
         tests); the widget then behaves the same but blocks while computing.

@@ -2,9 +2,9 @@
 
 An entry says which keyword options change the computation (these become controls and form the
 cache key), which view controls only change the drawing, and how to draw a result onto Axes.
-Computing always goes through :func:`hiddenlens._summary.run_analyses`, so the widgets use the
-same default budgets and option checks as the report and :func:`hiddenlens.compare_runs`.
-Adding an analysis is one :func:`register` call.
+Computing always goes through :func:`hiddenlens.run_analyses`, so the widgets use the same
+default budgets and option checks as the report and :func:`hiddenlens.compare_runs`. Every
+analysis of the registry has a tab (:func:`tab`); an entry here adds controls and drawing.
 """
 
 from __future__ import annotations
@@ -17,11 +17,12 @@ from typing import Any
 import numpy as np
 import torch
 
-from .._summary import CAUTIONS, _defaults, analysis_function, available_analyses, run_analyses
+from .._registry import analysis_spec
+from .._runner import budget_of, run_analyses
 from .._systems import RecurrentSystem
 from .._trace import Trace
 
-__all__ = ["Analysis", "Option", "Run", "View", "REGISTRY", "register", "option_defaults"]
+__all__ = ["Analysis", "Option", "Run", "View", "REGISTRY", "register", "option_defaults", "tab"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -74,7 +75,7 @@ class Analysis:
     Attributes
     ----------
     name : str
-        The analysis name of :data:`hiddenlens._summary.ANALYSES`.
+        The analysis name in the registry (:func:`hiddenlens.analyses`).
     label : str
         Tab title.
     options : tuple of Option
@@ -94,6 +95,13 @@ class Analysis:
     prepare : callable, optional
         ``prepare(run, options) -> keyword options`` turns control values that are not plain
         keywords (e.g. "hold the input at its mean") into what the analysis takes.
+    per_run : bool
+        In a comparison, draw each run on its own Axes (e.g. in its own PCA axes) instead of
+        the analysis' overlay of all runs on one.
+    overlay_row : bool
+        With ``per_run``, add the analysis' overlay of all runs below the per-run Axes.
+    run_title : callable, optional
+        ``run_title(result) -> str`` appended to a run's name above its own Axes.
     """
 
     name: str
@@ -106,18 +114,21 @@ class Analysis:
     needs: tuple[str, ...] = ()
     n_axes: Callable[[View], tuple[int, str | None]] = lambda view: (1, None)
     prepare: Callable[[Run, dict[str, Any]], dict[str, Any]] | None = None
+    per_run: bool = False
+    overlay_row: bool = False
+    run_title: Callable[[Any], str] | None = None
 
     @property
     def caution(self) -> str:
-        return CAUTIONS.get(self.name, "")
+        return analysis_spec(self.name).caution
 
     def available(self) -> bool:
-        return self.name in available_analyses()
+        return analysis_spec(self.name).available()
 
     def accepted(self) -> set[str]:
         """Keywords the analysis function accepts (options it lacks are not offered)."""
-        params = inspect.signature(analysis_function(self.name)).parameters.values()
-        return {p.name for p in params}
+        names, var_kw = analysis_spec(self.name).accepted()
+        return names | ({o.name for o in self.options} if var_kw else set())
 
     def compute(self, run: Run, options: Mapping[str, Any]) -> Any:
         """Run this analysis on ``run`` with ``options`` (the other options at their defaults)."""
@@ -126,21 +137,35 @@ class Analysis:
             opts = self.prepare(run, opts)
         out = run_analyses(run.system, run.inputs, which=[self.name],
                            options={self.name: opts}, seed=run.seed, trace=run.trace)
+        if self.name not in out:
+            raise ValueError(f"{self.label} was not run: {out.skipped.get(self.name, '')}")
         return out[self.name]
 
 
+#: Controls and drawing of the built-in analyses' tabs; any other registered analysis gets a
+#: plain tab from :func:`tab`.
 REGISTRY: dict[str, Analysis] = {}
 
 
 def register(analysis: Analysis) -> Analysis:
-    """Add (or replace) an analysis tab; tabs appear in registration order."""
+    """Give an analysis of the registry its own controls and drawing in the widgets."""
     REGISTRY[analysis.name] = analysis
     return analysis
 
 
+def tab(name: str) -> Analysis:
+    """The tab of analysis ``name``: its own entry, or one that draws ``result.plot(ax=ax)``
+    (on one Axes per run in a comparison when the analysis has no overlay)."""
+    entry = REGISTRY.get(name)
+    if entry is not None:
+        return entry
+    spec = analysis_spec(name)
+    return Analysis(name, spec.title, _draw_plain, per_run=spec.overlay is None)
+
+
 def option_defaults(run: Run, name: str) -> dict[str, Any]:
     """The default budget of analysis ``name`` for ``run`` (shared with the report)."""
-    return _defaults(name, run.system, run.trace, run.seed)
+    return budget_of(analysis_spec(name), run.system, run.trace, run.seed)
 
 
 def _default(name: str, key: str, fallback: Callable[[Run], Any]) -> Callable[[Run], Any]:
@@ -183,6 +208,10 @@ def _window(ax: Any, view: View) -> None:
         else:
             pad = 0.05 * (hi - lo) if hi > lo else 0.5 * (abs(hi) or 1.0)
             ax.set_ylim(lo - pad, hi + pad)
+
+
+def _draw_plain(result, axes, view, run, deps):
+    result.plot(ax=axes[0])
 
 
 def _draw_spectra(result, axes, view, run, deps):
@@ -277,7 +306,8 @@ register(Analysis(
     n_axes=lambda view: (2, None)))
 register(Analysis(
     "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
-    uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims))
+    uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims, per_run=True,
+    overlay_row=True, run_title=lambda r: f"PR {r.participation_ratio:.1f}"))
 register(Analysis(
     "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
     options=(Option("n_starts", "starts", _default("fixed_points", "n_starts", lambda r: 64),
@@ -286,7 +316,7 @@ register(Analysis(
              Option("x", "input held at", lambda r: "zero",
                     choices=lambda r: [("zero", "zero"), ("mean input", "mean")],
                     tip="the constant input under which points are fixed")),
-    needs=("pca",), n_axes=_dims, prepare=_held_input))
+    needs=("pca",), n_axes=_dims, prepare=_held_input, per_run=True))
 register(Analysis(
     "memory", "Memory", _draw_memory,
     options=(Option("method", "method", lambda r: "decoding",
