@@ -24,7 +24,7 @@ import torch
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), os.pardir))
 
-from example_models.sorting_line import SortingLineNet, make_inputs  # noqa: E402
+from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa: E402
 
 H, T, B = 128, 500, 8
 TARGET_REDRAW_MS = 150.0

@@ -1,14 +1,17 @@
-"""Small trained recurrent models to try hidden-state analyses on.
+"""Small trained recurrent models to try hidden-state analyses on (``hiddenlens.examples``).
+
+The folder ``example_models/`` of the source tree installs as the package
+``hiddenlens.examples``; import it under that name.
 
 Two invented tasks:
 
-* **Sorting line** (:mod:`example_models.sorting_line`): fruit crates pass a colour scanner on
+* **Sorting line** (:mod:`hiddenlens.examples.sorting_line`): fruit crates pass a colour scanner on
   a conveyor. The scanner flashes a crate's tag (red, green or yellow; one-hot on channels
   0-2) for one step; 2 to 40 steps later the diverter-gate cue arrives on channel 3 and the
   network must name the bin, i.e. the tag colour, at that step. Belt vibration streams in on
   channel 4 and all channels carry a little sensor noise. A classification task that needs
   memory; inputs (B, T, 5), logits (B, T, 3).
-* **Greenhouse** (:mod:`example_models.greenhouse`): from sunlight, vent opening and heater
+* **Greenhouse** (:mod:`hiddenlens.examples.greenhouse`): from sunlight, vent opening and heater
   power, predict the air temperature, a leaky integrator (time constant ~20 steps) of these
   drivers with a slow soil-heat store. A regression task; inputs (B, T, 3), outputs (B, T, 1).
 
@@ -27,12 +30,12 @@ The three ``rnn-gain*`` runs differ only in the gain g of the recurrent initiali
 (W_hh starts as g times a random orthogonal matrix, spectral radius exactly g). Their
 recurrent weights were trained with a small step size, so the gain still shows in the trained
 dynamics: contractive at 0.5, expansive and chaotic at 2.0. Retrain with
-``python -m example_models.train``.
+``python -m hiddenlens.examples.train``.
 
 Examples
 --------
 >>> import torch
->>> from example_models import load_run, sorting_line
+>>> from hiddenlens.examples import load_run, sorting_line
 >>> model = load_run("rnn-gain1.0")
 >>> x = torch.from_numpy(sorting_line.make_inputs(4, 100, seed=1))
 >>> model(x).shape
@@ -44,7 +47,7 @@ from __future__ import annotations
 import importlib
 from collections.abc import Callable, Mapping
 from pathlib import Path
-from types import MappingProxyType
+from types import MappingProxyType, ModuleType
 from typing import NamedTuple
 
 import numpy as np
@@ -73,37 +76,40 @@ class Run(NamedTuple):
         ``"module:function"`` of a factory that builds the untrained model with no arguments.
     weights : str
         File name of the trained ``state_dict`` in ``example_models/weights``.
+    task : str
+        The task module the run was trained on, e.g. ``"hiddenlens.examples.sorting_line"``
+        (its ``make_inputs`` feeds the run).
     """
 
     factory: str
     weights: str
+    task: str = ""
 
+
+_SORTING = "hiddenlens.examples.sorting_line"
+_GREENHOUSE = "hiddenlens.examples.greenhouse"
 
 RUNS: Mapping[str, Run] = MappingProxyType(
     {
-        "rnn-gain0.5": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain0.5.pt"),
-        "rnn-gain1.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain1.0.pt"),
-        "rnn-gain2.0": Run("example_models.sorting_line:make_tanh_rnn", "rnn-gain2.0.pt"),
-        "gru": Run("example_models.sorting_line:make_gru", "gru.pt"),
-        "greenhouse-lstm": Run("example_models.greenhouse:make_model", "greenhouse-lstm.pt"),
-    }
-)
-
-# Module whose make_inputs feeds each run.
-_TASKS: Mapping[str, str] = MappingProxyType(
-    {
-        "rnn-gain0.5": "example_models.sorting_line",
-        "rnn-gain1.0": "example_models.sorting_line",
-        "rnn-gain2.0": "example_models.sorting_line",
-        "gru": "example_models.sorting_line",
-        "greenhouse-lstm": "example_models.greenhouse",
+        "rnn-gain0.5": Run(f"{_SORTING}:make_tanh_rnn", "rnn-gain0.5.pt", _SORTING),
+        "rnn-gain1.0": Run(f"{_SORTING}:make_tanh_rnn", "rnn-gain1.0.pt", _SORTING),
+        "rnn-gain2.0": Run(f"{_SORTING}:make_tanh_rnn", "rnn-gain2.0.pt", _SORTING),
+        "gru": Run(f"{_SORTING}:make_gru", "gru.pt", _SORTING),
+        "greenhouse-lstm": Run(f"{_GREENHOUSE}:make_model", "greenhouse-lstm.pt", _GREENHOUSE),
     }
 )
 
 
-def list_runs() -> list[str]:
-    """Names of the shipped runs, in the order of :data:`RUNS`."""
-    return list(RUNS)
+def list_runs(task: ModuleType | str | None = None) -> list[str]:
+    """Names of the shipped runs, in the order of :data:`RUNS`.
+
+    ``task`` (a task module such as :mod:`hiddenlens.examples.sorting_line`, or its name)
+    keeps the runs trained on that task only.
+    """
+    if task is None:
+        return list(RUNS)
+    name = task.__name__ if isinstance(task, ModuleType) else str(task)
+    return [n for n, r in RUNS.items() if r.task == name]
 
 
 def _run(name: str) -> Run:
@@ -119,7 +125,7 @@ def _run(name: str) -> Run:
 
 def weights_path(name: str) -> Path:
     """Path of the trained ``state_dict`` of run ``name`` (the file may be missing if the
-    run was never trained; ``python -m example_models.train --only NAME`` writes it)."""
+    run was never trained; ``python -m hiddenlens.examples.train --only NAME`` writes it)."""
     return _HERE / "weights" / _run(name).weights
 
 
@@ -152,7 +158,7 @@ def load_run(name: str) -> nn.Module:
     if not path.is_file():
         raise FileNotFoundError(
             f"weights of run {name!r} not found at {path}; "
-            f"create them with `python -m example_models.train --only {name}`"
+            f"create them with `python -m hiddenlens.examples.train --only {name}`"
         )
     model = _import_factory(run.factory)()
     state = torch.load(path, map_location="cpu", weights_only=True)
@@ -167,8 +173,7 @@ def make_run_inputs(
 
     ``n_steps=None`` uses the task's default length (200 sorting line, 300 greenhouse).
     """
-    _run(name)
-    task = importlib.import_module(_TASKS[name])
+    task = importlib.import_module(_run(name).task)
     if n_steps is None:
         return task.make_inputs(n_sequences, seed=seed)
     return task.make_inputs(n_sequences, n_steps, seed=seed)

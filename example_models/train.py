@@ -1,4 +1,4 @@
-"""Retrain the shipped example runs: ``python -m example_models.train [--only NAME ...]``.
+"""Retrain the shipped example runs: ``python -m hiddenlens.examples.train [--only NAME ...]``.
 
 Training is deterministic: data come from seeded ``np.random.default_rng`` streams, models are
 initialised from private ``torch.Generator`` seeds, and torch runs on one thread. Each run's
@@ -289,7 +289,7 @@ def _summary_line(name: str, fig: dict) -> str:
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(
-        prog="python -m example_models.train",
+        prog="python -m hiddenlens.examples.train",
         description="Retrain the example runs deterministically and overwrite their weights.",
     )
     parser.add_argument(

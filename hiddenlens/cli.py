@@ -77,9 +77,11 @@ def _common_options(p: argparse.ArgumentParser, *, default_output: str,
     p.add_argument("-o", "--output", default=default_output, metavar="PATH",
                    help="folder for report.html and report.json, or a path ending in .html "
                         f"(default: ./{default_output})")
+    from ._registry import analyses
+
     p.add_argument("--analyses", nargs="+", metavar="NAME",
                    help="analyses to run, space- or comma-separated (default: all): "
-                        "spectra, gradient_flow, lyapunov, pca, fixed_points, memory")
+                        + ", ".join(analyses()))
     p.add_argument("--seed", type=int, default=0,
                    help="seed of the probe inputs and of the analyses' random starts "
                         "(default 0)")
@@ -116,14 +118,14 @@ def _probe_shape(text: str) -> tuple[int, int]:
 
 
 def _analyses(values: Sequence[str] | None) -> list[str] | None:
-    from ._summary import ANALYSES
+    from ._registry import analyses
 
     if not values:
         return None
     names = [v.strip() for item in values for v in item.split(",") if v.strip()]
-    bad = [n for n in names if n not in ANALYSES]
+    bad = [n for n in names if n not in analyses()]
     if bad:
-        raise CommandError(f"unknown analysis {bad[0]!r}; choose among {', '.join(ANALYSES)}")
+        raise CommandError(f"unknown analysis {bad[0]!r}; choose among {', '.join(analyses())}")
     return list(dict.fromkeys(names))
 
 
@@ -285,14 +287,15 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
                 seed: int, keep_going: bool, quiet: bool, title: str | None,
                 source: str, options: dict[str, dict[str, Any]] | None = None) -> Path:
     from ._compare import compare_runs
+    from ._figures import describe_inputs
+    from ._registry import analyses, available_analyses
     from ._report import write_report
-    from ._summary import available_analyses, describe_inputs, run_analyses
+    from ._runner import run_analyses
 
     say = _Progress(quiet)
     notes = []
     if which is None:
-        absent = [a for a in ("spectra", "gradient_flow", "lyapunov", "pca", "fixed_points",
-                              "memory") if a not in available_analyses()]
+        absent = [a for a in analyses() if a not in available_analyses()]
         if absent:
             notes.append(f"Not available in this installation and left out: "
                          f"{', '.join(absent)}.")
@@ -358,25 +361,24 @@ def _cmd_report(args: argparse.Namespace) -> int:
 def demo_runs() -> dict[str, Any]:
     """The shipped example runs of the sorting-line task, name -> trained model."""
     try:
-        import example_models
+        from . import examples
+        from .examples import sorting_line
     except ImportError as err:
-        raise CommandError("the example models are not installed (package example_models); "
-                           "install hiddenlens from its source tree") from err
+        raise CommandError(f"the example models are not available ({err}); install hiddenlens "
+                           "from its source tree") from err
     runs = {}
-    for name, run in example_models.RUNS.items():
-        if not run.factory.startswith("example_models.sorting_line:"):
-            continue
+    for name in examples.list_runs(task=sorting_line):
         try:
-            runs[name] = example_models.load_run(name)
+            runs[name] = examples.load_run(name)
         except FileNotFoundError as err:
             raise CommandError(str(err)) from err
     if not runs:
-        raise CommandError("no sorting-line example run is shipped with example_models")
+        raise CommandError("no sorting-line example run is shipped with hiddenlens.examples")
     return runs
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from example_models import sorting_line
+    from .examples import sorting_line
 
     which = _analyses(args.analyses)
     out = _output_paths(args.output)

@@ -18,7 +18,11 @@ from hiddenlens._summary import ANALYSES, available_analyses
 
 ROOT = Path(__file__).resolve().parents[1]
 IMG = '<img src="data:image/png;base64,'
-FACTORY = "example_models.sorting_line:make_tanh_rnn"
+# The report and this test may run at different torch thread counts: float32 recordings then
+# differ by ~1e-7 relative, so analysis outputs are compared at the documented tolerance of
+# thread-count invariance (relative 1e-5), not bit for bit.
+THREAD_RTOL = 1e-5
+FACTORY = "hiddenlens.examples.sorting_line:make_tanh_rnn"
 
 
 def _python_m(*args, cwd=ROOT):
@@ -46,7 +50,7 @@ def test_no_command_prints_help(capsys):
 
 @pytest.fixture(scope="module")
 def weights(tmp_path_factory):
-    from example_models import sorting_line
+    from hiddenlens.examples import sorting_line
 
     d = tmp_path_factory.mktemp("weights")
     paths = {}
@@ -93,7 +97,7 @@ def test_report_single_model_from_npz_key(weights, tmp_path, capsys):
     doc = json.loads(out.with_suffix(".json").read_text())
     assert list(doc["runs"]) == ["gain0.5"] and doc["analyses"] == ["lyapunov", "pca"]
     # the JSON equals the library's own results on the same model and inputs
-    from example_models import sorting_line
+    from hiddenlens.examples import sorting_line
 
     model = sorting_line.make_tanh_rnn(gain=0.5, seed=1)
     x = np.load(weights / "xs.npz")["a"]
@@ -127,9 +131,9 @@ def test_report_comparison_with_probe_and_names(weights, tmp_path, capsys):
 @pytest.mark.parametrize("argv, reason", [
     (["--model", "no_colon"], "must look like package.module:function"),
     (["--model", "no_such_pkg.nets:make"], "cannot import module 'no_such_pkg.nets'"),
-    (["--model", "example_models.sorting_line:nope"], "has no attribute 'nope'"),
-    (["--model", "example_models.sorting_line:N_INPUTS"], "is not callable"),
-    (["--model", "example_models.sorting_line:make_dataset"], "not a torch.nn.Module"),
+    (["--model", "hiddenlens.examples.sorting_line:nope"], "has no attribute 'nope'"),
+    (["--model", "hiddenlens.examples.sorting_line:N_INPUTS"], "is not callable"),
+    (["--model", "hiddenlens.examples.sorting_line:make_dataset"], "not a torch.nn.Module"),
     (["--weights", "{d}/missing.pt"], "weights file '{d}/missing.pt' not found"),
     (["--weights", "{d}/junk.pt"], "cannot read weights from '{d}/junk.pt'"),
     (["--weights", "{d}/gru.pt"], "do not fit the model"),
@@ -185,18 +189,20 @@ def test_bad_report_via_python_m_is_one_line(tmp_path):
 
 def _demo_weights_present():
     try:
-        import example_models
+        import hiddenlens.examples as example_models
     except ImportError:
         return False
-    return all(example_models.weights_path(n).is_file() for n in example_models.RUNS
-               if example_models.RUNS[n].factory.startswith("example_models.sorting_line:"))
+    from hiddenlens.examples import sorting_line
+
+    return all(example_models.weights_path(n).is_file()
+               for n in example_models.list_runs(task=sorting_line))
 
 
 @pytest.mark.slow
 @pytest.mark.skipif(not _demo_weights_present(), reason="example weights not trained yet")
 def test_demo_report_on_the_example_models(tmp_path, capsys):
-    import example_models
-    from example_models import sorting_line
+    import hiddenlens.examples as example_models
+    from hiddenlens.examples import sorting_line
 
     code = cli.main(["demo", "-o", str(tmp_path / "demo")])
     cap = capsys.readouterr()
@@ -205,8 +211,7 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     assert cap.out.strip() == str(path)
     page = path.read_text(encoding="utf-8")
     doc = json.loads(path.with_suffix(".json").read_text())
-    names = [n for n, r in example_models.RUNS.items()
-             if r.factory.startswith("example_models.sorting_line:")]
+    names = example_models.list_runs(task=sorting_line)
     assert doc["comparison"]["names"] == names
     assert "http://" not in page and "https://" not in page and "<script" not in page
     sections = dict(re.findall(r'<section id="analysis-(\w+)">(.*?)</section>', page, re.S))
@@ -230,15 +235,15 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     if "pca" in present:
         pca = hiddenlens.pca_trajectories(trace, **opts["pca"])
         assert_allclose(run["key_figures"]["participation_ratio"], pca.participation_ratio,
-                        rtol=1e-12)
+                        rtol=THREAD_RTOL)
     if "lyapunov" in present:
         lyap = hiddenlens.lyapunov_spectrum(model, x, **opts["lyapunov"])
-        assert_allclose(run["arrays"]["lyapunov"]["exponents"], lyap.exponents, rtol=1e-12)
-        assert_allclose(run["key_figures"]["lyapunov_max"], lyap.exponents[0], rtol=1e-12)
+        assert_allclose(run["arrays"]["lyapunov"]["exponents"], lyap.exponents, rtol=THREAD_RTOL)
+        assert_allclose(run["key_figures"]["lyapunov_max"], lyap.exponents[0], rtol=THREAD_RTOL)
     if "memory" in present:
         mem = hiddenlens.memory_curve(model, **opts["memory"])
         assert run["key_figures"]["memory_span"] == mem.span
-        assert_allclose(run["arrays"]["memory"]["scores"], mem.scores, rtol=1e-12)
+        assert_allclose(run["arrays"]["memory"]["scores"], mem.scores, rtol=THREAD_RTOL)
     if "fixed_points" in present:
         fp = hiddenlens.find_fixed_points(model, trace, **opts["fixed_points"])
         assert run["arrays"]["fixed_points"]["stability"] == fp.stability.tolist()

@@ -1,4 +1,4 @@
-"""Tests for example_models: shipped runs, task generators, factories and the training script."""
+"""Tests for hiddenlens.examples (folder example_models/): runs, tasks, factories, training."""
 
 from __future__ import annotations
 
@@ -10,12 +10,14 @@ import math
 import numpy as np
 import pytest
 import torch
+from hiddenlens.examples._nets import recurrent_spectral_radii
+from hiddenlens.examples.train import RECIPES, fit, largest_lyapunov
 from scipy import signal, stats
 from sklearn.metrics import accuracy_score, r2_score
 from torch import nn
 
-import example_models
-from example_models import (
+import hiddenlens.examples as example_models
+from hiddenlens.examples import (
     RUNS,
     list_runs,
     load_run,
@@ -23,12 +25,10 @@ from example_models import (
     probe_inputs_path,
     weights_path,
 )
-from example_models import greenhouse as gh
-from example_models import sorting_line as sl
-from example_models._nets import recurrent_spectral_radii
-from example_models.train import RECIPES, fit, largest_lyapunov
+from hiddenlens.examples import greenhouse as gh
+from hiddenlens.examples import sorting_line as sl
 
-SORTING_RUNS = [name for name in RUNS if RUNS[name].factory.startswith("example_models.sorting")]
+SORTING_RUNS = example_models.list_runs(task=sl)
 RECORD_PATH = weights_path(list_runs()[0]).parent / "training_record.json"
 
 
@@ -334,5 +334,6 @@ def test_training_is_deterministic_and_leaves_global_rng_alone():
 
 def test_package_docstring_describes_the_scenario():
     doc = example_models.__doc__
-    for word in ("Sorting line", "Greenhouse", "rnn-gain2.0", "python -m example_models.train"):
+    for word in ("Sorting line", "Greenhouse", "rnn-gain2.0",
+                 "python -m hiddenlens.examples.train"):
         assert word in doc

@@ -56,7 +56,7 @@ def sliced_shell_client(NotebookClient):
 
 
 def kernel_env(monkeypatch) -> None:
-    """Let the kernel import hiddenlens and example_models from this checkout."""
+    """Let the kernel import hiddenlens and hiddenlens.examples from this checkout."""
     path = os.environ.get("PYTHONPATH", "")
     monkeypatch.setenv("PYTHONPATH", str(ROOT) + (os.pathsep + path if path else ""))
 
