@@ -17,9 +17,10 @@ import torch
 
 pytest.importorskip("ipywidgets")
 
+from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa: E402
+
 import hiddenlens  # noqa: E402
 import hiddenlens._summary  # noqa: E402
-from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa: E402
 from hiddenlens._summary import analysis_function, key_figures, summary_sentence  # noqa: E402
 from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
 from hiddenlens.widgets._jobs import Cache, Runner, Step  # noqa: E402
