@@ -145,3 +145,17 @@ def test_context_keys_are_passed_or_the_analysis_is_skipped(inputs):
                                       context={"targets": np.ones(3)})
         assert out.options["scored"]["targets"] is not None and "scored" in out
     assert "scored" not in hiddenlens.analyses()
+
+
+def test_the_worked_example_of_the_docs_runs(tmp_path, monkeypatch, capsys):
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "docs" / "extending.md").read_text()
+    code = re.search(r"```python\n(.+?)\n```", text, re.S).group(1)
+    monkeypatch.chdir(tmp_path)
+    exec(compile(code, "docs/extending.md", "exec"), {"__name__": "extending_example"})
+    out = capsys.readouterr().out
+    assert "the state moves" in out and "Δ step_length_median" in out
+    page = (tmp_path / "extending-demo" / "report.html").read_text(encoding="utf-8")
+    assert 'id="analysis-step_length"' in page and "median step length" in page
+    assert "step_length" not in hiddenlens.analyses()
