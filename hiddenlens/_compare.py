@@ -12,7 +12,7 @@ from ._figures import figure_rows, key_figures, summary_sentence
 from ._record import as_system
 from ._registry import analyses, analysis_spec
 from ._results import frozen_mapping, readonly
-from ._runner import AnalysisResults, run_analyses
+from ._runner import AnalysisResults, ModelLike, Sequences, run_analyses
 from ._systems import RecurrentSystem
 from ._trace import Trace
 
@@ -179,8 +179,8 @@ class RunComparison:
 
 # ---------------------------------------------------------------------- comparing
 def compare_runs(
-    runs: Mapping[str, RecurrentSystem | Any],
-    inputs: Any,
+    runs: Mapping[str, ModelLike],
+    inputs: Sequences,
     *,
     which: Iterable[str] | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,

@@ -178,7 +178,8 @@ def _as_runs(results_or_runs: Any, name: str) -> tuple[dict[str, Mapping[str, An
     )
 
 
-def report_data(results_or_runs: Any, *, name: str = "model", title: str | None = None,
+def report_data(results_or_runs: AnalysisResults | RunComparison
+                | Mapping[str, Mapping[str, Any]], *, name: str = "model", title: str | None = None,
                 inputs_description: str | None = None) -> dict[str, Any]:
     """The JSON document of a report: key figures, summaries of the main arrays, metadata.
 
@@ -393,7 +394,7 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
 
 
 def write_report(
-    results_or_runs: Any,
+    results_or_runs: AnalysisResults | RunComparison | Mapping[str, Mapping[str, Any]],
     path: str | os.PathLike,
     *,
     title: str | None = None,

@@ -7,6 +7,7 @@ import time
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
+import numpy as np
 import torch
 
 from ._record import as_system, record
@@ -15,9 +16,14 @@ from ._systems import RecurrentSystem
 from ._trace import Trace
 from ._validation import as_sequences
 
-__all__ = ["AnalysisResults", "analysis_options", "budget_of", "run_analyses"]
+__all__ = ["AnalysisResults", "ModelLike", "Sequences", "analysis_options", "budget_of",
+           "run_analyses"]
 
 ProgressCallback = Callable[[str, int, int], Any]
+#: What :func:`hiddenlens.wrap` accepts: a system, a recurrent module, or a step function.
+ModelLike = RecurrentSystem | torch.nn.Module | Callable[..., Any]
+#: Input sequences (B, T, I) or (T, I), batch first.
+Sequences = torch.Tensor | np.ndarray
 
 
 class AnalysisResults(dict):
@@ -100,8 +106,8 @@ def _chosen(which: Iterable[str] | str | None) -> tuple[list[AnalysisSpec], dict
 
 
 def run_analyses(
-    model_or_system: RecurrentSystem | torch.nn.Module | Callable[..., Any],
-    inputs: torch.Tensor | Any,
+    model_or_system: ModelLike,
+    inputs: Sequences,
     *,
     which: Iterable[str] | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,

@@ -14,7 +14,7 @@ from matplotlib.figure import Figure
 from .._compare import RunComparison, comparison_of, plot_cka, plot_overlay
 from .._figures import figure_rows, format_delta, format_figure, key_figures, summary_sentence
 from .._record import as_system, record
-from .._runner import AnalysisResults
+from .._runner import AnalysisResults, ModelLike, Sequences
 from .._validation import as_sequences
 from . import _render
 from ._board import _ALL, Board, Panel, check_analyses, row
@@ -257,7 +257,7 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
             f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
 
 
-def compare(runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
+def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
             **wrap_options: Any) -> Comparison:

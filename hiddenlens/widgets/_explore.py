@@ -10,6 +10,7 @@ import ipywidgets as widgets
 import numpy as np
 
 from .._record import as_system, record
+from .._runner import ModelLike, Sequences
 from .._summary import key_figures, summary_sentence
 from .._validation import as_sequences
 from . import _render
@@ -126,7 +127,7 @@ class Explorer(Board):
                 f"#3b6ea5;padding:6px 10px;font-size:13.5px'>{body}{rest}</div>")
 
 
-def explore(model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
+def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
             **wrap_options: Any) -> Explorer:
