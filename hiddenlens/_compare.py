@@ -218,58 +218,71 @@ def compare_runs(
     CKA compares the runs' representations on these inputs only; other inputs can rank the
     runs differently.
     """
-    if not isinstance(runs, Mapping) or len(runs) == 0:
-        raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
-                        "{'before': model_a, 'after': model_b}")
     if cka_parts not in ("output", "all"):
         raise ValueError(f"cka_parts must be 'output' or 'all', got {cka_parts!r}")
-    names = [str(n) for n in runs]
-    if len(set(names)) != len(names):
-        raise ValueError("run names must be distinct as strings")
-    systems = {str(n): as_system(m) for n, m in runs.items()}
-    sizes = {n: s.input_size for n, s in systems.items()}
-    if len(set(sizes.values())) > 1:
-        raise ValueError(f"runs take different input sizes {sizes}; compare runs that read the "
-                         "same inputs")
+    systems = check_runs(runs)
+    names = list(systems)
     which_list = None if which is None else ([which] if isinstance(which, str) else list(which))
-
-    bar = None
-    if progress is True:
-        from tqdm.auto import tqdm
-
-        bar = tqdm(total=None, desc="compare", leave=False)
-    done = 0
-
-    def per_run(run: str) -> Callable[[str, int, int], None] | None:
-        if not progress:
-            return None
-
-        def step(name: str, _i: int, total: int) -> None:
-            nonlocal done
-            if name == "done":
-                return
-            grand = total * len(names)
-            if bar is not None:
-                bar.total, bar.n = grand, done
-                bar.set_postfix_str(f"{run}: {name}")
-            else:
-                progress(f"{run}: {name}", done, grand)
-            done += 1
-
-        return step
-
+    ticks = _Ticks(progress, len(names))
+    bar = ticks.bar
     results: dict[str, AnalysisResults] = {}
     try:
         for n in names:
             results[n] = run_analyses(systems[n], inputs, which=which_list, options=options,
-                                      progress=per_run(n), seed=seed, on_error=on_error,
+                                      progress=ticks.for_run(n), seed=seed, on_error=on_error,
                                       context=context)
         if callable(progress):
-            progress("done", done, done)
+            progress("done", ticks.done, ticks.done)
     finally:
         if bar is not None:
             bar.close()
     return comparison_of(results, systems, cka_parts=cka_parts)
+
+
+def check_runs(runs: Mapping[str, ModelLike], **wrap_options: Any
+               ) -> dict[str, RecurrentSystem]:
+    """Run name -> system for a mapping of runs that read the same inputs (checked)."""
+    if not isinstance(runs, Mapping) or len(runs) == 0:
+        raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
+                        "{'before': model_a, 'after': model_b}")
+    names = [str(n) for n in runs]
+    if len(set(names)) != len(names):
+        raise ValueError("run names must be distinct as strings")
+    systems = {str(n): as_system(m, **wrap_options) for n, m in runs.items()}
+    sizes = {n: s.input_size for n, s in systems.items()}
+    if len(set(sizes.values())) > 1:
+        raise ValueError(f"runs take different input sizes {sizes}; compare runs that read the "
+                         "same inputs")
+    return systems
+
+
+class _Ticks:
+    """One progress count over every run's analyses: a bar, or ``progress(label, done, total)``."""
+
+    def __init__(self, progress: Any, n_runs: int) -> None:
+        self.progress, self.n_runs, self.done = progress, n_runs, 0
+        self.bar = None
+        if progress is True:
+            from tqdm.auto import tqdm
+
+            self.bar = tqdm(total=None, desc="compare", leave=False)
+
+    def for_run(self, run: str) -> Callable[[str, int, int], None] | None:
+        if not self.progress:
+            return None
+
+        def step(name: str, _i: int, total: int) -> None:
+            if name == "done":
+                return
+            grand = total * self.n_runs
+            if self.bar is not None:
+                self.bar.total, self.bar.n = grand, self.done
+                self.bar.set_postfix_str(f"{run}: {name}")
+            else:
+                self.progress(f"{run}: {name}", self.done, grand)
+            self.done += 1
+
+        return step
 
 
 def comparison_of(results: Mapping[str, AnalysisResults],

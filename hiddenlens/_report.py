@@ -130,24 +130,23 @@ def _jsonable(v: Any) -> Any:
         return {str(k): _jsonable(x) for k, x in v.items()}
     if isinstance(v, (list, tuple)):
         return [_jsonable(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return _jsonable(v.tolist())
+    if isinstance(v, np.ndarray) or hasattr(v, "detach"):
+        return _jsonable(np.asarray(v.detach().cpu() if hasattr(v, "detach") else v).tolist())
     if isinstance(v, (bool, np.bool_)):
         return bool(v)
     if isinstance(v, (int, np.integer)):
         return int(v)
     if isinstance(v, (float, np.floating)):
-        f = float(v)
-        if math.isnan(f):
-            return "nan"
-        if math.isinf(f):
-            return "inf" if f > 0 else "-inf"
-        return f
-    if v is None or isinstance(v, str):
-        return v
-    if hasattr(v, "detach"):
-        return _jsonable(v.detach().cpu().numpy())
-    return repr(v)
+        return _json_float(float(v))
+    return v if v is None or isinstance(v, str) else repr(v)
+
+
+def _json_float(f: float) -> float | str:
+    if math.isnan(f):
+        return "nan"
+    if math.isinf(f):
+        return "inf" if f > 0 else "-inf"
+    return f
 
 
 def _model_info(results: Any) -> dict[str, Any]:

@@ -205,16 +205,7 @@ def _run_each(specs: list[AnalysisSpec], system: RecurrentSystem, trace: Trace,
                 progress(spec.name, i, len(specs))
             if bar is not None:
                 bar.set_postfix_str(spec.name)
-            t0 = time.perf_counter()
-            try:
-                res = spec(system, trace, **dict(out.options[spec.name]))
-            except Exception as err:
-                if on_error == "raise":
-                    raise
-                out.skipped[spec.name] = f"failed: {type(err).__name__}: {err}"
-            else:
-                out[spec.name] = res
-                out.seconds[spec.name] = time.perf_counter() - t0
+            _run_one(spec, system, trace, out, on_error)
             if bar is not None:
                 bar.update(1)
         if callable(progress):
@@ -222,3 +213,17 @@ def _run_each(specs: list[AnalysisSpec], system: RecurrentSystem, trace: Trace,
     finally:
         if bar is not None:
             bar.close()
+
+
+def _run_one(spec: AnalysisSpec, system: RecurrentSystem, trace: Trace, out: AnalysisResults,
+             on_error: str) -> None:
+    t0 = time.perf_counter()
+    try:
+        res = spec(system, trace, **dict(out.options[spec.name]))
+    except Exception as err:
+        if on_error == "raise":
+            raise
+        out.skipped[spec.name] = f"failed: {type(err).__name__}: {err}"
+    else:
+        out[spec.name] = res
+        out.seconds[spec.name] = time.perf_counter() - t0

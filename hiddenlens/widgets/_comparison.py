@@ -11,9 +11,9 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 
-from .._compare import RunComparison, comparison_of, plot_cka, plot_overlay
+from .._compare import RunComparison, check_runs, comparison_of, plot_cka, plot_overlay
 from .._figures import figure_rows, format_delta, format_figure, key_figures, summary_sentence
-from .._record import as_system, record
+from .._record import record
 from .._runner import AnalysisResults, ModelLike, Sequences
 from .._validation import as_sequences
 from . import _render
@@ -42,18 +42,9 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  **wrap_options: Any) -> None:
-        if not isinstance(runs, Mapping) or len(runs) == 0:
-            raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
-                            "{'before': model_a, 'after': model_b}")
-        names = [str(n) for n in runs]
-        if len(set(names)) != len(names):
-            raise ValueError("run names must be distinct as strings")
+        systems = check_runs(runs, **wrap_options)
+        names = list(systems)
         tabs = check_analyses(analyses)
-        systems = {str(n): as_system(m, **wrap_options) for n, m in runs.items()}
-        sizes = {n: s.input_size for n, s in systems.items()}
-        if len(set(sizes.values())) > 1:
-            raise ValueError(f"runs take different input sizes {sizes}; compare runs that read "
-                             "the same inputs")
         recorded = {}
         for n, system in systems.items():
             x = as_sequences(inputs, system.input_size, system.dtype,
