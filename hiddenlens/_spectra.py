@@ -40,6 +40,10 @@ _KRYLOV_MIN_STATE = 4096
 # c = 16 leaves a margin of two orders of magnitude over the errors measured against float64
 # SVD (tests/test_spectra.py, benchmarks/bench_spectra.py).
 _GRAM_ERROR = 16.0
+# below this state size every per-chunk operation (elementwise gate terms, batched products,
+# LAPACK) runs on one torch thread: on a shared 2-core machine a second thread waiting for a
+# busy core turned each of them into milliseconds (benchmarks/bench_spectra.py)
+_THREADS_FROM_STATE = 2048
 _EPS = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
@@ -271,7 +275,8 @@ def jacobian_spectra(
     show = progress if progress is not None else (len(starts) > 10 and B * T * S * S > 1 << 28)
     from tqdm.auto import tqdm
 
-    with torch.no_grad():
+    # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
+    with torch.no_grad(), single_thread(S < _THREADS_FROM_STATE):
         for t0 in tqdm(starts, disable=not show, desc="spectra", leave=False, unit="chunk"):
             t1 = min(T, t0 + chunk)
             n = t1 - t0
@@ -317,7 +322,11 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
     J = None
     if method != "krylov" or want_radius:
         J = lin.dense().to(work)  # (N, S, S)
-        ok &= torch.isfinite(J).all(2).all(1)
+        # a sum is NaN or Inf whenever a term is (and overflows only past 1e300 per entry):
+        # the full elementwise test runs on those steps only
+        sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
+        if sus.numel():
+            ok[sus] &= torch.isfinite(J[sus]).all(2).all(1)
     sv = torch.full((N, k), float("nan"), dtype=torch.float64)
     rad = torch.full((N,), float("nan"), dtype=torch.float64) if want_radius else None
     low = torch.full((N,), float("nan"), dtype=torch.float64) if want_low else None
