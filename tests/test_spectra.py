@@ -214,3 +214,10 @@ def test_bad_options(gru_trace):
         hl.jacobian_spectra(model, trace, k=2, tol=0)
     with pytest.raises(ValueError, match="sample must be in"):
         hl.jacobian_spectra(model, trace, k=2).plot(sample=7)
+
+
+def test_thread_count_is_given_back(gru_trace):
+    model, trace = gru_trace
+    before = torch.get_num_threads()
+    hl.jacobian_spectra(model, trace, k=3, radius=True)
+    assert torch.get_num_threads() == before
