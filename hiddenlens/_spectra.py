@@ -77,7 +77,8 @@ class JacobianSpectra:
         Bounds on the spectral radius at no extra cost, when the exact value was not asked for:
         column 0 the lower bound (prod sigma_i)^(1/S) = |det J_t|^(1/S) when all S values were
         computed, NaN otherwise; column 1 the upper bound sigma_1. These are bounds, not
-        estimates: the radius lies between them.
+        estimates: the radius lies between them (up to ``tol``, the accuracy of the sigma_i
+        they are made from).
     excluded : ndarray of shape (n, 2)
         (sample, step) of every step left out because its state or Jacobian is not finite
         (NaN or Inf); their rows are NaN and the summaries are over the other steps.
