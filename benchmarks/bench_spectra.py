@@ -1,31 +1,30 @@
-"""Top-k singular values of step Jacobians against torch.linalg.svdvals, and peak memory.
+"""Jacobian spectra against the two-liner ``jacobians`` + ``numpy.linalg.svd``, in one run.
 
-Part 1, speed at equal accuracy: the k=10 largest singular values of B*n step Jacobians
-(B=8 sequences, n steps each) of untrained one-layer GRU/LSTM models, float64:
+Prints, beside ``os.getloadavg()`` before each part:
 
-* svdvals: ``torch.linalg.svdvals`` of the materialised Jacobians, float64 and float32 (the
-  baseline is the faster of the two; both meet the accuracy below);
-* gram / krylov: the "gram" and "krylov" methods of ``hiddenlens.jacobian_spectra`` on the same
-  Jacobians (krylov through the closed-form Jacobian-vector products, J never formed);
-* end to end: ``jacobian_spectra(model, trace, k=10, method=...)`` including the Jacobians.
+1. For S = 16 ... 1024 (one-layer GRU with H = S, B = 1, n steps): seconds of the two-liner
+   ``np.linalg.svd(hl.jacobians(model, trace, dtype="float64"), compute_uv=False)`` at its best
+   thread setting (numpy's default threads and one BLAS thread through threadpoolctl, the
+   faster of the two; threadpoolctl is used here only, never in the library), and the ratio
+   two-liner / ``jacobian_spectra`` with default options (all S values), with k = S/8 and
+   with k = 8 (targets: >= 1 for the default, >= 3 for k <= S/8), with the largest relative
+   error of the reported values against the SVD (target <= 1e-3).
+2. The exact spectral radius (``radius=True``): its extra cost over the default run, as a
+   ratio to one batched ``torch.linalg.eigvals`` call on the same Jacobians (target <= 1).
+3. Streaming: B = 1, H = 64, k = 8 at T = 1000 and T = 200000 (quick: 16000), milliseconds per
+   step and their ratio (target <= 1.5), total seconds at the long T (target < 60 s).
+4. The widget's spectra tab for a GRU with H = 128, T = 500, B = 8: seconds from ``explore`` to
+   its first figure (compute and draw; target <= 1.5 s).
+5. Thread policy: ``jacobian_spectra`` at S = 64 and S = 1024 with one torch thread (the
+   library's choice below 2048 units) and with torch's default threads.
 
-Accuracy: max relative error of the top k against float64 svdvals, target <= 1e-4.
-
-Part 2, memory: ``jacobian_spectra`` of a GRU with H=512 over T=2000 steps, B=8 (16,000
-Jacobians of 512 x 512, 31 GiB if all were held in float64) in a fresh subprocess; peak RSS from
-``resource.getrusage`` (target < 2 GiB). It takes minutes; ``--rss-steps`` shortens it.
-
-Runs once with 1 thread (torch, and BLAS through threadpoolctl) and once with the defaults.
-
-    python benchmarks/bench_spectra.py [--rounds 3] [--rss-steps 2000] [--skip-rss]
+    python benchmarks/bench_spectra.py [--quick]     # --quick: under a minute
 """
 
 from __future__ import annotations
 
 import argparse
-import resource
-import subprocess
-import sys
+import os
 import time
 
 import numpy as np
@@ -34,115 +33,132 @@ from threadpoolctl import threadpool_limits
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._jacobians import linearize
-from hiddenlens._spectra import _dense_top, top_singular_values
+import hiddenlens._spectra as spectra_module
+from hiddenlens._threads import single_thread
 
-B, I, K = 8, 16, 10
-CONFIGS = [(nn.GRU, 256, 4), (nn.LSTM, 256, 2), (nn.GRU, 512, 2), (nn.LSTM, 512, 1)]
+I = 16
+FULL_SIZES = {16: 2000, 32: 2000, 64: 2000, 128: 1000, 256: 128, 512: 24, 1024: 4}
+QUICK_SIZES = {16: 1000, 64: 1000, 128: 200, 256: 32, 1024: 2}
 
 
-def build(cls, H, T, seed=0):
+def build(H: int, T: int, B: int = 1, seed: int = 0):
+    """A GRU with torch's own init range drawn from a local generator, and its trace."""
     gen = torch.Generator().manual_seed(seed)
     with torch.random.fork_rng(devices=[]):
-        model = cls(I, H, batch_first=True).eval()
+        model = nn.GRU(I, H, batch_first=True).eval()
     with torch.no_grad():
         for p in model.parameters():
             p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) / H**0.5)
     x = torch.randn(B, T, I, generator=gen)
-    return model, hl.record(model, x)
+    return model, x, hl.record(model, x)
 
 
-def best(fn, rounds):
+def best(rounds: int, fn, *args, **kw):
     out, times = None, []
     for _ in range(rounds):
         start = time.perf_counter()
-        out = fn()
+        out = fn(*args, **kw)
         times.append(time.perf_counter() - start)
     return min(times), out
 
 
-def part1(rounds):
-    for cls, H, n in CONFIGS:
-        one_config(cls, H, n, rounds)
+def load() -> str:
+    return "load {:.2f} {:.2f} {:.2f}".format(*os.getloadavg())
 
 
-def one_config(cls, H, n, rounds):
-    model, trace = build(cls, H, n)
-    system = hl.wrap(model)
-    S = system.state_size
-    N = B * n
-    J = torch.from_numpy(hl.jacobians(system, trace, dtype="float64")).reshape(N, S, S)
-    prev = torch.from_numpy(trace.previous_states().reshape(N, S))
-    x = torch.from_numpy(np.array(trace.inputs).reshape(N, I))
-    lin = linearize(system, prev, x, dtype=torch.float64)
-    ref = torch.linalg.svdvals(J)[:, :K]
-    gen = torch.Generator().manual_seed(0)
-    runs = {
-        "svdvals f64": lambda: torch.linalg.svdvals(J)[:, :K],
-        "svdvals f32": lambda: torch.linalg.svdvals(J.float())[:, :K].double(),
-        "gram": lambda: _dense_top(J, K, "gram", 1e-4),
-        "krylov": lambda: top_singular_values(lin, K, tol=1e-4, generator=gen),
-    }
-    _dense_top(J[:2], K, "gram", 1e-4)  # warm-up: scipy import, thread pools
-    res = {}
-    for name, fn in runs.items():
-        t, sv = best(fn, rounds)
-        res[name] = (t, float(((sv - ref).abs() / ref).max()))
-    base = min(res["svdvals f64"][0], res["svdvals f32"][0])
-    print(f"{cls.__name__} H={H} (S={S}), {N} Jacobians, k={K}:")
-    for name, (t, err) in res.items():
-        print(f"  {name:12s} {1e3 * t / N:8.2f} ms/Jacobian   speed-up {base / t:5.2f}x"
-              f"   max rel. error {err:.1e}")
-    e2e = {m: best(lambda m=m: hl.jacobian_spectra(system, trace, k=K, method=m, tol=1e-4,
-                                                   progress=False), rounds)[0]
-           for m in ("svd", "gram")}
-    print(f"  end to end: jacobian_spectra svd {e2e['svd']:.2f} s, gram {e2e['gram']:.2f} s"
-          f"   speed-up {e2e['svd'] / e2e['gram']:.2f}x")
+def two_liner(model, trace):
+    return np.linalg.svd(hl.jacobians(model, trace, dtype="float64"), compute_uv=False)
 
 
-def rss_child(steps):
-    model, trace = build(nn.GRU, 512, steps)
+def part_sizes(sizes, rounds):
+    print(f"\n== 1. jacobian_spectra vs jacobians + numpy.linalg.svd ({load()})")
+    print("   S      n | two-liner s (threads) | default  ratio err    | k=S/8  ratio err    "
+          "| k=8   ratio err")
+    for S, n in sizes.items():
+        model, _, trace = build(S, n)
+        t_def, ref = best(rounds, two_liner, model, trace)
+        with threadpool_limits(limits=1):
+            t_one, _ = best(rounds, two_liner, model, trace)
+        base, which = min((t_def, "default"), (t_one, "1"))
+        row = f"{S:5d} {n:6d} | {base:9.3f} ({which:>7s})   "
+        for k in (None, max(1, S // 8), 8):
+            t, res = best(rounds, hl.jacobian_spectra, model, trace, k=k, progress=False)
+            err = float(np.max(np.abs(res.singular_values - ref[..., :res.k])
+                               / ref[..., :res.k]))
+            row += f"| {t:6.3f} {base / t:5.2f}x {err:.0e} "
+        print(row, flush=True)
+
+
+def part_radius(rounds):
+    print(f"\n== 2. exact spectral radius vs one batched eigvals call ({load()})")
+    for S, n in ((64, 1000), (128, 250)):
+        model, _, trace = build(S, n)
+        J = torch.from_numpy(hl.jacobians(model, trace, dtype="float64")).reshape(-1, S, S)
+        with single_thread():
+            t_eig, _ = best(rounds, torch.linalg.eigvals, J)
+        t0, _ = best(rounds, hl.jacobian_spectra, model, trace, progress=False)
+        t1, _ = best(rounds, hl.jacobian_spectra, model, trace, radius=True, progress=False)
+        print(f"   S={S:4d}, {n} steps: radius adds {t1 - t0:.3f} s, one torch eigvals call "
+              f"{t_eig:.3f} s: ratio {(t1 - t0) / t_eig:.2f} (target <= 1); the default's free "
+              "bounds cost nothing extra")
+
+
+def part_stream(long_T):
+    print(f"\n== 3. streaming, B=1, H=64, k=8 ({load()})")
+    per = {}
+    for T in (1000, long_T):
+        model, _, trace = build(64, T)
+        start = time.perf_counter()
+        hl.jacobian_spectra(model, trace, k=8, progress=T > 50000)
+        total = time.perf_counter() - start
+        per[T] = total / T
+        print(f"   T={T:7d}: {total:7.2f} s, {1e3 * per[T]:.3f} ms per step", flush=True)
+    print(f"   per-step ratio T={long_T} / T=1000: {per[long_T] / per[1000]:.2f} "
+          "(target <= 1.5)")
+
+
+def part_widget():
+    from hiddenlens.widgets import explore
+
+    print(f"\n== 4. widget spectra tab, GRU H=128, T=500, B=8 ({load()})")
+    model, x, _ = build(128, 500, B=8, seed=1)
+    explore(model, x[:, :5], analyses=["spectra"], background=False)  # imports, first draw
     start = time.perf_counter()
-    spec = hl.jacobian_spectra(model, trace, k=K, progress=False)
-    elapsed = time.perf_counter() - start
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20  # KiB -> GiB
-    print(f"RSS {peak:.3f} {elapsed:.1f} {spec.method}")
+    view = explore(model, x, analyses=["spectra"], background=False)
+    shown = time.perf_counter() - start
+    assert view.images["spectra"], "the spectra tab drew nothing"
+    print(f"   explore(...) to the first figure: {shown:.2f} s (target <= 1.5 s)")
 
 
-def part2(steps):
-    cmd = [sys.executable, __file__, "--rss-child", str(steps)]
-    out = subprocess.run(cmd, capture_output=True, text=True, check=True).stdout.split()
-    peak, elapsed, method = float(out[1]), float(out[2]), out[3]
-    full = B * steps * 512 * 512 * 8 / 2**30
-    print(f"GRU H=512, T={steps}, B={B}, k={K} (method {method}): peak RSS {peak:.2f} GiB "
-          f"(target < 2 GiB; all Jacobians at once would be {full:.1f} GiB), {elapsed:.0f} s")
+def part_threads(rounds):
+    print(f"\n== 5. thread policy ({load()}); torch default threads: {torch.get_num_threads()}")
+    for S, n, k in ((64, 1000, 8), (1024, 2, 128)):
+        model, _, trace = build(S, n)
+        times = {}
+        for label, limit in (("one thread", 10**9), ("default threads", 0)):
+            spectra_module._THREADS_FROM_STATE = limit
+            times[label], _ = best(rounds, hl.jacobian_spectra, model, trace, k=k,
+                                   progress=False)
+        spectra_module._THREADS_FROM_STATE = 2048
+        print(f"   S={S:4d}, k={k}: one thread {times['one thread']:.3f} s, default threads "
+              f"{times['default threads']:.3f} s: ratio "
+              f"{times['default threads'] / times['one thread']:.2f}")
 
 
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--rounds", type=int, default=3)
-    parser.add_argument("--rss-steps", type=int, default=2000)
-    parser.add_argument("--skip-rss", action="store_true")
-    parser.add_argument("--rss-child", type=int, default=None, help=argparse.SUPPRESS)
+    parser.add_argument("--quick", action="store_true", help="smaller sizes, under a minute")
+    parser.add_argument("--rounds", type=int, default=None)
     args = parser.parse_args()
-    if args.rss_child is not None:
-        rss_child(args.rss_child)
-        return
-    default = torch.get_num_threads()
-    print(f"torch {torch.__version__}, default threads: {default}")
-    for threads in sorted({1, default}):
-        torch.set_num_threads(threads)
-        print(f"\n== torch.get_num_threads() = {torch.get_num_threads()}"
-              + (" (BLAS limited to 1 thread too)" if threads == 1 else ""))
-        if threads == 1:
-            with threadpool_limits(limits=1):
-                part1(args.rounds)
-        else:
-            part1(args.rounds)
-    torch.set_num_threads(default)
-    if not args.skip_rss:
-        print("\n== peak memory (fresh process, default threads)")
-        part2(args.rss_steps)
+    rounds = args.rounds or (1 if args.quick else 2)
+    print(f"torch {torch.__version__}, numpy {np.__version__}, torch threads "
+          f"{torch.get_num_threads()}, {load()}")
+    hl.jacobian_spectra(*build(16, 4)[::2], progress=False)  # warm-up: imports, kernels
+    part_sizes(QUICK_SIZES if args.quick else FULL_SIZES, rounds)
+    part_radius(rounds)
+    part_stream(16000 if args.quick else 200000)
+    part_widget()
+    part_threads(rounds)
 
 
 if __name__ == "__main__":

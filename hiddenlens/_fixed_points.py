@@ -15,6 +15,7 @@ from ._jacobians import step_jacobians
 from ._record import as_system
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
+from ._threads import single_thread
 from ._trace import Trace, _unit_names
 from ._validation import as_float_tensor, check_finite, describe
 
@@ -28,6 +29,9 @@ _MARKERS = {
     "unstable": {"marker": "o", "facecolors": "none", "edgecolors": "tab:red"},
     "marginal": {"marker": "D", "color": "tab:green"},
 }
+
+# largest state size searched on one torch thread (see benchmarks/bench_fixed_points.py)
+_ONE_THREAD_UP_TO = 512
 
 
 @dataclass(frozen=True, eq=False)
@@ -264,12 +268,12 @@ def find_fixed_points(
     trace: Trace | None,
     x: Any = None,
     *,
-    n_starts: int = 256,
+    n_starts: int | None = None,
     starts: Any = None,
     noise: float = 0.0,
     tol: float | None = None,
     slow_tol: float = 1e-5,
-    max_iter: int = 100,
+    max_iter: int | None = None,
     distance_tol: float = 1e-3,
     marginal_tol: float = 1e-3,
     dtype: Any = None,
@@ -296,9 +300,10 @@ def find_fixed_points(
         steps). None only when ``starts`` is given.
     x : array_like of shape (I,), optional
         The constant input x*; zeros by default.
-    n_starts : int, default 256
+    n_starts : int, optional
         Number of starting states sampled from the trace (without replacement when it has as
-        many states).
+        many states). Default 256 up to S = 128 states, then 256 * 128 / S (at least 16): one
+        iteration costs ~n_starts * S^3, so the default search stays within minutes at S = 1024.
     starts : array_like of shape (n_starts, S), optional
         Explicit starting states instead of samples from the trace.
     noise : float, default 0.0
@@ -309,9 +314,10 @@ def find_fixed_points(
     slow_tol : float, default 1e-5
         End points with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher
         are discarded. q is in squared state units: scale it with the size of the states.
-    max_iter : int, default 100
-        Most optimisation steps per start. Isolated fixed points take about ten; starts in a
-        slow valley may use them all (see ``FixedPoints.converged``).
+    max_iter : int, optional
+        Most optimisation steps per start (default 100, 50 from S = 512 on). Isolated fixed
+        points take about ten; starts in a slow valley may use them all (see
+        ``FixedPoints.converged``).
     distance_tol : float, default 1e-3
         Points closer than this (Euclidean, state units) are merged.
     marginal_tol : float, default 1e-3
@@ -346,13 +352,20 @@ def find_fixed_points(
     system = as_system(model_or_system, **wrap_options)
     work, dt = _working_system(system, dtype)
     S, I = system.state_size, system.input_size
+    if n_starts is None:
+        n_starts = 256 if S <= 128 else max(16, 256 * 128 // S)
+    if max_iter is None:
+        max_iter = 100 if S < 512 else 50
     x_star = _constant_input(x, I, dt)  # (I,)
     s0 = _starts(trace, starts, system, n_starts, noise, seed, dt)  # (n_starts, S)
     n = s0.shape[0]
     _check_options(max_iter=max_iter, slow_tol=slow_tol, distance_tol=distance_tol,
                    marginal_tol=marginal_tol, tol=tol)
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
-    with preserved(system.model if system.kind == "callable" else None):
+    # batched S x S solves of small states: one torch thread (two were 5.4x slower on a
+    # shared 2-core machine at S = 128; benchmarks/bench_fixed_points.py)
+    with preserved(system.model if system.kind == "callable" else None), \
+            single_thread(S <= _ONE_THREAD_UP_TO):
         s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
                                     max_iter=max_iter, progress=progress)
         kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)

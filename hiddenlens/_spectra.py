@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import math
+import warnings
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -18,6 +19,7 @@ from ._jacobians import (
     system_for_trace,
 )
 from ._results import frozen_mapping, readonly
+from ._threads import single_thread
 from ._validation import as_dtype
 
 __all__ = ["JacobianSpectra", "jacobian_spectra", "top_singular_values"]
@@ -29,6 +31,20 @@ _CHUNK_ELEMENTS = 1 << 22
 # "auto" uses block Krylov (no Jacobian formed) from this state size on, where one float64
 # Jacobian takes 128 MiB; below it the single-precision Gram route is faster (benchmarks/)
 _KRYLOV_MIN_STATE = 4096
+# NOTE: [Eigenvalue error model of the Gram route]
+# The eigenvalues of the Gram matrix G = J^T J formed and decomposed in precision eps are taken
+# to be within c * sqrt(S) * eps * sigma_1^2 of sigma_i^2 (rounding of the S-term inner products
+# grows like sqrt(S) eps in practice, Higham & Mary 2019; the symmetric eigensolver is backward
+# stable, Golub & Van Loan section 8.3). A value is accepted when the interval of square roots
+# this allows is within tol * sigma_i; steps whose top k fail are redone in float64, then by SVD.
+# c = 16 leaves a margin of two orders of magnitude over the errors measured against float64
+# SVD (tests/test_spectra.py, benchmarks/bench_spectra.py).
+_GRAM_ERROR = 16.0
+# below this state size every per-chunk operation (elementwise gate terms, batched products,
+# LAPACK) runs on one torch thread: on a shared 2-core machine a second thread waiting for a
+# busy core turned each of them into milliseconds (benchmarks/bench_spectra.py)
+_THREADS_FROM_STATE = 2048
+_EPS = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
 @dataclass(frozen=True, eq=False)
@@ -40,8 +56,8 @@ class JacobianSpectra:
     singular_values : ndarray of shape (B, T, k)
         The k largest singular values of J_t for every sample and step, descending.
     spectral_radius : ndarray of shape (B, T) or None
-        max |eigenvalue| of J_t; None when not computed (see ``radius`` in
-        :func:`jacobian_spectra`).
+        max |eigenvalue| of J_t, exact (one batched eigenvalue call); None when not asked for
+        (see ``radius`` in :func:`jacobian_spectra`).
     quantile_levels : ndarray of shape (Q,)
     quantiles : ndarray of shape (Q, k)
         Quantiles of each singular-value index over all samples and steps.
@@ -57,6 +73,15 @@ class JacobianSpectra:
         Relative accuracy requested of the "gram" and "krylov" methods.
     metadata : Mapping[str, Any]
         The trace's metadata.
+    radius_bounds : ndarray of shape (B, T, 2) or None
+        Bounds on the spectral radius at no extra cost, when the exact value was not asked for:
+        column 0 the lower bound (prod sigma_i)^(1/S) = |det J_t|^(1/S) when all S values were
+        computed, NaN otherwise; column 1 the upper bound sigma_1. These are bounds, not
+        estimates: the radius lies between them (up to ``tol``, the accuracy of the sigma_i
+        they are made from).
+    excluded : ndarray of shape (n, 2)
+        (sample, step) of every step left out because its state or Jacobian is not finite
+        (NaN or Inf); their rows are NaN and the summaries are over the other steps.
 
     Notes
     -----
@@ -77,6 +102,8 @@ class JacobianSpectra:
     state_size: int
     tol: float
     metadata: Mapping[str, Any]
+    radius_bounds: np.ndarray | None = None
+    excluded: np.ndarray = field(default_factory=lambda: readonly(np.zeros((0, 2), np.int64)))
 
     @property
     def k(self) -> int:
@@ -140,8 +167,13 @@ class JacobianSpectra:
 
     def __repr__(self) -> str:
         B, T, k = self.singular_values.shape
+        gone = ""
+        if len(self.excluded):
+            b, t = self.excluded[0]
+            gone = (f", {len(self.excluded)} of {B * T} steps excluded as non-finite (first: "
+                    f"sample {b}, step {t})")
         return (f"JacobianSpectra(B={B}, T={T}, k={k} of S={self.state_size}, "
-                f"method={self.method!r}, median sigma_1={self.median[0]:.4g})")
+                f"method={self.method!r}, median sigma_1={self.median[0]:.4g}{gone})")
 
 
 def jacobian_spectra(
@@ -152,7 +184,7 @@ def jacobian_spectra(
     method: str = "auto",
     radius: bool | None = None,
     quantiles: Sequence[float] = DEFAULT_QUANTILES,
-    tol: float = 1e-5,
+    tol: float = 1e-3,
     dtype: Any = torch.float64,
     chunk: int | None = None,
     seed: int = 0,
@@ -169,22 +201,29 @@ def jacobian_spectra(
     k : int, optional
         How many of the largest singular values to keep per step (default: all S).
     method : {"auto", "svd", "gram", "krylov"}, default "auto"
-        ``"svd"``: ``torch.linalg.svdvals`` of each J_t. ``"gram"``: top eigenvectors of
-        J_t^T J_t in single precision for a subspace of ~2k directions, then the singular values
-        of J_t on it in the working precision, each checked by its residual against ``tol``
-        (steps that fail are redone by SVD). ``"krylov"``: block Krylov iteration on J^T J
-        through Jacobian-vector products, never forming J; converged to ``tol`` (light on
-        memory, but slower than "gram" unless S is in the thousands, as the top singular
-        values of recurrent Jacobians often sit at the edge of a continuous bulk). ``"auto"``:
-        "svd" for the whole spectrum, "krylov" from S = 4096 on, else "gram".
+        ``"gram"``: eigenvalues of J_t^T J_t (one batched product, one batched symmetric
+        eigenvalue call) in float32; each value is accepted only if the rounding-error model
+        of the float32 Gram matrix keeps it within ``tol`` of the true one, otherwise the step
+        is redone in float64, and by SVD if that fails too (small singular values of a
+        rank-deficient J take this last route). ``"svd"``: ``torch.linalg.svdvals`` in
+        float64. ``"krylov"``: block Krylov iteration on J^T J through Jacobian-vector
+        products, never forming J (light on memory; slower than "gram" unless S is in the
+        thousands, as the top singular values of recurrent Jacobians often sit at the edge of a
+        continuous bulk). ``"auto"``: "krylov" for top k from S = 4096 on, else "gram".
     radius : bool, optional
-        Also compute the spectral radius (max |eigenvalue|) of each J_t. Non-symmetric
-        eigenvalues cost several SVDs each; default: only when ``k`` is None.
+        ``True``: the exact spectral radius (max |eigenvalue|) of each J_t, one batched
+        eigenvalue call per chunk (about 3x the cost of the singular values).
+        ``None`` (default): only the free bounds in ``radius_bounds`` (sigma_1 above,
+        |det J_t|^(1/S) below when all values are computed). ``False``: neither.
     quantiles : sequence of float, default (0.05, 0.25, 0.5, 0.75, 0.95)
         Levels of the summaries over samples and steps.
-    tol : float, default 1e-5
-        Relative accuracy of the top-k singular values for the "gram" and "krylov" methods
-        (measured against max(sigma_i, 1e-3 sigma_1)).
+    tol : float, default 1e-3
+        Relative accuracy of every reported singular value (against the full SVD): 1e-3 is
+        what a diagnosis needs (lines on a log plot, medians, comparisons against 1). For
+        more, pass a smaller ``tol`` (e.g. 1e-10: the "gram" route then works in float64 and
+        falls back to SVD where it cannot vouch for a value) or ``method="svd"`` (float64 SVD
+        of every step, accurate to rounding). For "krylov" the iteration stops once the top k
+        move by less than ``tol`` (relative to max(sigma_i, 1e-3 sigma_1)).
     dtype : torch.float64 or torch.float32, default float64
         Working precision of the Jacobians and decompositions.
     chunk : int, optional
@@ -193,11 +232,13 @@ def jacobian_spectra(
     seed : int, default 0
         Seed of the random start block of the Krylov method.
     progress : bool, optional
-        Show a progress bar (default: for long runs).
+        Show a progress bar over the chunks, with the time left (default: for long runs).
 
     Returns
     -------
     JacobianSpectra
+        Steps whose state or Jacobian is not finite are listed in ``excluded`` (with a
+        RuntimeWarning naming the first sample and step); their rows are NaN.
 
     Notes
     -----
@@ -219,13 +260,9 @@ def jacobian_spectra(
         raise ValueError(f"tol must be a number in (0, 1), got {tol!r}")
     chunk = check_chunk(chunk)
     if method == "auto":
-        if k == S:
-            method = "svd"
-        elif S >= _KRYLOV_MIN_STATE:
-            method = "krylov"
-        else:
-            method = "gram"
-    want_radius = (k == S) if radius is None else bool(radius)
+        method = "krylov" if (S >= _KRYLOV_MIN_STATE and k < S) else "gram"
+    want_radius = bool(radius)  # None: bounds only (free), True: exact, False: neither
+    want_bounds = radius is None
     if chunk is None:
         per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
         chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
@@ -233,46 +270,70 @@ def jacobian_spectra(
 
     sv_out = np.empty((B, T, k), dtype=np.float64)
     rad_out = np.empty((B, T), dtype=np.float64) if want_radius else None
+    low_out = np.full((B, T), np.nan) if want_bounds else None
+    finite = np.ones((B, T), dtype=bool)
     starts = range(0, T, chunk)
     show = progress if progress is not None else (len(starts) > 10 and B * T * S * S > 1 << 28)
     from tqdm.auto import tqdm
 
-    with torch.no_grad():
-        for t0 in tqdm(starts, disable=not show, desc="spectra", leave=False):
+    # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
+    with torch.no_grad(), single_thread(S < _THREADS_FROM_STATE):
+        for t0 in tqdm(starts, disable=not show, desc="spectra", leave=False, unit="chunk"):
             t1 = min(T, t0 + chunk)
             n = t1 - t0
             lin = linearize(system, prev[:, t0:t1].reshape(B * n, S),
                             x[:, t0:t1].reshape(B * n, I), dtype=work)
-            sv, rad = _chunk_spectra(lin, k, method, tol, gen, want_radius, work)
+            sv, rad, low, ok = _chunk_spectra(lin, k, method, tol, gen, want_radius, work,
+                                              want_bounds and k == S)
             sv_out[:, t0:t1] = sv.reshape(B, n, k).numpy()
+            finite[:, t0:t1] = ok.reshape(B, n).numpy()
             if rad_out is not None:
                 rad_out[:, t0:t1] = rad.reshape(B, n).numpy()
+            if low is not None:
+                low_out[:, t0:t1] = low.reshape(B, n).numpy()
+    excluded = np.argwhere(~finite)  # (n, 2): sample, step
+    if len(excluded):
+        b0, s0 = excluded[0]
+        warnings.warn(
+            f"jacobian_spectra: {len(excluded)} of {B * T} steps have non-finite states or "
+            f"Jacobians (first at sample {b0}, step {s0}); their singular values are NaN and "
+            "the quantiles and median are over the remaining steps (see result.excluded)",
+            RuntimeWarning, stacklevel=2)
     q = _nanquantile(sv_out.reshape(B * T, k), levels)  # (Q, k)
     med = _nanquantile(sv_out.reshape(B * T, k), np.array([0.5]))[0]
     rq = None if rad_out is None else _nanquantile(rad_out.reshape(B * T, 1), levels)[:, 0]
+    bounds = None if low_out is None else np.stack([low_out, sv_out[:, :, 0]], axis=-1)
     return JacobianSpectra(
         singular_values=readonly(sv_out), spectral_radius=None if rad_out is None
         else readonly(rad_out), quantile_levels=readonly(levels), quantiles=readonly(q),
         median=readonly(med), radius_quantiles=None if rq is None else readonly(rq),
         method=method, state_size=S, tol=float(tol), metadata=frozen_mapping(trace.metadata),
+        radius_bounds=None if bounds is None else readonly(bounds),
+        excluded=readonly(excluded.astype(np.int64)),
     )
 
 
 def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
-                   gen: torch.Generator, want_radius: bool, work: torch.dtype):
-    """Top-k singular values (N, k) and radii (N,) or None of one chunk, NaN where the
-    trajectory is not finite."""
-    N = lin.new_state.shape[0]
+                   gen: torch.Generator, want_radius: bool, work: torch.dtype,
+                   want_low: bool):
+    """Top-k singular values (N, k), exact radii (N,) or None, the lower radius bound (N,) or
+    None, and the finite mask (N,) of one chunk; NaN where the trajectory is not finite."""
+    N, S = lin.new_state.shape
     ok = torch.isfinite(lin.new_state).all(1)
     J = None
     if method != "krylov" or want_radius:
         J = lin.dense().to(work)  # (N, S, S)
-        ok &= torch.isfinite(J).all(2).all(1)
+        # a sum is NaN or Inf whenever a term is (and overflows only past 1e300 per entry):
+        # the full elementwise test runs on those steps only
+        sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
+        if sus.numel():
+            ok[sus] &= torch.isfinite(J[sus]).all(2).all(1)
     sv = torch.full((N, k), float("nan"), dtype=torch.float64)
     rad = torch.full((N,), float("nan"), dtype=torch.float64) if want_radius else None
+    low = torch.full((N,), float("nan"), dtype=torch.float64) if want_low else None
     idx = ok.nonzero().squeeze(1)
     if idx.numel() == 0:
-        return sv, rad
+        return sv, rad, low, ok
     full = idx.numel() == N
     if J is not None and not full:
         J = J[idx]
@@ -281,58 +342,50 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
     else:
         sub = _dense_top(J, k, method, tol)
     sv[idx] = sub.to(torch.float64)
+    if low is not None:
+        # |det J| = prod sigma_i = prod |lambda_i| <= rho^S
+        low[idx] = torch.log(sub.to(torch.float64)).mean(1).exp()
     if rad is not None:
-        rad[idx] = torch.linalg.eigvals(J).abs().amax(-1).to(torch.float64)
-    return sv, rad
+        with single_thread():  # one batched LAPACK call of small matrices: see _dense_top
+            rad[idx] = torch.linalg.eigvals(J).abs().amax(-1).to(torch.float64)
+    return sv, rad, low, ok
 
 
 # ---------------------------------------------------------------------- dense top-k
 def _dense_top(J: torch.Tensor, k: int, method: str, tol: float) -> torch.Tensor:
-    """Top-k singular values of dense J (N, S, S), descending: (N, k)."""
+    """Top-k singular values of dense J (N, S, S), descending: (N, k), float64.
+
+    ``"svd"``: ``torch.linalg.svdvals`` in float64. ``"gram"``: eigenvalues of J^T J in float32,
+    accepted value by value under the error model of NOTE: [Eigenvalue error model of the Gram
+    route]; steps that fail are redone in float64, and those that fail again by SVD.
+
+    Batched LAPACK calls on small matrices run on one torch thread (measured on a shared
+    2-core machine: two threads were 1.1-2x slower when idle and up to 40x under load).
+    """
     N, S, _ = J.shape
-    if method == "svd" or k == S or S < 32:
-        return torch.linalg.svdvals(J)[:, :k]
-    import scipy.linalg
-    from threadpoolctl import threadpool_limits
-
-    # NOTE: [Top-k singular values from a single-precision Gram matrix]
-    # The top r = k + max(5, k) eigenvectors of J^T J, computed in float32 with LAPACK's
-    # MRRR driver for a subset of the spectrum (tridiagonalisation plus r vectors, not the
-    # bidiagonal SVD), span a subspace close to the top right singular vectors: angle
-    # ~ eps32 / relative gap. The Rayleigh-Ritz values of J on that subspace, in the working
-    # precision, err by the square of that angle. Each Ritz triplet (sigma, u, y), J y = sigma u,
-    # is checked by its residual ||J^T u - sigma y|| (a singular value lies within it); steps
-    # whose residuals exceed tol * sigma are redone by full SVD.
-    r = min(S, k + max(5, k))
-    J32 = J.to(torch.float32)
-    G = torch.bmm(J32.mT, J32).numpy()  # (N, S, S)
-    V = np.empty((N, S, r), dtype=np.float32)
-
-    def solve(indices: range) -> None:
-        for i in indices:
-            V[i] = scipy.linalg.eigh(G[i], subset_by_index=[S - r, S - 1], driver="evr",
-                                     check_finite=False, overwrite_a=True)[1]
-
-    # one LAPACK call per matrix, single-threaded BLAS inside (threads only add contention on
-    # a matrix this size); torch's thread count of them run side by side (LAPACK releases the
-    # GIL)
-    workers = max(1, min(torch.get_num_threads(), N))
-    with threadpool_limits(limits=1, user_api="blas"):
-        if workers == 1:
-            solve(range(N))
-        else:
-            with ThreadPoolExecutor(workers) as pool:
-                list(pool.map(solve, [range(w, N, workers) for w in range(workers)]))
-    V = torch.linalg.qr(torch.from_numpy(V).to(J.dtype))[0]  # (N, S, r)
-    U, sig, Wt = torch.linalg.svd(torch.bmm(J, V), full_matrices=False)
-    U, sig = U[:, :, :k], sig[:, :k]  # (N, S, k), (N, k)
-    Y = torch.bmm(V, Wt.mT[:, :, :k])  # right Ritz vectors (N, S, k)
-    res = torch.linalg.vector_norm(torch.bmm(J.mT, U) - Y * sig.unsqueeze(1), dim=1)  # (N, k)
-    scale = torch.maximum(sig, 1e-3 * sig[:, :1])
-    bad = ~((res <= tol * scale).all(1))
-    if bool(bad.any()):
-        sig[bad] = torch.linalg.svdvals(J[bad])[:, :k]
-    return sig
+    if method == "svd":
+        with single_thread():
+            return torch.linalg.svdvals(J.to(torch.float64))[:, :k]
+    out = torch.empty(N, k, dtype=torch.float64)
+    todo = torch.arange(N)
+    for prec in (torch.float32, torch.float64):
+        slack = _GRAM_ERROR * math.sqrt(S) * _EPS[prec]
+        if todo.numel() == 0 or slack / 2 > tol:
+            continue  # this precision cannot reach tol even for sigma_1
+        Jp = (J if todo.numel() == N else J[todo]).to(prec)
+        with single_thread():
+            lam = torch.linalg.eigvalsh(torch.bmm(Jp.mT, Jp))  # (n, S) ascending
+        lam = lam.flip(-1)[:, :k].to(torch.float64)  # (n, k)
+        err = slack * lam[:, :1].clamp_min(0)  # absolute bound on every eigenvalue
+        sig = lam.clamp_min(0).sqrt()
+        width = (lam + err).sqrt() - (lam - err).clamp_min(0).sqrt()
+        good = (width <= tol * sig).all(1)
+        out[todo[good]] = sig[good]
+        todo = todo[~good]
+    if todo.numel():
+        with single_thread():
+            out[todo] = torch.linalg.svdvals(J[todo].to(torch.float64))[:, :k]
+    return out
 
 
 # ---------------------------------------------------------------------- block Krylov

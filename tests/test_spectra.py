@@ -20,35 +20,74 @@ def gru_trace(make, gen):
     return model, hl.record(model, inputs)
 
 
+def _rel_err(got, ref):
+    return np.max(np.abs(got - ref) / ref)
+
+
 def test_full_spectrum_equals_numpy_svd(gru_trace):
     model, trace = gru_trace
-    res = hl.jacobian_spectra(model, trace)
     J = hl.jacobians(model, trace, dtype="float64")  # (B, T, S, S)
+    ref = np.linalg.svd(J, compute_uv=False)
+    rho = np.abs(np.linalg.eigvals(J)).max(-1)
     # reference: numpy.linalg.svd and numpy.linalg.eigvals on the materialised Jacobians
-    np.testing.assert_allclose(res.singular_values, np.linalg.svd(J, compute_uv=False),
-                               rtol=1e-10, atol=1e-12)
-    np.testing.assert_allclose(res.spectral_radius, np.abs(np.linalg.eigvals(J)).max(-1),
-                               rtol=1e-10)
-    assert res.method == "svd" and res.k == 48
+    res = hl.jacobian_spectra(model, trace)  # defaults: all S values at tol 1e-3, bounds only
+    assert res.method == "gram" and res.k == 48 and res.tol == 1e-3
+    assert _rel_err(res.singular_values, ref) <= 1e-3
+    assert res.spectral_radius is None
+    low, high = res.radius_bounds[..., 0], res.radius_bounds[..., 1]
+    # |det J|^(1/S) <= rho <= sigma_1 (common practice: Weyl's inequalities)
+    assert np.all(low <= rho * (1 + 1e-3)) and np.all(rho <= high * (1 + 1e-3))
+    exact = hl.jacobian_spectra(model, trace, method="svd", radius=True)
+    np.testing.assert_allclose(exact.singular_values, ref, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(exact.spectral_radius, rho, rtol=1e-10)
+    assert exact.radius_bounds is None
     assert np.all(np.diff(res.singular_values, axis=-1) <= 0)
 
 
-@pytest.mark.parametrize("method", ["gram", "krylov"])
+def _relu_rnn(*args, **kw):
+    return nn.RNN(*args, nonlinearity="relu", **kw)
+
+
+CELLS = {"gru": (nn.GRU, {}), "lstm": (nn.LSTM, {}), "rnn_tanh": (nn.RNN, {}),
+         "rnn_relu": (_relu_rnn, {}), "gru_2layers": (nn.GRU, {"num_layers": 2})}
+
+
+@pytest.mark.parametrize("method", ["auto", "gram", "svd", "krylov"])
+@pytest.mark.parametrize("cell", list(CELLS))
+@pytest.mark.parametrize("k", [4, None])
+def test_every_method_meets_the_default_tolerance(cell, method, k, make, gen):
+    cls, kw = CELLS[cell]
+    model = make(cls, 3, 24, gen=gen, scale=0.4, **kw)
+    trace = hl.record(model, np.random.default_rng(1).normal(size=(2, 6, 3)).astype(np.float32))
+    res = hl.jacobian_spectra(model, trace, k=k, method=method)
+    J = hl.jacobians(model, trace, dtype="float64")
+    S = J.shape[-1]
+    ref = np.linalg.svd(J, compute_uv=False)[..., :k or S]  # reference: numpy.linalg.svd
+    floor = 1e-3 * ref[..., :1] if method == "krylov" else 0.0  # krylov's stated scale
+    assert np.all(np.abs(res.singular_values - ref) <= 1e-3 * np.maximum(ref, floor)
+                  + 1e-12 * ref[..., :1])
+    assert res.method == ("gram" if method == "auto" else method)
+
+
 @pytest.mark.parametrize("cls", [nn.GRU, nn.LSTM, nn.RNN])
-def test_top_k_equals_svdvals(cls, method, make, gen):
+def test_smaller_tol_gives_more_digits(cls, make, gen):
     model = make(cls, 3, 32, gen=gen, scale=0.3)
     trace = hl.record(model, np.random.default_rng(1).normal(size=(2, 4, 3)).astype(np.float32))
-    res = hl.jacobian_spectra(model, trace, k=4, method=method, tol=1e-6)
     J = torch.from_numpy(hl.jacobians(model, trace, dtype="float64"))
-    ref = torch.linalg.svdvals(J)[..., :4].numpy()
-    # reference: torch.linalg.svdvals, 1e-4 relative on the top k
-    np.testing.assert_allclose(res.singular_values, ref, rtol=1e-4)
-    assert res.method == method and res.spectral_radius is None
+    ref = torch.linalg.svdvals(J).numpy()  # reference: torch.linalg.svdvals
+    for method in ("gram", "krylov"):
+        res = hl.jacobian_spectra(model, trace, k=4, method=method, tol=1e-8)
+        np.testing.assert_allclose(res.singular_values, ref[..., :4], rtol=1e-7)
+        assert res.spectral_radius is None
+    res = hl.jacobian_spectra(model, trace, method="gram", tol=1e-10)
+    np.testing.assert_allclose(res.singular_values, ref, rtol=1e-9, atol=1e-14)
 
 
 def test_auto_picks_gram_for_top_k(gru_trace):
     model, trace = gru_trace
     assert hl.jacobian_spectra(model, trace, k=3).method == "gram"
+    assert hl.jacobian_spectra(model, trace, k=3).radius_bounds[..., 0].size == 27
+    assert np.isnan(hl.jacobian_spectra(model, trace, k=3).radius_bounds[..., 0]).all()
     assert hl.jacobian_spectra(model, trace, k=3, radius=True).spectral_radius.shape == (3, 9)
 
 
@@ -95,18 +134,45 @@ def test_summaries_and_chunks(gru_trace):
     # reference: numpy.quantile / numpy.median over samples and steps
     np.testing.assert_allclose(res.quantiles, np.quantile(flat, [0.1, 0.5, 0.9], axis=0))
     np.testing.assert_allclose(res.median, np.median(flat, axis=0))
-    again = hl.jacobian_spectra(model, trace, k=5, chunk=1)
-    np.testing.assert_allclose(again.singular_values, res.singular_values, rtol=1e-9)
 
 
-def test_non_finite_steps_give_nan(gru_trace):
+@pytest.mark.parametrize("method", ["gram", "svd", "krylov"])
+def test_streaming_in_chunks_equals_one_batch(gru_trace, method):
+    model, trace = gru_trace
+    whole = hl.jacobian_spectra(model, trace, k=5, method=method, radius=True, chunk=10**6)
+    for chunk in (1, 4):
+        part = hl.jacobian_spectra(model, trace, k=5, method=method, radius=True, chunk=chunk)
+        np.testing.assert_allclose(part.singular_values, whole.singular_values,
+                                   rtol=1e-3 if method == "krylov" else 1e-9)
+        np.testing.assert_allclose(part.spectral_radius, whole.spectral_radius, rtol=1e-9)
+
+
+def test_non_finite_steps_are_excluded_and_named(gru_trace):
     model, trace = gru_trace
     states = np.array(trace.states)
     states[1, 4:] = np.nan
     broken = hl.Trace(states, trace.initial, trace.inputs, trace.parts, trace.metadata)
-    res = hl.jacobian_spectra(model, broken, k=3)
+    with pytest.warns(RuntimeWarning, match=r"4 of 27 steps .*sample 1, step 5"):
+        res = hl.jacobian_spectra(model, broken, k=3)
     assert np.isnan(res.singular_values[1, 5:]).all()
     assert np.isfinite(res.singular_values[0]).all() and np.isfinite(res.median).all()
+    assert res.excluded.tolist() == [[1, 5], [1, 6], [1, 7], [1, 8]]
+    finite = res.singular_values.reshape(-1, 3)
+    finite = finite[np.isfinite(finite).all(1)]
+    np.testing.assert_allclose(res.median, np.median(finite, axis=0))  # reference: numpy
+    assert "4 of 27 steps excluded" in repr(res) and "sample 1, step 5" in repr(res)
+    clean = hl.jacobian_spectra(model, trace, k=3)
+    assert clean.excluded.shape == (0, 2) and "excluded" not in repr(clean)
+
+
+def test_all_steps_non_finite(gru_trace):
+    model, trace = gru_trace
+    broken = hl.Trace(np.full_like(trace.states, np.inf), trace.initial * np.nan, trace.inputs,
+                      trace.parts, trace.metadata)
+    with pytest.warns(RuntimeWarning, match="27 of 27 steps"):
+        res = hl.jacobian_spectra(model, broken, k=2, radius=True)
+    assert np.isnan(res.median).all() and np.isnan(res.spectral_radius).all()
+    assert len(res.excluded) == 27
 
 
 def test_result_is_frozen_and_draws(gru_trace):
@@ -148,3 +214,10 @@ def test_bad_options(gru_trace):
         hl.jacobian_spectra(model, trace, k=2, tol=0)
     with pytest.raises(ValueError, match="sample must be in"):
         hl.jacobian_spectra(model, trace, k=2).plot(sample=7)
+
+
+def test_thread_count_is_given_back(gru_trace):
+    model, trace = gru_trace
+    before = torch.get_num_threads()
+    hl.jacobian_spectra(model, trace, k=3, radius=True)
+    assert torch.get_num_threads() == before
