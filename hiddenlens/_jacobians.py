@@ -218,6 +218,8 @@ class _Autograd(StepLinearization):
 #     dh'/dh = diag(d_h) + sum_g diag(a_hh[g]) W_hh[g],   dh'/du = sum_g diag(a_ih[g]) W_ih[g],
 # with per-sample coefficient vectors a (N, G, H) and an optional diagonal d_h (N, H):
 #   tanh RNN  a = 1 - h'^2;  relu RNN  a = [pre > 0]
+#   leaky     h' = (1 - alpha) h + alpha f(pre): a = alpha f'(pre), d_h = 1 - alpha
+#             (f' = 1 - f^2 for tanh, [pre > 0] for relu, sigmoid(pre) for softplus)
 #   GRU       n = tanh(i_n + r * (W_hn h + b_hn)), h' = (1 - z) n + z h:
 #             a_r = (1-z)(1-n^2) (W_hn h + b_hn) r(1-r),  a_z = (h - n) z(1-z),
 #             a_n = (1-z)(1-n^2) r  for W_hh (r multiplies W_hn h)  but  (1-z)(1-n^2)  for W_ih;
@@ -236,7 +238,7 @@ class _LayerTerms:
     def __init__(self, layer: LayerWeights, u: torch.Tensor, h: torch.Tensor,
                  c: torch.Tensor | None, dtype: torch.dtype) -> None:
         H, kind = layer.hidden_size, layer.kind
-        G = {"rnn_tanh": 1, "rnn_relu": 1, "gru": 3, "lstm": 4}[kind]
+        G = {"rnn_tanh": 1, "rnn_relu": 1, "gru": 3, "lstm": 4, "leaky": 1}[kind]
         self.layer = layer
         self.hidden_size = H
         # weights in the working precision (no copy when it is the system's own)
@@ -249,7 +251,25 @@ class _LayerTerms:
         self.c_hh = None  # LSTM c' rows, gates i, f, g
         gi = F.linear(u, self.w_ih, b_ih)  # (N, G*H)
         gh = F.linear(h, self.w_hh, b_hh)  # (N, G*H)
-        if kind == "rnn_tanh":
+        if kind == "leaky":
+            pre = gi + gh
+            alpha = layer.alpha.to(dtype)
+            if layer.nonlinearity == "tanh":
+                act = torch.tanh(pre)
+                slope = 1 - act * act
+            elif layer.nonlinearity == "relu":
+                act = torch.relu(pre)
+                slope = (pre > 0).to(pre.dtype)  # relu'(0) = 0 as in PyTorch's backward
+            else:
+                act = F.softplus(pre)
+                # softplus' = sigmoid, and 1 where torch's softplus turns linear (pre > 20)
+                slope = torch.where(pre > 20, torch.ones_like(pre), torch.sigmoid(pre))
+            self.h_new = (1 - alpha) * h + alpha * act
+            a = (alpha * slope).unsqueeze(1)  # (N, 1, H)
+            self.a_hh, self.a_ih = a, a
+            self.d_h = (1 - alpha).expand_as(h)
+            self.c_new = None
+        elif kind == "rnn_tanh":
             h_new = torch.tanh(gi + gh)
             a = (1 - h_new * h_new).unsqueeze(1)  # (N, 1, H)
             self.h_new, self.a_hh, self.a_ih = h_new, a, a
