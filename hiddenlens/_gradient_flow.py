@@ -553,13 +553,21 @@ def loss_gradient_norms(
     if not callable(loss_fn):
         raise TypeError(f"loss_fn must be callable as loss_fn(outputs, targets) -> scalar "
                         f"tensor, got {type(loss_fn).__name__}")
-    module, _ = _find_recurrent(model, submodule)
+    module, path = _find_recurrent(model, submodule)
     if isinstance(module, nn.RNNBase) and module.bidirectional:
         raise ValueError("loss_gradient_norms does not handle bidirectional recurrent layers: "
                          "the two directions run in opposite time orders; analyse a "
                          "unidirectional model")
+    if not isinstance(module, (nn.RNNBase, nn.RNNCellBase)):
+        raise ValueError(f"loss_gradient_norms follows nn.RNN/GRU/LSTM modules and their cells; "
+                         f"{type(module).__name__} is not one of them")
     system = wrap(model, submodule=submodule, dtype=torch.float64)
     w_dtype = next(module.parameters()).dtype
+    # the model runs as a private copy: attributes its forward assigns never reach the user's
+    import copy as _copy
+
+    model = _copy.deepcopy(model)
+    module = model.get_submodule(path) if path else model
     if not isinstance(inputs, torch.Tensor):
         inputs = as_float_tensor(inputs, "inputs", w_dtype)
     is_cell = isinstance(module, nn.RNNCellBase)
@@ -575,6 +583,11 @@ def loss_gradient_norms(
             calls.append({"args": args, "kwargs": kwargs, "out": output, "leaves": leaves})
             return leaves
         seq, hn = output
+        if isinstance(seq, nn.utils.rnn.PackedSequence):
+            raise TypeError(
+                f"the model packs its sequences before its {type(mod).__name__} "
+                "(PackedSequence); loss_gradient_norms follows padded (B, T, I) tensors: run "
+                "the model on sequences of one length, or give a model variant that pads")
         seq_leaf = seq.detach().requires_grad_(True)
         if isinstance(hn, tuple):
             hn_leaf = tuple(h.detach().requires_grad_(True) for h in hn)
@@ -597,7 +610,7 @@ def loss_gradient_norms(
             raise TypeError(f"the model returned {type(pred).__name__}; loss_gradient_norms "
                             "needs a tensor output (or a tuple whose first element is one)")
         if steps is not None:
-            pred = pred[:, steps]
+            pred = pred[:, _check_steps(steps, pred.shape[1])]
         loss = loss_fn(pred) if targets is None else loss_fn(pred, _like(targets, pred))
         if not (isinstance(loss, torch.Tensor) and loss.numel() == 1):
             raise ValueError(f"loss_fn must return a scalar tensor, got "
@@ -643,6 +656,21 @@ def loss_gradient_norms(
         loss_steps=None if loss_steps is None else readonly(loss_steps),
         metadata=frozen_mapping(meta),
     )
+
+
+def _check_steps(steps: Any, T: int) -> Any:
+    """``steps`` as an index into T output steps, refused clearly when out of range."""
+    if isinstance(steps, slice):
+        if not range(T)[steps]:
+            raise ValueError(f"steps={steps!r} selects no step of the {T} output steps")
+        return steps
+    idx = np.atleast_1d(np.asarray(steps))
+    if idx.size == 0 or not np.issubdtype(idx.dtype, np.integer) or idx.ndim != 1:
+        raise ValueError(f"steps must be an int, a sequence of ints or a slice, got {steps!r}")
+    if idx.min() < -T or idx.max() >= T:
+        raise ValueError(f"steps {idx.tolist()} lie outside the model's {T} output steps "
+                         f"(valid: 0 .. {T - 1}, or negative from the end)")
+    return steps
 
 
 def _like(targets: Any, pred: torch.Tensor) -> Any:

@@ -159,6 +159,7 @@ def _metadata(system: RecurrentSystem, shape: tuple[int, ...]) -> dict[str, Any]
         "n_steps": T,
         "output_part": system.output_part,
         "time_reversed": system.time_reversed,
+        "dt": system.dt,
         "fingerprint": system.fingerprint,
         "dtype": str(system.dtype).replace("torch.", ""),
         "hiddenlens_version": __version__,
