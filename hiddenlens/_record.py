@@ -14,7 +14,7 @@ from ._trace import Trace
 from ._validation import as_float_tensor, as_sequences, check_finite, describe
 from ._version import __version__
 
-__all__ = ["record", "as_system", "initial_states", "NonFiniteStateWarning"]
+__all__ = ["record", "as_system", "initial_states", "valid_steps", "NonFiniteStateWarning"]
 
 
 class NonFiniteStateWarning(RuntimeWarning):
@@ -87,8 +87,46 @@ def _from_native(system, batch, h, c):
     return flat
 
 
+def _check_lengths(lengths: Any, mask: Any, B: int, T: int) -> list[int] | None:
+    """Per-sequence lengths from ``lengths`` (B,) or a step mask (B, T), checked."""
+    if lengths is not None and mask is not None:
+        raise ValueError("give lengths= or mask=, not both")
+    if mask is not None:
+        m = np.asarray(mask.detach().cpu() if isinstance(mask, torch.Tensor) else mask)
+        if m.shape != (B, T) or m.dtype != bool:
+            raise ValueError(f"mask must be a boolean array of shape ({B}, {T}) (True on real "
+                             f"steps), got {describe(mask)}")
+        n = m.sum(axis=1)
+        if not np.array_equal(m, np.arange(T)[None, :] < n[:, None]):
+            raise ValueError("mask must mark a prefix of each sequence (real steps first, then "
+                             "padding); padding inside or before a sequence is not supported")
+        lengths = n
+    if lengths is None:
+        return None
+    a = np.asarray(lengths.detach().cpu() if isinstance(lengths, torch.Tensor) else lengths)
+    if a.shape != (B,) or not np.issubdtype(a.dtype, np.integer):
+        raise ValueError(f"lengths must hold one integer per sequence, shape ({B},), got "
+                         f"{describe(lengths)}")
+    if a.min() < 1 or a.max() > T:
+        raise ValueError(f"lengths must lie in 1 .. {T} (the padded length), got values in "
+                         f"[{a.min()}, {a.max()}]")
+    return [int(v) for v in a]
+
+
+def valid_steps(trace: Trace) -> np.ndarray | None:
+    """(B, T) boolean mask of real (not padded) steps of a trace recorded with lengths, or None."""
+    lengths = trace.metadata.get("lengths")
+    if lengths is None:
+        return None
+    n = np.asarray(lengths, dtype=np.int64)
+    if n.shape != (trace.batch_size,):
+        raise ValueError(f"the trace's lengths cover {n.size} sequences but it holds "
+                         f"{trace.batch_size}; select samples with Trace.select")
+    return np.arange(trace.n_steps)[None, :] < n[:, None]
+
+
 def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool | None = None,
-           **wrap_options: Any) -> Trace:
+           lengths: Any = None, mask: Any = None, **wrap_options: Any) -> Trace:
     """Run a recurrent model or system over input sequences and record its hidden states.
 
     Parameters
@@ -102,6 +140,12 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         Initial states, see :func:`initial_states`; zeros by default.
     progress : bool, optional
         Show a progress bar (default: only for long step-function runs).
+    lengths : array of shape (B,), optional
+        Real lengths of right-padded sequences. The system still runs over the padding (its
+        states are kept), but ``metadata["lengths"]`` marks it so that analyses pooling over
+        steps leave it out (see docs/recording.md for which ones do).
+    mask : bool array of shape (B, T), optional
+        The same as a mask, True on real steps (a prefix of each sequence).
 
     Returns
     -------
@@ -120,13 +164,20 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
                      what=f"the {system.source} system")  # (B, T, I)
     if system.time_reversed:
         x = x.flip(1)
+    n_real = _check_lengths(lengths, mask, x.shape[0], x.shape[1])
+    if n_real is not None and system.time_reversed:
+        raise ValueError("lengths= with the backward direction of a bidirectional module is not "
+                         "supported: the padding would come first; record each length alone")
     s0 = initial_states(system, h0, x.shape[0])  # (B, S)
     states = system.run(x, s0, progress=progress)  # (B, T, S)
     arrays = {"states": states.numpy(), "initial": s0.numpy(), "inputs": x.numpy()}
     _warn_non_finite(arrays["states"], system)
     for a in arrays.values():  # fresh buffers nobody else holds: the Trace keeps them uncopied
         a.setflags(write=False)
-    return Trace(**arrays, parts=system.parts, metadata=_metadata(system, x.shape))
+    meta = _metadata(system, x.shape)
+    if n_real is not None:
+        meta["lengths"] = n_real
+    return Trace(**arrays, parts=system.parts, metadata=meta)
 
 
 def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:

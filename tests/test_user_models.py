@@ -330,3 +330,33 @@ def test_loss_gradient_norms_steps_out_of_range_and_attributes(gen, snapshot):
     assert res.norms.shape == (2, 30)
     assert not hasattr(model, "last")
     snap.assert_unchanged()
+
+
+# ---------------------------------------------------------------------- variable lengths
+def test_lengths_saved_and_padding_left_out_of_pca(gen, tmp_path):
+    from sklearn.decomposition import PCA
+
+    gru = fill(nn.GRU(3, 6, batch_first=True), gen)
+    x = randn(gen, 3, 10, 3)
+    lengths = [10, 4, 7]
+    for b, n in enumerate(lengths):
+        x[b, n:] = 0.0  # padding
+    tr = hl.record(gru, x, lengths=lengths)
+    path = tmp_path / "t.npz"
+    tr.save(path)
+    assert hl.load_trace(path).metadata["lengths"] == lengths
+    # reference: scikit-learn PCA fitted on the real steps only
+    real = np.concatenate([tr.states[b, :n] for b, n in enumerate(lengths)]).astype(np.float64)
+    ref = PCA(n_components=2).fit(real)
+    res = hl.pca_trajectories(tr, n_components=2)
+    assert np.allclose(res.explained_variance, ref.explained_variance_, rtol=1e-8)
+    assert np.allclose(np.abs(res.components), np.abs(ref.components_), atol=1e-8)
+    mask = np.arange(10)[None] < np.array(lengths)[:, None]
+    assert hl.record(gru, x, mask=mask).metadata["lengths"] == lengths
+    assert tr.select(samples=[1, 2], steps=slice(2, 8)).metadata["lengths"] == [2, 5]
+    with pytest.raises(ValueError, match="lengths must lie in 1 .. 10"):
+        hl.record(gru, x, lengths=[11, 1, 1])
+    bad = mask.copy()
+    bad[0, 3] = False
+    with pytest.raises(ValueError, match="mask must mark a prefix"):
+        hl.record(gru, x, mask=bad)
