@@ -661,8 +661,27 @@ def _hidden_of(out, B, S):
     return None
 
 
+_BUILTIN_NAMES = ("RNN", "GRU", "LSTM", "RNNCell", "GRUCell", "LSTMCell")
+
+
+def _class_name(m: nn.Module) -> str | None:
+    """"GRU", "LSTMCell", ... for torch's recurrent modules, scripted (TorchScript) ones too."""
+    if isinstance(m, torch.jit.ScriptModule):
+        name = getattr(m, "original_name", None)
+        if name in _BUILTIN_NAMES and hasattr(m, "hidden_size"):
+            return name
+        return None
+    for name, cls in (("LSTMCell", nn.LSTMCell), ("GRUCell", nn.GRUCell),
+                      ("RNNCell", nn.RNNCell), ("LSTM", nn.LSTM), ("GRU", nn.GRU),
+                      ("RNN", nn.RNN)):
+        if isinstance(m, cls):
+            return name
+    return None
+
+
 def _is_recurrent(m: nn.Module) -> bool:
-    return isinstance(m, _RECURRENT_TYPES) or _is_leaky_module(m)
+    return isinstance(m, _RECURRENT_TYPES) or _class_name(m) is not None \
+        or _is_leaky_module(m)
 
 
 def _takes_two(module: nn.Module) -> bool:
@@ -894,20 +913,23 @@ def fingerprint(module: Any) -> str:
 
 
 def _module_kind(module: nn.Module) -> str:
-    if isinstance(module, (nn.LSTM, nn.LSTMCell)):
+    name = _class_name(module)
+    if name in ("LSTM", "LSTMCell"):
         return "lstm"
-    if isinstance(module, (nn.GRU, nn.GRUCell)):
+    if name in ("GRU", "GRUCell"):
         return "gru"
-    if isinstance(module, (nn.RNN, nn.RNNCell)):
-        return "rnn_relu" if module.nonlinearity == "relu" else "rnn_tanh"
+    if name in ("RNN", "RNNCell"):
+        return "rnn_relu" if getattr(module, "nonlinearity", "tanh") == "relu" else "rnn_tanh"
     raise ValueError(f"unsupported recurrent module {type(module).__name__}; supported: nn.RNN, "
-                     "nn.GRU, nn.LSTM, nn.RNNCell, nn.GRUCell, nn.LSTMCell")
+                     "nn.GRU, nn.LSTM, nn.RNNCell, nn.GRUCell, nn.LSTMCell (scripted too)")
 
 
 def _wrap_module(module, dtype, direction, *, source, path, model):
     kind = _module_kind(module)
-    label = f"{type(module).__name__}" + (f" '{path}'" if path else "")
-    if isinstance(module, nn.RNNCellBase):
+    label = f"{_class_name(module)}" + (f" '{path}'" if path else "")
+    if isinstance(module, torch.jit.ScriptModule):
+        label = f"scripted {label}"
+    if _class_name(module).endswith("Cell"):
         if direction is not None:
             raise ValueError(f"{label} is a cell, which has one direction; drop direction=")
         names = [("weight_ih", "weight_hh", "bias_ih", "bias_hh")]
