@@ -160,6 +160,8 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         When states become NaN or Inf; they are kept, as exploding states are a finding.
     """
     system = as_system(model_or_system, **wrap_options)
+    if system.front is not None:
+        inputs = _through_front(system, inputs)
     x = as_sequences(inputs, system.input_size, system.dtype,
                      what=f"the {system.source} system")  # (B, T, I)
     if system.time_reversed:
@@ -177,7 +179,39 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
     meta = _metadata(system, x.shape)
     if n_real is not None:
         meta["lengths"] = n_real
+    if system.front is not None:
+        meta["front"] = system.front_name
     return Trace(**arrays, parts=system.parts, metadata=meta)
+
+
+def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
+    """The recurrent part's inputs (B, T, I) from the model's raw inputs (token ids included)."""
+    from ._guard import preserved
+
+    raw = inputs
+    if isinstance(raw, np.ndarray):
+        if raw.dtype == object or not np.issubdtype(raw.dtype, np.number):
+            raise TypeError(f"raw inputs for the front end {system.front_name!r} must be numeric "
+                            f"(token ids or features), got dtype {raw.dtype}")
+        raw = torch.from_numpy(np.ascontiguousarray(raw))
+    if not isinstance(raw, torch.Tensor):
+        raise TypeError(f"raw inputs for the front end {system.front_name!r} must be a tensor or "
+                        f"a numpy array, got {type(inputs).__name__}")
+    if raw.is_floating_point():
+        p = next(system.front.parameters(), None)
+        if p is not None:
+            raw = raw.to(p.dtype)
+    try:
+        with preserved(None), torch.no_grad():
+            out = system.front(raw)
+    except Exception as err:  # noqa: BLE001 - the front end's own error, with the context
+        raise ValueError(f"the front end {system.front_name!r} failed on inputs of shape "
+                         f"{tuple(raw.shape)} ({type(err).__name__}: {err}); pass what the "
+                         "model itself takes, batch first") from None
+    if not isinstance(out, torch.Tensor) or out.ndim not in (2, 3):
+        raise ValueError(f"the front end {system.front_name!r} must return (B, T, I) features, "
+                         f"got {getattr(out, 'shape', type(out).__name__)}")
+    return out
 
 
 def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:

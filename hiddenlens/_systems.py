@@ -168,6 +168,8 @@ class RecurrentSystem:
         self.layers = tuple(layers)
         self.time_reversed = bool(time_reversed)
         self._step_fn = step_fn
+        self.front: nn.Module | None = None  # pre-processing of raw inputs (wrap(front=...))
+        self.front_name: str | None = None
         # kept for analyses that must call the whole user model (they guard it); never mutated
         self.model = model
         self.output_part = f"layer{len(self.layers) - 1}.h" if self.layers else next(iter(parts))
@@ -375,6 +377,7 @@ def wrap(
     input_size: int | None = None,
     parts: Mapping[str, slice] | None = None,
     order: str | None = None,
+    front: str | None = None,
     name: str | None = None,
 ) -> RecurrentSystem:
     """Wrap a recurrent PyTorch model, a cell or a step function as a :class:`RecurrentSystem`.
@@ -408,6 +411,12 @@ def wrap(
         a probe call when the input and state sizes differ. A cell module whose order cannot be
         decided (equal sizes, neutral names) is refused until ``order`` is given; a plain
         function with neutral names is taken as hiddenlens' ``fn(state, x)``.
+    front : str, optional
+        Name of the submodule of ``obj`` that turns the model's raw inputs into the recurrent
+        part's inputs (an ``nn.Embedding`` fed token ids, a linear encoder, an
+        ``nn.Sequential`` of such). :func:`hiddenlens.record` then takes the raw inputs, passes
+        them through a copy of it, and records the recurrent part; the trace stores what the
+        recurrent part received.
     name : str, optional
         Label stored in traces (default: the class or function name).
 
@@ -429,6 +438,14 @@ def wrap(
     ("tanh", "relu" or "softplus"; default tanh). Its own forward is checked against the
     closed form on a probe at wrap time; noise its forward adds is not part of the system.
     """
+    if front is not None:
+        front_module = _front_of(obj, front)
+        system = wrap(obj, dtype=dtype, submodule=submodule, cell=cell, direction=direction,
+                      state_size=state_size, input_size=input_size, parts=parts, order=order,
+                      name=name)
+        system.front = front_module
+        system.front_name = front
+        return system
     dt = as_dtype(dtype)
     if isinstance(obj, RecurrentSystem):
         raise TypeError("obj is already a RecurrentSystem; pass it on directly instead of "
@@ -475,6 +492,20 @@ def wrap(
         f"cannot wrap a {type(obj).__name__}; pass an nn.RNN/nn.GRU/nn.LSTM (or a cell), a model "
         "containing one, or a step function fn(state, x) -> state with state_size= and input_size="
     )
+
+
+def _front_of(obj: Any, front: str) -> nn.Module:
+    if not isinstance(obj, nn.Module):
+        raise TypeError(f"front= names a submodule of a model; got a {type(obj).__name__}")
+    if not isinstance(front, str):
+        raise TypeError(f"front must be the name of a submodule (a string), got {front!r}")
+    try:
+        module = obj.get_submodule(front)
+    except AttributeError:
+        names = ", ".join(repr(n) for n, _ in obj.named_modules() if n) or "none"
+        raise ValueError(f"{type(obj).__name__} has no submodule named {front!r} to use as "
+                         f"front end; its submodules: {names}") from None
+    return _copy_module(module)
 
 
 def leaky_rnn(

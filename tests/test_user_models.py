@@ -414,3 +414,33 @@ def test_scripted_model_with_two_cells_lists_them(gen):
             h, c = cell(x[:, t], (h, c))
             ref.append(h)
     assert np.abs(hl.record(sys, x).part("layer0.h") - torch.stack(ref, 1).numpy()).max() <= 1e-6
+
+
+# ---------------------------------------------------------------------- front ends
+class Tagger(nn.Module):
+    """Token ids -> embedding -> GRU -> readout."""
+
+    def __init__(self):
+        super().__init__()
+        self.embed = nn.Embedding(11, 4)
+        self.rnn = nn.GRU(4, 6, batch_first=True)
+        self.head = nn.Linear(6, 3)
+
+    def forward(self, ids):
+        return self.head(self.rnn(self.embed(ids))[0])
+
+
+def test_embedding_front_end_records_from_token_ids(gen, snapshot):
+    # reference: the model's own embedding and GRU (float32, 1e-6)
+    model = fill(Tagger(), gen)
+    snap = snapshot(model)
+    ids = torch.randint(0, 11, (3, 9), generator=gen)
+    tr = hl.record(model, ids, submodule="rnn", front="embed")
+    with torch.no_grad():
+        ref = model.rnn(model.embed(ids))[0]
+    assert np.abs(tr.part("layer0.h") - ref.numpy()).max() <= 1e-6
+    assert tr.metadata["front"] == "embed" and tr.input_size == 4
+    assert hl.pca_trajectories(tr, n_components=2).projected.shape == (3, 9, 2)
+    snap.assert_unchanged()
+    with pytest.raises(ValueError, match="no submodule named 'embedding' to use as front end"):
+        hl.wrap(model, front="embedding")
