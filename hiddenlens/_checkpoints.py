@@ -48,7 +48,7 @@ def read_state_dict(source: Any) -> tuple[dict[str, torch.Tensor], str | None]:
     if isinstance(source, (str, os.PathLike)):
         path = os.fspath(source)
         if not os.path.exists(path):
-            raise FileNotFoundError(f"no weights file at {path!r}")
+            raise FileNotFoundError(f"weights file {path!r} not found")
         if path.endswith(".npz"):
             raise ValueError(
                 f"{path!r} is a NumPy .npz archive, not a PyTorch checkpoint; weights are read "
@@ -58,7 +58,8 @@ def read_state_dict(source: Any) -> tuple[dict[str, torch.Tensor], str | None]:
             obj = torch.load(path, map_location="cpu", weights_only=True)
         except Exception as err:  # noqa: BLE001 - unpickling refusals come in many types
             raise ValueError(
-                f"cannot read {path!r} as a PyTorch checkpoint with weights_only=True "
+                f"cannot read weights from {path!r} as a PyTorch checkpoint with "
+                "weights_only=True "
                 f"({type(err).__name__}: {str(err).splitlines()[0] if str(err) else ''}); save "
                 "the weights alone with torch.save(model.state_dict(), path)") from None
     else:
@@ -123,7 +124,8 @@ def load_weights(model: nn.Module, source: Any, *, strict_shapes: bool = True) -
     Raises
     ------
     ValueError
-        When the model has parameters or buffers the checkpoint lacks (named), or shapes differ.
+        When the model has parameters or buffers the checkpoint lacks (named), or shapes differ;
+        keys the model lacks are allowed (``extra_keys``) and named in that message too.
     """
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch nn.Module to load weights into, got "
@@ -132,20 +134,22 @@ def load_weights(model: nn.Module, source: Any, *, strict_shapes: bool = True) -
     own = model.state_dict()
     state, prefix = _strip_prefix(set(own), state)
     missing = [k for k in own if k not in state]
-    if missing:
-        shown = ", ".join(missing[:12]) + (" ..." if len(missing) > 12 else "")
-        have = ", ".join(list(state)[:8])
-        raise ValueError(
-            f"the checkpoint lacks {len(missing)} of the {type(model).__name__}'s weights: "
-            f"{shown}; the checkpoint has {have}{' ...' if len(state) > 8 else ''}. Check that "
-            "the factory builds the model the weights were trained for")
-    if strict_shapes:
-        bad = [f"{k} {tuple(state[k].shape)} vs {tuple(v.shape)}" for k, v in own.items()
-               if tuple(state[k].shape) != tuple(v.shape)]
-        if bad:
-            raise ValueError("checkpoint and model disagree in shape (checkpoint vs model): "
-                             + "; ".join(bad[:8]))
     extra = tuple(k for k in state if k not in own)
+    problems = []
+    if missing:
+        problems.append(f"missing keys {', '.join(missing[:12])}{' ...' * (len(missing) > 12)}")
+    if strict_shapes:
+        bad = [f"{k} {tuple(state[k].shape)} in the file vs {tuple(v.shape)} in the model"
+               for k, v in own.items() if k in state and tuple(state[k].shape) != tuple(v.shape)]
+        if bad:
+            problems.append(f"shape mismatch: {'; '.join(bad[:6])}")
+    if problems:
+        if extra:
+            problems.append(f"unexpected keys {', '.join(extra[:8])}{' ...' * (len(extra) > 8)} "
+                            "(extra keys alone are allowed)")
+        raise ValueError(
+            f"the checkpoint does not fit the {type(model).__name__}: {'; '.join(problems)}. "
+            "Check that the factory builds the model the weights were trained for")
     target = copy.deepcopy(model)
     target.load_state_dict({k: state[k] for k in own}, strict=True)
     return LoadedWeights(model=target, nested_key=nested, prefix=prefix, extra_keys=extra)

@@ -301,7 +301,7 @@ def test_load_weights_nested_prefixed_with_extras(gen, tmp_path, snapshot):
 def test_load_weights_refusals(gen, tmp_path):
     src = fill(Net(), gen)
     partial = {k: v for k, v in src.state_dict().items() if not k.startswith("readout")}
-    with pytest.raises(ValueError, match="lacks 2 .*readout.weight, readout.bias"):
+    with pytest.raises(ValueError, match="missing keys readout.weight, readout.bias"):
         hl.load_weights(Net(), partial)
     npz = tmp_path / "w.npz"
     np.savez(npz, a=np.zeros(2))
@@ -309,7 +309,7 @@ def test_load_weights_refusals(gen, tmp_path):
         hl.load_weights(Net(), npz)
     bad = dict(src.state_dict())
     bad["readout.bias"] = torch.zeros(3)
-    with pytest.raises(ValueError, match="disagree in shape.*readout.bias"):
+    with pytest.raises(ValueError, match=r"shape mismatch: readout.bias \(3,\) in the file vs \(2,\)"):
         hl.load_weights(Net(), bad)
 
 
