@@ -65,10 +65,12 @@ def initial_states(system: RecurrentSystem, h0: Any, batch: int) -> torch.Tensor
 
 
 def _from_native(system, batch, h, c):
-    L, H = len(system.layers), system.layers[0].hidden_size
-    for name, a in (("h0", h), ("c0", c)):
+    L = len(system.layers)
+    first = system.layers[0]
+    for name, a, part in (("h0", h, first.h), ("c0", c, first.c)):
         if a is None:
             continue
+        H = part.stop - part.start  # proj_size for the h of a projected LSTM
         if a.ndim == 2 and L == 1:
             a = a.unsqueeze(0)
         if tuple(a.shape) != (L, batch, H):

@@ -68,6 +68,8 @@ class LayerWeights:
         Leaky RNNs only: the rate function, "tanh", "relu" or "softplus".
     dt : float or None
         Leaky RNNs only: the time step in the model's own time unit, when known.
+    w_hr : Tensor of shape (proj_size, hidden_size) or None
+        LSTMs with ``proj_size`` only: h = w_hr (o * tanh(c)); h then has proj_size units.
     """
 
     kind: str
@@ -82,6 +84,7 @@ class LayerWeights:
     alpha: torch.Tensor | None = None
     nonlinearity: str | None = None
     dt: float | None = None
+    w_hr: torch.Tensor | None = None
 
     @property
     def params(self) -> list[torch.Tensor]:
@@ -89,6 +92,8 @@ class LayerWeights:
         out = [self.w_ih, self.w_hh]
         if self.b_ih is not None:
             out += [self.b_ih, self.b_hh]
+        if self.w_hr is not None:
+            out.append(self.w_hr.to(self.w_hh.dtype))
         return out
 
     def cell(self, x: torch.Tensor, h: torch.Tensor, c: torch.Tensor | None = None):
@@ -111,7 +116,10 @@ class LayerWeights:
             return (1 - z) * n + z * h
         i, f, g, o = (gi + gh).chunk(4, dim=-1)
         c_new = torch.sigmoid(f) * c + torch.sigmoid(i) * torch.tanh(g)
-        return torch.sigmoid(o) * torch.tanh(c_new), c_new
+        h_new = torch.sigmoid(o) * torch.tanh(c_new)
+        if self.w_hr is not None:
+            h_new = F.linear(h_new, self.w_hr.to(h_new.dtype))
+        return h_new, c_new
 
 
 class RecurrentSystem:
@@ -255,9 +263,13 @@ def _run_layers(layers, inputs, h0, state_size):
             seq = _leaky_sequence(layer, x, h0_l[0])
         elif layer.kind == "lstm":
             c0 = h0[:, layer.c].contiguous()  # (B, H)
-            seq, _, _ = torch._VF.lstm(
-                x, (h0_l, c0.unsqueeze(0)), layer.params, has_bias, 1, 0.0, False, False, False,
-            )  # seq (T, B, H)
+            with warnings.catch_warnings():
+                # torch notes that its oneDNN path lacks projections and takes its own: no action
+                warnings.filterwarnings("ignore", message=".*projections is not supported.*")
+                seq, _, _ = torch._VF.lstm(
+                    x, (h0_l, c0.unsqueeze(0)), layer.params, has_bias, 1, 0.0, False, False,
+                    False,
+                )  # seq (T, B, H or proj_size)
             _lstm_cells(layer, x, h0_l[0], seq, c0, out_tm[:, :, layer.c])
         else:
             fused = torch._VF.gru if layer.kind == "gru" else (
@@ -307,12 +319,12 @@ def _lstm_cells(layer: LayerWeights, x, h_first, h_seq, c0, out):
     T, B, _ = h_seq.shape
     rows = slice(0, 3 * H)  # i, f, g
     w_x = layer.w_ih[rows].t()  # (I, 3H)
-    w_h = layer.w_hh[rows].t()  # (H, 3H)
+    w_h = layer.w_hh[rows].t()  # (H or proj_size, 3H)
     bias = None
     if layer.b_ih is not None:
         bias = layer.b_ih[rows] + layer.b_hh[rows]  # (3H,)
     x_flat = x.reshape(T * B, -1)  # (T*B, I)
-    h_flat = h_seq.reshape(T * B, H)  # (T*B, H): row block t holds h_t
+    h_flat = h_seq.reshape(T * B, -1)  # (T*B, H or proj_size): row block t holds h_t
     prev = c0
     for t0 in range(0, T, _LSTM_BLOCK):
         t1 = min(T, t0 + _LSTM_BLOCK)
@@ -966,11 +978,6 @@ def _wrap_module(module, dtype, direction, *, source, path, model):
         names = [("weight_ih", "weight_hh", "bias_ih", "bias_hh")]
         num_layers, suffix = 1, ""
     else:
-        if getattr(module, "proj_size", 0):
-            raise ValueError(
-                f"{label} has proj_size={module.proj_size}; LSTMs with projections are not "
-                "supported: analyse a model trained without proj_size"
-            )
         num_layers = module.num_layers
         suffix = ""
         if module.bidirectional:
@@ -995,10 +1002,11 @@ def _wrap_module(module, dtype, direction, *, source, path, model):
                   f"bias_ih_l{k}{suffix}", f"bias_hh_l{k}{suffix}") for k in range(num_layers)]
     has_bias = bool(module.bias)
     H = module.hidden_size
+    P = int(getattr(module, "proj_size", 0) or 0)  # LSTM projection: h has P units, c has H
     layers, parts, start = [], {}, 0
     for k, (wi, wh, bi, bh) in enumerate(names):
-        h = slice(start, start + H)
-        start += H
+        h = slice(start, start + (P or H))
+        start += P or H
         c = None
         if kind == "lstm":
             c = slice(start, start + H)
@@ -1008,7 +1016,8 @@ def _wrap_module(module, dtype, direction, *, source, path, model):
             kind=kind, input_size=w_ih.shape[1], hidden_size=H, w_ih=w_ih,
             w_hh=_weight(module, wh, dtype),
             b_ih=_weight(module, bi, dtype) if has_bias else None,
-            b_hh=_weight(module, bh, dtype) if has_bias else None, h=h, c=c))
+            b_hh=_weight(module, bh, dtype) if has_bias else None, h=h, c=c,
+            w_hr=_weight(module, wh.replace("weight_hh", "weight_hr"), dtype) if P else None))
         parts[f"layer{k}.h"] = h
         if c is not None:
             parts[f"layer{k}.c"] = c

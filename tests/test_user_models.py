@@ -309,7 +309,8 @@ def test_load_weights_refusals(gen, tmp_path):
         hl.load_weights(Net(), npz)
     bad = dict(src.state_dict())
     bad["readout.bias"] = torch.zeros(3)
-    with pytest.raises(ValueError, match=r"shape mismatch: readout.bias \(3,\) in the file vs \(2,\)"):
+    with pytest.raises(ValueError,
+                       match=r"shape mismatch: readout.bias \(3,\) in the file vs \(2,\)"):
         hl.load_weights(Net(), bad)
 
 
@@ -444,3 +445,31 @@ def test_embedding_front_end_records_from_token_ids(gen, snapshot):
     snap.assert_unchanged()
     with pytest.raises(ValueError, match="no submodule named 'embedding' to use as front end"):
         hl.wrap(model, front="embedding")
+
+
+# ---------------------------------------------------------------------- LSTM with proj_size
+@pytest.mark.parametrize("L", [1, 2])
+def test_lstm_proj_size_matches_forward_and_jacrev(gen, L):
+    # references: the module's own forward (float32, 1e-6); torch.func.jacrev (float64, 1e-10)
+    m = fill(nn.LSTM(3, 6, num_layers=L, proj_size=4, batch_first=True), gen)
+    x = randn(gen, 2, 9, 3)
+    h0, c0 = randn(gen, L, 2, 4, scale=0.3), randn(gen, L, 2, 6, scale=0.3)
+    tr = hl.record(m, x, h0=(h0, c0))
+    with torch.no_grad():
+        out, (hn, cn) = m(x, (h0, c0))
+    assert tr.state_size == L * 10
+    assert np.abs(tr.part(f"layer{L - 1}.h") - out.numpy()).max() <= 1e-6
+    assert np.abs(tr.states[:, -1, tr.parts[f"layer{L - 1}.c"]] - cn[-1].numpy()).max() <= 1e-6
+    sys = hl.wrap(m, dtype=torch.float64)
+    S = sys.state_size
+    s, u = randn(gen, 6, S, dtype=torch.float64), randn(gen, 6, 3, dtype=torch.float64)
+    Jr = vmap(jacrev(_per_sample(sys), argnums=0))(s, u)
+    Kr = vmap(jacrev(_per_sample(sys), argnums=1))(s, u)
+    assert (step_jacobians(sys, s, u) - Jr).abs().max() <= 1e-10
+    assert (input_jacobians(sys, s, u) - Kr).abs().max() <= 1e-10
+    from hiddenlens._jacobians import linearize
+
+    lin = linearize(sys, s, u)
+    V = randn(gen, 6, S, 3, dtype=torch.float64)
+    assert (lin.jvp(V) - Jr @ V).abs().max() <= 1e-10
+    assert (lin.vjp(V) - Jr.transpose(1, 2) @ V).abs().max() <= 1e-10
