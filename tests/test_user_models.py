@@ -473,3 +473,30 @@ def test_lstm_proj_size_matches_forward_and_jacrev(gen, L):
     V = randn(gen, 6, S, 3, dtype=torch.float64)
     assert (lin.jvp(V) - Jr @ V).abs().max() <= 1e-10
     assert (lin.vjp(V) - Jr.transpose(1, 2) @ V).abs().max() <= 1e-10
+
+
+# ---------------------------------------------------------------------- loss gradients, systems
+def test_loss_gradient_norms_of_a_system_equal_module_route(gen):
+    # reference: the module route (hooks + closed-form adjoint) on the same GRU, and a
+    # leaky RNN's gradient by hand at the last step (dL/ds_T = 2 s_T for L = sum s_T^2)
+    class Model(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.rnn = nn.GRU(3, 5, batch_first=True)
+
+        def forward(self, x):
+            return self.rnn(x)[0]
+
+    model = fill(Model(), gen)
+    x = randn(gen, 2, 12, 3)
+    a = hl.loss_gradient_norms(model, x, lambda out: out.pow(2).sum(), steps=[11])
+    b = hl.loss_gradient_norms(hl.wrap(model), x, lambda s: s.pow(2).sum(), steps=[11])
+    # the module route reads the loss gradient off the model's own float32 forward
+    assert np.allclose(a.norms, b.norms, rtol=1e-5, atol=1e-9)
+    f64 = torch.float64
+    leaky = hl.leaky_rnn(randn(gen, 4, 4, dtype=f64), randn(gen, 4, 3, dtype=f64), alpha=0.3,
+                         dtype=f64)
+    res = hl.loss_gradient_norms(leaky, x.double(), lambda s: s.pow(2).sum(), steps=[-1])
+    last = hl.record(leaky, x.double()).states[:, -1]
+    assert np.allclose(res.norms[:, -1], np.linalg.norm(2 * last, axis=1), rtol=1e-12)
+    assert (res.norms[:, :-1] > 0).all()
