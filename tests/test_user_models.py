@@ -500,3 +500,47 @@ def test_loss_gradient_norms_of_a_system_equal_module_route(gen):
     last = hl.record(leaky, x.double()).states[:, -1]
     assert np.allclose(res.norms[:, -1], np.linalg.norm(2 * last, axis=1), rtol=1e-12)
     assert (res.norms[:, :-1] > 0).all()
+
+
+# ---------------------------------------------------------------------- command line
+class Seq2Seq(nn.Module):
+    """Two recurrent submodules: the CLI needs --submodule."""
+
+    def __init__(self):
+        super().__init__()
+        self.encoder = nn.GRU(3, 5, batch_first=True)
+        self.decoder = nn.GRU(5, 5, batch_first=True)
+        self.readout = nn.Linear(5, 2)
+
+
+def make_seq2seq():
+    return Seq2Seq()
+
+
+def test_cli_submodule_option_lengths_and_nested_checkpoint(gen, tmp_path, capsys):
+    from hiddenlens import cli
+
+    src = fill(Seq2Seq(), gen)
+    state = {f"model.{k}": v for k, v in src.state_dict().items()}
+    state["model.extra_head.weight"] = torch.zeros(2)
+    ckpt = tmp_path / "run.ckpt"
+    torch.save({"state_dict": state, "epoch": 7}, ckpt)
+    x = np.random.default_rng(0).normal(size=(3, 10, 3)).astype(np.float32)
+    np.save(tmp_path / "x.npy", x)
+    np.save(tmp_path / "n.npy", np.array([10, 6, 8]))
+    out = tmp_path / "rep"
+    rc = cli.main(["report", "--model", "test_user_models:make_seq2seq", "--weights", str(ckpt),
+                   "--submodule", "encoder", "--inputs", str(tmp_path / "x.npy"),
+                   "--lengths", str(tmp_path / "n.npy"), "--analyses", "pca",
+                   "--option", "pca.n_components=2", "-o", str(out), "-q"])
+    assert rc == 0
+    assert "extra_head.weight" not in capsys.readouterr().err  # -q: no notes
+    assert any(out.iterdir())
+    rc = cli.main(["report", "--model", "test_user_models:make_seq2seq", "--weights", str(ckpt),
+                   "--probe", "2,10", "--analyses", "pca", "-o", str(tmp_path / "r2")])
+    assert rc != 0
+    assert "pick one with wrap(model, submodule='encoder')" in capsys.readouterr().err
+    rc = cli.main(["report", "--model", "test_user_models:make_seq2seq", "--weights", str(ckpt),
+                   "--submodule", "encoder", "--probe", "2,10", "--option", "pca.k",
+                   "-o", str(tmp_path / "r3")])
+    assert rc != 0 and "must read ANALYSIS.KEY=VALUE" in capsys.readouterr().err
