@@ -477,10 +477,12 @@ def wrap(
             names = ", ".join(repr(n) for n, _ in obj.named_modules() if n) or "none"
             raise ValueError(f"{type(obj).__name__} has no submodule named {cell!r}; its "
                              f"submodules: {names}") from None
-        return _wrap_cell_module(target, dt, state_size, input_size, parts, order,
-                                 name or f"{type(obj).__name__}.{cell}")
+        label = name or f"{type(obj).__name__}.{cell}"
+        if _is_leaky_module(target) and state_size is None and order is None:
+            return _wrap_leaky_module(target, dt, source=label, model=obj)
+        return _wrap_cell_module(target, dt, state_size, input_size, parts, order, label)
     if isinstance(obj, nn.Module) and state_size is None:
-        module, path = _find_recurrent(obj, submodule, allow_cell=order is None)
+        module, path = _find_recurrent(obj, submodule, allow_cell=True)
         if module is None:  # obj itself is a cell of the user's own
             return _wrap_cell_module(obj, dt, state_size, input_size, parts, order, name)
         if _is_leaky_module(module):

@@ -544,3 +544,18 @@ def test_cli_submodule_option_lengths_and_nested_checkpoint(gen, tmp_path, capsy
                    "--submodule", "encoder", "--probe", "2,10", "--option", "pca.k",
                    "-o", str(tmp_path / "r3")])
     assert rc != 0 and "must read ANALYSIS.KEY=VALUE" in capsys.readouterr().err
+
+
+def test_leaky_cell_inside_a_model_by_name_uses_the_closed_form(gen):
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.core = fill(LeakyCell(3, 4), gen)
+            self.head = nn.Linear(4, 1)
+
+    model = Net()
+    sys = hl.wrap(model, cell="core")
+    assert sys.kind == "leaky"
+    plain = fill(PlainCell(3, 5), gen)
+    plain.hidden_size, plain.input_size = 5, 3
+    assert hl.wrap(plain, order="input_first").order == "input_first"
