@@ -13,6 +13,10 @@ J_t = d s_t / d s_{t-1} (S=256 for the GRU, S=512 for the LSTM, whose state hold
   (numpy asks for transparent huge pages, which is faster when the kernel has them to give and
   much slower when it must compact memory first).
 
+A leaky (continuous-time) RNN of the same size, ``hiddenlens.leaky_rnn``, is timed too: its closed
+form against the autograd route hiddenlens takes for the same step wrapped as a plain step
+function (``vmap(jacrev)`` inside ``hiddenlens.jacobians``). Target: closed form >= 3x.
+
 Targets: closed form >= 100x faster than naive, >= 5x faster than vmap(jacrev), <= 3x the floor.
 Figures are the best of the rounds, with the candidates interleaved so that they share the
 machine load (on a shared machine the best run is the least disturbed one).
@@ -24,6 +28,7 @@ Runs once with 1 thread and once with torch's default thread count.
 from __future__ import annotations
 
 import argparse
+import os
 import time
 
 import bench_spectra  # a sibling script: benchmarks/ is on sys.path when run
@@ -105,12 +110,46 @@ def run(cls, rounds):
     return S, med, err
 
 
+def run_leaky(rounds):
+    """Closed form against the autograd route for one leaky RNN, and their max difference."""
+    gen = torch.Generator().manual_seed(0)
+    W = torch.randn(H, H, generator=gen) * (1.5 / H ** 0.5)
+    U = torch.randn(H, I, generator=gen) / I ** 0.5
+    alpha = torch.rand(H, generator=gen) * 0.4 + 0.05
+    system = hl.leaky_rnn(W, U, torch.zeros(H), alpha=alpha, dt=0.01)
+    as_fn = hl.wrap(system.step, state_size=H, input_size=I)  # same map, no closed form
+    trace = hl.record(system, torch.randn(B, T, I, generator=gen))
+    err = float(np.abs(hl.jacobians(system, trace.select(steps=slice(0, 4)))
+                       - hl.jacobians(as_fn, trace.select(steps=slice(0, 4)))).max())
+    cands = {"closed": lambda: hl.jacobians(system, trace),
+             "autograd": lambda: hl.jacobians(as_fn, trace)}
+    for fn in cands.values():
+        timed(fn)
+    times = {k: [] for k in cands}
+    for _ in range(rounds):
+        for k, fn in cands.items():
+            times[k].append(timed(fn))
+    return {k: min(v) for k, v in times.items()}, err
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--leaky-only", action="store_true",
+                        help="time only the leaky RNN (closed form vs autograd route)")
     args = parser.parse_args()
     default = torch.get_num_threads()
-    print(f"torch {torch.__version__}, default threads: {default}")
+    print(f"torch {torch.__version__}, default threads: {default}, "
+          f"load average {os.getloadavg()[0]:.2f}")
+    for threads in sorted({1, default}):
+        torch.set_num_threads(threads)
+        med, err = run_leaky(args.rounds)
+        print(f"leaky RNN H={H}, B={B}, T={T}, threads={threads}: closed {med['closed']:.3f} s, "
+              f"autograd route {med['autograd']:.3f} s, ratio "
+              f"{med['autograd'] / med['closed']:.1f}x (target >= 3x); max |diff| = {err:.1e}")
+    torch.set_num_threads(default)
+    if args.leaky_only:
+        return
     print(f"step Jacobians of all B*T states, B={B}, T={T}, H={H}, I={I}, float32")
     for threads in sorted({1, default}):
         torch.set_num_threads(threads)

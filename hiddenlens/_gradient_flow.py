@@ -513,10 +513,14 @@ def loss_gradient_norms(
 
     Parameters
     ----------
-    model : nn.Module
+    model : nn.Module or RecurrentSystem
         The whole model (encoder, recurrent layer, readout); it holds one recurrent submodule
         (``nn.RNN``/``GRU``/``LSTM`` or a cell called once per step), or name it with
-        ``submodule``. The model is called as ``model(inputs)``, in eval mode, with detached
+        ``submodule``. Any other recurrence (a leaky RNN, a cell or step function of your own)
+        is given as a system (``hiddenlens.wrap(...)``): the loss then reads its states,
+        ``loss_fn(states)`` or ``loss_fn(states, targets)`` with states (B, T, S) (restricted to
+        ``states[:, steps]``); apply a readout inside ``loss_fn``. The model is called as
+        ``model(inputs)``, in eval mode, with detached
         parameters; nothing of it is changed and no ``.grad`` is written.
     inputs : Tensor or ndarray
         What ``model`` takes.
@@ -545,21 +549,32 @@ def loss_gradient_norms(
     """
     from ._guard import preserved
     from ._record import initial_states
-    from ._systems import _find_recurrent, wrap
+    from ._systems import RecurrentSystem, _find_recurrent, wrap
 
+    if isinstance(model, RecurrentSystem):
+        return _system_loss_gradients(model, inputs, loss_fn, targets, steps)
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch nn.Module (the whole model, with its readout), "
                         f"got {type(model).__name__}")
     if not callable(loss_fn):
         raise TypeError(f"loss_fn must be callable as loss_fn(outputs, targets) -> scalar "
                         f"tensor, got {type(loss_fn).__name__}")
-    module, _ = _find_recurrent(model, submodule)
+    module, path = _find_recurrent(model, submodule)
     if isinstance(module, nn.RNNBase) and module.bidirectional:
         raise ValueError("loss_gradient_norms does not handle bidirectional recurrent layers: "
                          "the two directions run in opposite time orders; analyse a "
                          "unidirectional model")
+    if not isinstance(module, (nn.RNNBase, nn.RNNCellBase)):
+        raise ValueError(f"loss_gradient_norms follows nn.RNN/GRU/LSTM modules and their cells; "
+                         f"{type(module).__name__} is not one of them; pass hiddenlens.wrap(model) "
+                         "and a loss on its states instead")
     system = wrap(model, submodule=submodule, dtype=torch.float64)
     w_dtype = next(module.parameters()).dtype
+    # the model runs as a private copy: attributes its forward assigns never reach the user's
+    import copy as _copy
+
+    model = _copy.deepcopy(model)
+    module = model.get_submodule(path) if path else model
     if not isinstance(inputs, torch.Tensor):
         inputs = as_float_tensor(inputs, "inputs", w_dtype)
     is_cell = isinstance(module, nn.RNNCellBase)
@@ -575,6 +590,11 @@ def loss_gradient_norms(
             calls.append({"args": args, "kwargs": kwargs, "out": output, "leaves": leaves})
             return leaves
         seq, hn = output
+        if isinstance(seq, nn.utils.rnn.PackedSequence):
+            raise TypeError(
+                f"the model packs its sequences before its {type(mod).__name__} "
+                "(PackedSequence); loss_gradient_norms follows padded (B, T, I) tensors: run "
+                "the model on sequences of one length, or give a model variant that pads")
         seq_leaf = seq.detach().requires_grad_(True)
         if isinstance(hn, tuple):
             hn_leaf = tuple(h.detach().requires_grad_(True) for h in hn)
@@ -597,7 +617,7 @@ def loss_gradient_norms(
             raise TypeError(f"the model returned {type(pred).__name__}; loss_gradient_norms "
                             "needs a tensor output (or a tuple whose first element is one)")
         if steps is not None:
-            pred = pred[:, steps]
+            pred = pred[:, _check_steps(steps, pred.shape[1])]
         loss = loss_fn(pred) if targets is None else loss_fn(pred, _like(targets, pred))
         if not (isinstance(loss, torch.Tensor) and loss.numel() == 1):
             raise ValueError(f"loss_fn must return a scalar tensor, got "
@@ -643,6 +663,81 @@ def loss_gradient_norms(
         loss_steps=None if loss_steps is None else readonly(loss_steps),
         metadata=frozen_mapping(meta),
     )
+
+
+def _system_loss_gradients(system, inputs, loss_fn, targets, steps) -> LossGradientNorms:
+    """Total gradients dL/ds_t of a loss on a system's states, by autograd through its steps."""
+    from ._validation import as_sequences
+
+    if not callable(loss_fn):
+        raise TypeError(f"loss_fn must be callable as loss_fn(states, targets) -> scalar "
+                        f"tensor, got {type(loss_fn).__name__}")
+    x = as_sequences(inputs, system.input_size, torch.float64 if system.is_module
+                     else system.dtype, what=f"the {system.source} system")  # (B, T, I)
+    if system.time_reversed:
+        x = x.flip(1)
+    work = _float64_system(system)
+    B, T, _ = x.shape
+    s0 = work.zeros(B).to(x.dtype).requires_grad_(True)
+    from ._guard import preserved
+
+    with preserved(work.model if work.kind == "callable" else None), torch.enable_grad():
+        seq, s = [], s0
+        for t in range(T):
+            s = work.step(s, x[:, t])
+            seq.append(s)
+        states = torch.stack(seq, dim=1)  # (B, T, S)
+        read = states if steps is None else states[:, _check_steps(steps, T)]
+        loss = loss_fn(read) if targets is None else loss_fn(read, _like(targets, read))
+        if not (isinstance(loss, torch.Tensor) and loss.numel() == 1):
+            raise ValueError(f"loss_fn must return a scalar tensor, got "
+                             f"{getattr(loss, 'shape', type(loss).__name__)}")
+        grads = torch.autograd.grad(loss, [s0, *seq], allow_unused=True)
+    grads = [torch.zeros_like(s0) if g is None else g for g in grads]
+    lam = torch.stack(grads[1:], dim=1).detach().to(torch.float64)  # (B, T, S) total gradients
+    loss_steps = None if steps is None else readonly(np.atleast_1d(np.arange(T)[steps]))
+    meta = {"model_class": system.source, "recurrent": system.kind,
+            "state_size": system.state_size, "batch_size": B, "n_steps": T}
+    return LossGradientNorms(
+        norms=readonly(torch.linalg.vector_norm(lam, dim=2).numpy()),
+        part_norms=frozen_mapping({n: readonly(torch.linalg.vector_norm(lam[:, :, sl], dim=2))
+                                   for n, sl in system.parts.items()}),
+        initial_norms=readonly(torch.linalg.vector_norm(grads[0].detach(), dim=1)),
+        loss=float(loss.detach()), loss_steps=loss_steps, metadata=frozen_mapping(meta),
+    )
+
+
+def _float64_system(system):
+    """Module-backed systems compute in float64 (weight copies converted); others as they are."""
+    import dataclasses
+
+    from ._systems import RecurrentSystem
+
+    if not system.is_module or system.dtype == torch.float64:
+        return system
+    layers = tuple(dataclasses.replace(
+        layer, **{n: None if getattr(layer, n) is None else getattr(layer, n).to(torch.float64)
+                  for n in ("w_ih", "w_hh", "b_ih", "b_hh", "alpha", "w_hr")})
+        for layer in system.layers)
+    return RecurrentSystem(
+        state_size=system.state_size, input_size=system.input_size, parts=system.parts,
+        dtype=torch.float64, kind=system.kind, source=system.source,
+        fingerprint=system.fingerprint, layers=layers, time_reversed=system.time_reversed)
+
+
+def _check_steps(steps: Any, T: int) -> Any:
+    """``steps`` as an index into T output steps, refused clearly when out of range."""
+    if isinstance(steps, slice):
+        if not range(T)[steps]:
+            raise ValueError(f"steps={steps!r} selects no step of the {T} output steps")
+        return steps
+    idx = np.atleast_1d(np.asarray(steps))
+    if idx.size == 0 or not np.issubdtype(idx.dtype, np.integer) or idx.ndim != 1:
+        raise ValueError(f"steps must be an int, a sequence of ints or a slice, got {steps!r}")
+    if idx.min() < -T or idx.max() >= T:
+        raise ValueError(f"steps {idx.tolist()} lie outside the model's {T} output steps "
+                         f"(valid: 0 .. {T - 1}, or negative from the end)")
+    return steps
 
 
 def _like(targets: Any, pred: torch.Tensor) -> Any:

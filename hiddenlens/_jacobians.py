@@ -218,6 +218,8 @@ class _Autograd(StepLinearization):
 #     dh'/dh = diag(d_h) + sum_g diag(a_hh[g]) W_hh[g],   dh'/du = sum_g diag(a_ih[g]) W_ih[g],
 # with per-sample coefficient vectors a (N, G, H) and an optional diagonal d_h (N, H):
 #   tanh RNN  a = 1 - h'^2;  relu RNN  a = [pre > 0]
+#   leaky     h' = (1 - alpha) h + alpha f(pre): a = alpha f'(pre), d_h = 1 - alpha
+#             (f' = 1 - f^2 for tanh, [pre > 0] for relu, sigmoid(pre) for softplus)
 #   GRU       n = tanh(i_n + r * (W_hn h + b_hn)), h' = (1 - z) n + z h:
 #             a_r = (1-z)(1-n^2) (W_hn h + b_hn) r(1-r),  a_z = (h - n) z(1-z),
 #             a_n = (1-z)(1-n^2) r  for W_hh (r multiplies W_hn h)  but  (1-z)(1-n^2)  for W_ih;
@@ -225,6 +227,8 @@ class _Autograd(StepLinearization):
 #   LSTM      c' = f c + i g, h' = o tanh(c'), with k = o (1 - tanh^2 c'):
 #             c' rows: a = (g i(1-i), c f(1-f), i(1-g^2), 0),  dc'/dc = diag(f)
 #             h' rows: a = k * (c' coefficients) except a_o = tanh(c') o(1-o),  dh'/dc = diag(k f)
+#             with proj_size: h' = W_hr m, so the h' rows above (those of m) are left-multiplied
+#             by W_hr: dh'/dh = W_hr (sum_g diag(a_g) W_hh[g]), dh'/dc = W_hr diag(k f)
 # Within one step layer l reads layer l-1's new h as its input u, so by the chain rule the rows of
 # layer l are its own block plus (dh'_l/du) @ (rows of layer l-1's h), which fills the blocks below
 # the diagonal; blocks above it are zero.
@@ -236,20 +240,39 @@ class _LayerTerms:
     def __init__(self, layer: LayerWeights, u: torch.Tensor, h: torch.Tensor,
                  c: torch.Tensor | None, dtype: torch.dtype) -> None:
         H, kind = layer.hidden_size, layer.kind
-        G = {"rnn_tanh": 1, "rnn_relu": 1, "gru": 3, "lstm": 4}[kind]
+        G = {"rnn_tanh": 1, "rnn_relu": 1, "gru": 3, "lstm": 4, "leaky": 1}[kind]
         self.layer = layer
         self.hidden_size = H
         # weights in the working precision (no copy when it is the system's own)
         self.w_ih, self.w_hh = layer.w_ih.to(dtype), layer.w_hh.to(dtype)
         b_ih = None if layer.b_ih is None else layer.b_ih.to(dtype)
         b_hh = None if layer.b_hh is None else layer.b_hh.to(dtype)
-        self.W_hh = self.w_hh.view(G, H, H)
+        self.W_hh = self.w_hh.view(G, H, -1)  # (G, H, H or proj_size)
+        self.w_hr = None if layer.w_hr is None else layer.w_hr.to(dtype)  # (P, H)
         self.W_ih = self.w_ih.view(G, H, layer.input_size)
         self.d_h = self.d_hc = self.d_cc = None
         self.c_hh = None  # LSTM c' rows, gates i, f, g
         gi = F.linear(u, self.w_ih, b_ih)  # (N, G*H)
         gh = F.linear(h, self.w_hh, b_hh)  # (N, G*H)
-        if kind == "rnn_tanh":
+        if kind == "leaky":
+            pre = gi + gh
+            alpha = layer.alpha.to(dtype)
+            if layer.nonlinearity == "tanh":
+                act = torch.tanh(pre)
+                slope = 1 - act * act
+            elif layer.nonlinearity == "relu":
+                act = torch.relu(pre)
+                slope = (pre > 0).to(pre.dtype)  # relu'(0) = 0 as in PyTorch's backward
+            else:
+                act = F.softplus(pre)
+                # softplus' = sigmoid, and 1 where torch's softplus turns linear (pre > 20)
+                slope = torch.where(pre > 20, torch.ones_like(pre), torch.sigmoid(pre))
+            self.h_new = (1 - alpha) * h + alpha * act
+            a = (alpha * slope).unsqueeze(1)  # (N, 1, H)
+            self.a_hh, self.a_ih = a, a
+            self.d_h = (1 - alpha).expand_as(h)
+            self.c_new = None
+        elif kind == "rnn_tanh":
             h_new = torch.tanh(gi + gh)
             a = (1 - h_new * h_new).unsqueeze(1)  # (N, 1, H)
             self.h_new, self.a_hh, self.a_ih = h_new, a, a
@@ -283,6 +306,8 @@ class _LayerTerms:
             c_new = sf * c + si * tg
             tc = torch.tanh(c_new)
             self.h_new, self.c_new = so * tc, c_new
+            if self.w_hr is not None:  # projection: h' = W_hr m with m = o tanh(c')
+                self.h_new = F.linear(self.h_new, self.w_hr)
             k = so * (1 - tc * tc)
             cc = torch.stack([tg * si * (1 - si), c * sf * (1 - sf), si * (1 - tg * tg)], dim=1)
             self.c_hh = cc  # (N, 3, H): c' rows, gates i, f, g
@@ -328,12 +353,16 @@ class _LayerTerms:
         if v_c is not None:
             out_h = out_h + self.d_hc.unsqueeze(1) * v_c
             out_c = out_c + self.d_cc.unsqueeze(1) * v_c
+        if self.w_hr is not None:
+            out_h = F.linear(out_h, self.w_hr)  # tangent of m -> of h' = W_hr m
         return out_h, out_c
 
     def backward_local(self, w_h, w_c, need_input: bool):
         """Cotangents of (h, c) and of the input u from cotangents of (h', c')."""
         G, H = self.a_hh.shape[1], self.hidden_size
         N, k = w_h.shape[:2]
+        if self.w_hr is not None:
+            w_h = torch.matmul(w_h, self.w_hr)  # cotangent of h' = W_hr m -> of m, (N, k, H)
         g_hh = self.a_hh.unsqueeze(1) * w_h.unsqueeze(2)  # (N, k, G, H)
         if self.c_new is not None:
             g_hh[:, :, :3] += self.c_hh.unsqueeze(1) * w_c.unsqueeze(2)
@@ -485,6 +514,13 @@ class _ClosedForm(StepLinearization):
                 out[:, lo:hi, hi:].zero_()
             if t.c_new is None:
                 t.write_local(out, layer.h, layer.h, t.a_hh, t.W_hh, t.d_h)
+            elif t.w_hr is not None:
+                M = torch.empty(self.N, t.hidden_size, t.W_hh.shape[2], dtype=self.dtype)
+                t.write_local(M, slice(None), slice(None), t.a_hh, t.W_hh, None)  # dm/dh
+                out[:, layer.h, layer.h] = torch.matmul(t.w_hr, M)
+                t.write_local(out, layer.c, layer.h, t.c_hh, t.W_hh[:3], None)
+                out[:, layer.h, layer.c] = t.w_hr * t.d_hc.unsqueeze(1)  # W_hr diag(k f)
+                _write_diag(out, layer.c, layer.c, t.d_cc)
             else:
                 t.write_local(out, layer.h, layer.h, t.a_hh, t.W_hh, None)
                 t.write_local(out, layer.c, layer.h, t.c_hh, t.W_hh[:3], None)
@@ -501,11 +537,17 @@ class _ClosedForm(StepLinearization):
         """d(h', c')/du of one layer, (N, R, I_l): R = H, or 2H with the LSTM cell rows."""
         layer = t.layer
         H = layer.hidden_size
-        R = 2 * H if t.c_new is not None else H
+        P = layer.h.stop - layer.h.start  # H, or proj_size
+        R = P + H if t.c_new is not None else H
         D = torch.empty(self.N, R, layer.input_size, dtype=self.dtype)
-        t.write_local(D, slice(0, H), slice(None), t.a_ih, t.W_ih, None)
+        if t.w_hr is None:
+            t.write_local(D, slice(0, H), slice(None), t.a_ih, t.W_ih, None)
+        else:
+            M = torch.empty(self.N, H, layer.input_size, dtype=self.dtype)
+            t.write_local(M, slice(None), slice(None), t.a_ih, t.W_ih, None)  # dm/du
+            D[:, :P] = torch.matmul(t.w_hr, M)
         if t.c_new is not None:
-            t.write_local(D, slice(H, R), slice(None), t.c_hh, t.W_ih[:3], None)
+            t.write_local(D, slice(P, R), slice(None), t.c_hh, t.W_ih[:3], None)
         return D
 
     def input_dense(self, out: torch.Tensor | None = None) -> torch.Tensor:

@@ -388,7 +388,11 @@ def lyapunov_spectrum(
         state_size=S, n_steps=T - warmup, warmup=warmup, method=chosen, qr_every=qr_every,
         dtype=str(dt).replace("torch.", ""),
         metadata={"source": system.source, "kind": system.kind, "batch_size": B,
-                  "input_steps": T, "seed": int(seed), "fingerprint": system.fingerprint},
+                  "input_steps": T, "seed": int(seed), "fingerprint": system.fingerprint,
+                  # leaky RNNs built with dt: exponents per unit of the model's own time too
+                  "dt": system.dt,
+                  "exponents_per_unit_time": None if system.dt is None
+                  else (np.asarray(exponents) / system.dt).tolist()},
     )
 
 

@@ -281,16 +281,20 @@ def pca_trajectories(
     cols = trace.columns(names)  # (D,)
     B, T, _ = trace.states.shape
     X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
-    _check_data(X, n_components)
-    spectrum = _covariance_spectrum(X)  # (D,)
+    from ._record import valid_steps
+
+    keep = valid_steps(trace)  # (B, T): padded steps of variable-length batches stay out
+    X_fit = X if keep is None else X[keep.reshape(-1)]
+    _check_data(X_fit, n_components)
+    spectrum = _covariance_spectrum(X_fit)  # (D,)
     total = spectrum.sum()
     if not total > 0:
         raise ValueError("the selected states do not vary over samples and steps, so they have "
                          "no principal components; record longer or more varied inputs")
     if svd_solver is None:
-        svd_solver = "covariance_eigh" if _has_covariance_eigh() and X.shape[0] >= X.shape[1] \
-            else "full"
-    pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X)
+        svd_solver = "covariance_eigh" if _has_covariance_eigh() and \
+            X_fit.shape[0] >= X_fit.shape[1] else "full"
+    pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X_fit)
     cumulative = np.minimum(np.cumsum(spectrum) / total, 1.0)  # (D,)
     projected = pca.transform(X).reshape(B, T, n_components)  # (B, T, k)
     return PCATrajectories(

@@ -14,7 +14,7 @@ from ._trace import Trace
 from ._validation import as_float_tensor, as_sequences, check_finite, describe
 from ._version import __version__
 
-__all__ = ["record", "as_system", "initial_states", "NonFiniteStateWarning"]
+__all__ = ["record", "as_system", "initial_states", "valid_steps", "NonFiniteStateWarning"]
 
 
 class NonFiniteStateWarning(RuntimeWarning):
@@ -65,10 +65,12 @@ def initial_states(system: RecurrentSystem, h0: Any, batch: int) -> torch.Tensor
 
 
 def _from_native(system, batch, h, c):
-    L, H = len(system.layers), system.layers[0].hidden_size
-    for name, a in (("h0", h), ("c0", c)):
+    L = len(system.layers)
+    first = system.layers[0]
+    for name, a, part in (("h0", h, first.h), ("c0", c, first.c)):
         if a is None:
             continue
+        H = part.stop - part.start  # proj_size for the h of a projected LSTM
         if a.ndim == 2 and L == 1:
             a = a.unsqueeze(0)
         if tuple(a.shape) != (L, batch, H):
@@ -87,8 +89,46 @@ def _from_native(system, batch, h, c):
     return flat
 
 
+def _check_lengths(lengths: Any, mask: Any, B: int, T: int) -> list[int] | None:
+    """Per-sequence lengths from ``lengths`` (B,) or a step mask (B, T), checked."""
+    if lengths is not None and mask is not None:
+        raise ValueError("give lengths= or mask=, not both")
+    if mask is not None:
+        m = np.asarray(mask.detach().cpu() if isinstance(mask, torch.Tensor) else mask)
+        if m.shape != (B, T) or m.dtype != bool:
+            raise ValueError(f"mask must be a boolean array of shape ({B}, {T}) (True on real "
+                             f"steps), got {describe(mask)}")
+        n = m.sum(axis=1)
+        if not np.array_equal(m, np.arange(T)[None, :] < n[:, None]):
+            raise ValueError("mask must mark a prefix of each sequence (real steps first, then "
+                             "padding); padding inside or before a sequence is not supported")
+        lengths = n
+    if lengths is None:
+        return None
+    a = np.asarray(lengths.detach().cpu() if isinstance(lengths, torch.Tensor) else lengths)
+    if a.shape != (B,) or not np.issubdtype(a.dtype, np.integer):
+        raise ValueError(f"lengths must hold one integer per sequence, shape ({B},), got "
+                         f"{describe(lengths)}")
+    if a.min() < 1 or a.max() > T:
+        raise ValueError(f"lengths must lie in 1 .. {T} (the padded length), got values in "
+                         f"[{a.min()}, {a.max()}]")
+    return [int(v) for v in a]
+
+
+def valid_steps(trace: Trace) -> np.ndarray | None:
+    """(B, T) boolean mask of real (not padded) steps of a trace recorded with lengths, or None."""
+    lengths = trace.metadata.get("lengths")
+    if lengths is None:
+        return None
+    n = np.asarray(lengths, dtype=np.int64)
+    if n.shape != (trace.batch_size,):
+        raise ValueError(f"the trace's lengths cover {n.size} sequences but it holds "
+                         f"{trace.batch_size}; select samples with Trace.select")
+    return np.arange(trace.n_steps)[None, :] < n[:, None]
+
+
 def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool | None = None,
-           **wrap_options: Any) -> Trace:
+           lengths: Any = None, mask: Any = None, **wrap_options: Any) -> Trace:
     """Run a recurrent model or system over input sequences and record its hidden states.
 
     Parameters
@@ -102,6 +142,12 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         Initial states, see :func:`initial_states`; zeros by default.
     progress : bool, optional
         Show a progress bar (default: only for long step-function runs).
+    lengths : array of shape (B,), optional
+        Real lengths of right-padded sequences. The system still runs over the padding (its
+        states are kept), but ``metadata["lengths"]`` marks it so that analyses pooling over
+        steps leave it out (see docs/recording.md for which ones do).
+    mask : bool array of shape (B, T), optional
+        The same as a mask, True on real steps (a prefix of each sequence).
 
     Returns
     -------
@@ -116,17 +162,58 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         When states become NaN or Inf; they are kept, as exploding states are a finding.
     """
     system = as_system(model_or_system, **wrap_options)
+    if system.front is not None:
+        inputs = _through_front(system, inputs)
     x = as_sequences(inputs, system.input_size, system.dtype,
                      what=f"the {system.source} system")  # (B, T, I)
     if system.time_reversed:
         x = x.flip(1)
+    n_real = _check_lengths(lengths, mask, x.shape[0], x.shape[1])
+    if n_real is not None and system.time_reversed:
+        raise ValueError("lengths= with the backward direction of a bidirectional module is not "
+                         "supported: the padding would come first; record each length alone")
     s0 = initial_states(system, h0, x.shape[0])  # (B, S)
     states = system.run(x, s0, progress=progress)  # (B, T, S)
     arrays = {"states": states.numpy(), "initial": s0.numpy(), "inputs": x.numpy()}
     _warn_non_finite(arrays["states"], system)
     for a in arrays.values():  # fresh buffers nobody else holds: the Trace keeps them uncopied
         a.setflags(write=False)
-    return Trace(**arrays, parts=system.parts, metadata=_metadata(system, x.shape))
+    meta = _metadata(system, x.shape)
+    if n_real is not None:
+        meta["lengths"] = n_real
+    if system.front is not None:
+        meta["front"] = system.front_name
+    return Trace(**arrays, parts=system.parts, metadata=meta)
+
+
+def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
+    """The recurrent part's inputs (B, T, I) from the model's raw inputs (token ids included)."""
+    from ._guard import preserved
+
+    raw = inputs
+    if isinstance(raw, np.ndarray):
+        if raw.dtype == object or not np.issubdtype(raw.dtype, np.number):
+            raise TypeError(f"raw inputs for the front end {system.front_name!r} must be numeric "
+                            f"(token ids or features), got dtype {raw.dtype}")
+        raw = torch.from_numpy(np.ascontiguousarray(raw))
+    if not isinstance(raw, torch.Tensor):
+        raise TypeError(f"raw inputs for the front end {system.front_name!r} must be a tensor or "
+                        f"a numpy array, got {type(inputs).__name__}")
+    if raw.is_floating_point():
+        p = next(system.front.parameters(), None)
+        if p is not None:
+            raw = raw.to(p.dtype)
+    try:
+        with preserved(None), torch.no_grad():
+            out = system.front(raw)
+    except Exception as err:  # noqa: BLE001 - the front end's own error, with the context
+        raise ValueError(f"the front end {system.front_name!r} failed on inputs of shape "
+                         f"{tuple(raw.shape)} ({type(err).__name__}: {err}); pass what the "
+                         "model itself takes, batch first") from None
+    if not isinstance(out, torch.Tensor) or out.ndim not in (2, 3):
+        raise ValueError(f"the front end {system.front_name!r} must return (B, T, I) features, "
+                         f"got {getattr(out, 'shape', type(out).__name__)}")
+    return out
 
 
 def _warn_non_finite(states: np.ndarray, system: RecurrentSystem) -> None:
@@ -159,6 +246,7 @@ def _metadata(system: RecurrentSystem, shape: tuple[int, ...]) -> dict[str, Any]
         "n_steps": T,
         "output_part": system.output_part,
         "time_reversed": system.time_reversed,
+        "dt": system.dt,
         "fingerprint": system.fingerprint,
         "dtype": str(system.dtype).replace("torch.", ""),
         "hiddenlens_version": __version__,

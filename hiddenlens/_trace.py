@@ -144,6 +144,8 @@ class Trace:
             meta["batch_size"] = int(b.size)
         if "n_steps" in meta:
             meta["n_steps"] = t1 - t0
+        if meta.get("lengths") is not None:  # real lengths of padded sequences, in the window
+            meta["lengths"] = np.clip(np.asarray(meta["lengths"])[b] - t0, 0, t1 - t0).tolist()
         return Trace(self.states[b, t0:t1], initial, self.inputs[b, t0:t1], self.parts, meta)
 
     # ------------------------------------------------------------------ tables and plots

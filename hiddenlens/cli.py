@@ -62,6 +62,7 @@ def build_parser() -> argparse.ArgumentParser:
                           f"{DEFAULT_PROBE[0]},{DEFAULT_PROBE[1]} when --inputs is not given)")
     _common_options(rep, default_output="hiddenlens-report", threads=None)
     rep.add_argument("--title", help="title of the report")
+    _model_options(rep)
 
     demo = sub.add_parser(
         "demo", help="report on the shipped example runs (sorting-line task)",
@@ -283,9 +284,110 @@ class _Progress:
               file=sys.stderr, flush=True)
 
 
+# ---------------------------------------------------------------------- the user's own model
+def _model_options(rep: argparse.ArgumentParser) -> None:
+    """Options that pick the recurrent part of a user's model and tune the analyses."""
+    rep.add_argument("--submodule", metavar="NAME",
+                     help="the recurrent submodule to analyse when the model holds several")
+    rep.add_argument("--cell", metavar="NAME",
+                     help="a submodule that is a cell of your own, called as cell(input, hidden)")
+    rep.add_argument("--front", metavar="NAME",
+                     help="a submodule that turns the raw --inputs into the recurrent part's "
+                          "inputs (a linear encoder)")
+    rep.add_argument("--lengths", metavar="FILE[:KEY]",
+                     help="real lengths (B,) of padded --inputs, from .npy or .npz")
+    rep.add_argument("--option", action="append", default=[], metavar="ANALYSIS.KEY=VALUE",
+                     help="an analysis option, e.g. lyapunov.k=5 (a Python literal; repeat)")
+
+
+def _user_run(args: argparse.Namespace, weights: str, *, quiet: bool) -> Any:
+    """Build the model, load one checkpoint into it, and wrap the part to analyse."""
+    import sys
+
+    import torch
+
+    from ._checkpoints import load_weights as load_checkpoint
+    from ._systems import RecurrentSystem, wrap
+
+    fn = load_factory(args.model)
+    try:
+        built = fn()
+    except Exception as err:
+        raise CommandError(f"the factory {args.model} failed: {type(err).__name__}: {err}"
+                           ) from err
+    if isinstance(built, RecurrentSystem):
+        raise CommandError(
+            f"the factory {args.model} returned a RecurrentSystem, which already holds its "
+            "weights; return the module (or cell) instead so --weights can be loaded into it")
+    if not isinstance(built, torch.nn.Module):
+        raise CommandError(f"the factory {args.model} returned a {type(built).__name__}, not a "
+                           "torch.nn.Module")
+    try:
+        loaded = load_checkpoint(built, weights)
+    except FileNotFoundError as err:
+        raise CommandError(str(err)) from None
+    except (ValueError, TypeError) as err:
+        if str(err).startswith("cannot read weights"):
+            raise CommandError(str(err)) from None
+        raise CommandError(f"weights {weights!r} do not fit the model built by {args.model}: "
+                           f"{err}") from None
+    if loaded.extra_keys and not quiet:
+        print(f"note: {weights}: keys not used by the model: {', '.join(loaded.extra_keys)}",
+              file=sys.stderr)
+    model = loaded.model.eval()
+    if args.submodule or args.cell or args.front:
+        return wrap(model, submodule=args.submodule, cell=args.cell, front=args.front)
+    return model
+
+
+def _user_options(args: argparse.Namespace, runs: dict[str, Any], inputs: Any
+                  ) -> tuple[dict[str, dict[str, Any]] | None, Any]:
+    """``--option`` values as per-analysis options, and a trace recorded with ``--lengths``."""
+    import ast
+
+    options: dict[str, dict[str, Any]] = {}
+    for text in args.option:
+        key, sep, value = text.partition("=")
+        analysis, dot, name = key.strip().partition(".")
+        if not (sep and dot and analysis and name):
+            raise CommandError(f"--option {text!r} must read ANALYSIS.KEY=VALUE, e.g. "
+                               "lyapunov.k=5")
+        try:
+            parsed = ast.literal_eval(value.strip())
+        except (ValueError, SyntaxError):
+            raise CommandError(f"--option {text!r}: {value!r} is not a Python literal (a number, "
+                               "string in quotes, list, True/False/None)") from None
+        options.setdefault(analysis, {})[name] = parsed
+    trace = None
+    if args.lengths:
+        if len(runs) != 1:
+            raise CommandError("--lengths applies to one weights file at a time")
+        import numpy as np
+
+        from ._record import record
+
+        head, sep, tail = args.lengths.rpartition(":")
+        path, key = (head, tail) if sep and head.lower().endswith(".npz") else (args.lengths, None)
+        if not os.path.isfile(path):
+            raise CommandError(f"lengths file {path!r} not found")
+        data = np.load(path, allow_pickle=False)
+        if isinstance(data, np.lib.npyio.NpzFile):
+            with data:
+                names = data.files
+                if key is None and len(names) == 1:
+                    key = names[0]
+                if key not in names:
+                    raise CommandError(f"{path!r} holds {', '.join(names)}; pick one with "
+                                       f"--lengths {path}:KEY")
+                data = data[key]
+        trace = record(next(iter(runs.values())), inputs, lengths=data)
+    return options or None, trace
+
+
 def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str] | None,
                 seed: int, keep_going: bool, quiet: bool, title: str | None,
-                source: str, options: dict[str, dict[str, Any]] | None = None) -> Path:
+                source: str, options: dict[str, dict[str, Any]] | None = None,
+                trace: Any = None) -> Path:
     from ._compare import compare_runs
     from ._figures import describe_inputs
     from ._registry import analyses, available_analyses
@@ -304,7 +406,7 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
     if len(runs) == 1:
         name, model = next(iter(runs.items()))
         results: Any = run_analyses(model, inputs, which=which, options=options, seed=seed,
-                                    on_error=on_error,
+                                    on_error=on_error, trace=trace,
                                     progress=lambda s, d, t: say(f"{name}: {s}", d, t))
         kwargs: dict[str, Any] = {"name": name}
     else:
@@ -334,9 +436,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
     inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
     runs: dict[str, Any] = {}
     for name, w in zip(names, weights, strict=True):
-        model = build_model(args.model)
-        load_weights(model, w, args.model)
-        runs[name] = model
+        runs[name] = _user_run(args, w, quiet=args.quiet)
     from ._record import as_system
 
     input_size = as_system(next(iter(runs.values()))).input_size
@@ -346,14 +446,15 @@ def _cmd_report(args: argparse.Namespace) -> int:
         source = (f"built-in probe: i.i.d. standard-normal inputs, {n} x {t} steps, "
                   f"seed {args.seed}")
     else:
-        if inputs.shape[-1] != input_size:
+        if inputs.shape[-1] != input_size and not args.front:
             raise CommandError(
                 f"inputs in {args.inputs!r} have {inputs.shape[-1]} features but the model "
                 f"expects {input_size}; pass an array of shape (B, T, {input_size})")
         source = f"read from {args.inputs}"
+    options, trace = _user_options(args, runs, inputs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet, title=args.title,
-                       source=source)
+                       source=source, options=options, trace=trace)
     print(path)
     return 0
 

@@ -215,10 +215,11 @@ def test_bidirectional_refusals(make, gen):
     assert not hl.wrap(module(make, gen, "gru"), direction="forward").time_reversed
 
 
-def test_lstm_proj_size_refused(make, gen):
+def test_lstm_proj_size_layout(make, gen):
+    # h holds proj_size units and c hidden_size (torch's own layout of h_n and c_n)
     m = make(nn.LSTM, 3, 6, proj_size=2, gen=gen)
-    with pytest.raises(ValueError, match=r"proj_size=2.*not supported.*without proj_size"):
-        hl.wrap(m)
+    system = hl.wrap(m)
+    assert dict(system.parts) == {"layer0.h": slice(0, 2), "layer0.c": slice(2, 8)}
 
 
 # ---------------------------------------------------------------------------- user models
