@@ -39,6 +39,10 @@ _LAZY = {
     "explore": "widgets",
     "compare": "widgets",
     "write_report": "_report",
+    "diagnose": "_diagnosis",
+    "rank_runs": "_diagnosis",
+    "describe_figure": "_diagnosis",
+    "Diagnosis": "_diagnosis",
     # result types, for isinstance checks and type annotations
     "JacobianSpectra": "_spectra",
     "GradientFlow": "_gradient_flow",
