@@ -178,7 +178,9 @@ def make_run_inputs(
 # Task facts for the diagnosis: chance accuracy (three tag colours, uniform) and the horizon,
 # the longest span the task needs (the longest tag-to-cue delay; the greenhouse's time constant).
 _TASK_FACTS: Mapping[str, dict] = MappingProxyType({
-    "sorting_line": {"chance": 1.0 / 3.0, "horizon": 40, "kind": "classification"},
+    # n_eval: gate cues in the evaluation set of train.py, make_dataset(256, 200, seed=1)
+    "sorting_line": {"chance": 1.0 / 3.0, "horizon": 40, "kind": "classification",
+                     "n_eval": 2845},
     "greenhouse": {"horizon": 20, "kind": "regression"},
 })
 
@@ -190,8 +192,9 @@ def task_metrics(name: str) -> dict:
     -------
     dict
         ``task``, ``kind``, ``horizon`` (steps), ``loss`` (evaluation loss) and, for the sorting
-        line, ``accuracy``, ``chance`` and ``accuracy_by_delay``; for the greenhouse ``r2`` and
-        ``rmse``. Ready for ``hiddenlens.diagnose(figures, task=task_metrics(name))``.
+        line, ``accuracy``, ``chance``, ``n_eval`` (evaluated decisions) and
+        ``accuracy_by_delay``; for the greenhouse ``r2`` and ``rmse``.
+        Ready for ``hiddenlens.diagnose(figures, task=task_metrics(name))``.
     """
     import json
 

@@ -239,7 +239,7 @@ class Diagnosis:
             "reasons": list(self.reasons), "warnings": list(self.warnings),
             "suggestions": list(self.suggestions), "score": self.score,
             "interval": None if self.interval is None else list(self.interval),
-            "task": dict(self.task),
+            "task": dict(self.task), "figures": dict(self.figures),
         }
 
     def __str__(self) -> str:
@@ -320,6 +320,11 @@ def _gradient_clause(figures: Mapping[str, Any], horizon: float | None
                      ) -> tuple[str | None, str | None, str | None]:
     """(level, clause, direction) of the gradient rate read against the horizon."""
     rate = figures.get("gradient_rate")
+    hl = _finite(figures.get("gradient_half_life"))
+    if rate is None and hl is not None and hl > 0:
+        rate = -math.log(2.0) / hl  # the half-life alone gives the rate of a decay
+    elif rate is None and figures.get("gradient_half_life") == math.inf:
+        rate = 0.0
     r = None if rate is None or isinstance(rate, str) else float(rate)
     if r is None or math.isnan(r):
         if rate is not None or figures.get("gradient_verdict") == "undetermined":
@@ -447,7 +452,8 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
     if solved and span_key == "memory_span" and span is not None and horizon is not None \
             and span < horizon and (limit is None or span < limit):
         warnings.append(
-            f"the memory span ({span:.0f} steps on i.i.d. probe inputs) is far below the "
+            f"the memory span ({span:.0f} {_plural(span, 'step')} on i.i.d. probe inputs) is "
+            f"below the "
             f"task's {horizon:.0f} steps although the task is solved: the probe-based span "
             "does not measure the variable this task stores; use task_memory on the task's "
             "own inputs and target for a span that does")

@@ -29,6 +29,10 @@ def test_gradient_rate_read_against_the_horizon():
     assert diagnose({"gradient_rate": r}, horizon=10).level == "ok"
     assert diagnose({"gradient_rate": r}, horizon=200).level == "failing"
     assert diagnose({"gradient_rate": r}).level == "unknown"
+    # a half-life h alone gives the rate -ln 2 / h (exponential decay, common practice)
+    d = diagnose({"gradient_half_life": 37.0 * math.log10(2.0)}, horizon=40)
+    assert "gradients fall 10x over 37 steps" in d.text
+    assert diagnose({"gradient_half_life": math.inf}, horizon=40).level == "ok"
 
 
 def test_probe_span_contradicting_a_solved_delay_task_warns_and_points_to_task_memory():
@@ -170,3 +174,16 @@ def test_example_runs_ship_their_task_metrics():
     assert diagnose({}, task=gru, name="gru").level == "ok"
     assert diagnose({}, task=task_metrics("rnn-gain2.0")).level == "failing"
     assert "r2" in task_metrics("greenhouse-lstm")
+
+
+def test_example_evaluation_count_matches_the_evaluation_set():
+    from example_models import sorting_line, task_metrics
+
+    data = sorting_line.make_dataset(256, 200, seed=1)  # the evaluation set of train.py
+    n = int((data.targets != sorting_line.IGNORE).sum())
+    for name in ("rnn-gain0.5", "rnn-gain1.0", "rnn-gain2.0", "gru"):
+        m = task_metrics(name)
+        assert m["n_eval"] == n
+        assert abs(m["accuracy"] * n - round(m["accuracy"] * n)) < 1e-6  # whole decisions
+    d = diagnose({}, task=task_metrics("gru"), name="gru")
+    assert "accuracy 99.9% (99.7% to 100.0%)" in d.text
