@@ -66,7 +66,7 @@ def run_style(i: int, *, markers: bool = True, n_points: int | None = None) -> d
 
 def plain_text(text: Any) -> str:
     """``text`` as a label matplotlib draws literally: ``$`` escaped, so no mathtext."""
-    return str(text).replace("\\", "\\\\").replace("$", r"\$")
+    return str(text).replace("$", r"\$")
 
 
 def style_axes(ax: Any) -> Any:

@@ -55,7 +55,7 @@ def test_run_style_differs_without_colour():
 def test_plain_text_is_drawn_literally():
     fig = Figure()
     ax = fig.add_subplot()
-    label = "cost $5 $x$"
+    label = "cost $5 $x$ in C:\\runs"
     t = ax.set_title(P.plain_text(label))
     fig.canvas.draw()
     # an escaped dollar is not mathtext: the drawn string equals the input (matplotlib docs,

@@ -19,6 +19,7 @@ __all__ = [
     "download_row",
     "figure_png",
     "figure_svg",
+    "link_html",
     "safe_filename",
     "table_csv",
 ]
