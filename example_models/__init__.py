@@ -61,6 +61,7 @@ __all__ = [
     "load_run",
     "make_run_inputs",
     "probe_inputs_path",
+    "task_metrics",
     "weights_path",
 ]
 
@@ -177,3 +178,39 @@ def make_run_inputs(
     if n_steps is None:
         return task.make_inputs(n_sequences, seed=seed)
     return task.make_inputs(n_sequences, n_steps, seed=seed)
+
+
+# Task facts for the diagnosis: chance accuracy (three tag colours, uniform) and the horizon,
+# the longest span the task needs (the longest tag-to-cue delay; the greenhouse's time constant).
+_TASK_FACTS: Mapping[str, dict] = MappingProxyType({
+    # n_eval: gate cues in the evaluation set of train.py, make_dataset(256, 200, seed=1)
+    "sorting_line": {"chance": 1.0 / 3.0, "horizon": 40, "kind": "classification",
+                     "n_eval": 2845},
+    "greenhouse": {"horizon": 20, "kind": "regression"},
+})
+
+
+def task_metrics(name: str) -> dict:
+    """Task metrics of shipped run ``name`` from ``weights/training_record.json``.
+
+    Returns
+    -------
+    dict
+        ``task``, ``kind``, ``horizon`` (steps), ``loss`` (evaluation loss) and, for the sorting
+        line, ``accuracy``, ``chance``, ``n_eval`` (evaluated decisions) and
+        ``accuracy_by_delay``; for the greenhouse ``r2`` and ``rmse``.
+        Ready for ``hiddenlens.diagnose(figures, task=task_metrics(name))``.
+    """
+    import json
+
+    _run(name)
+    record = json.loads((_HERE / "weights" / "training_record.json").read_text())
+    entry = record.get("runs", {}).get(name)
+    if entry is None:
+        raise KeyError(f"run {name!r} has no entry in training_record.json; retrain it with "
+                       f"`python -m example_models.train --only {name}`")
+    out = {"task": entry["task"], **_TASK_FACTS[entry["task"]], "loss": entry["eval_loss"]}
+    for key in ("accuracy", "accuracy_by_delay", "r2", "rmse"):
+        if key in entry:
+            out[key] = entry[key]
+    return out

@@ -50,6 +50,10 @@ _LAZY = {
     "run_analyses": "_runner",
     "key_figures": "_figures",
     "summary_sentence": "_figures",
+    "diagnose": "_diagnosis",
+    "rank_runs": "_diagnosis",
+    "describe_figure": "_diagnosis",
+    "Diagnosis": "_diagnosis",
     # result types, for isinstance checks and type annotations
     "JacobianSpectra": "_spectra",
     "GradientFlow": "_gradient_flow",

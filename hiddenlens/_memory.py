@@ -164,7 +164,7 @@ class MemoryCurve:
         -------
         matplotlib Axes
         """
-        from ._plotting import get_axes
+        from ._plotting import OKABE_ITO, get_axes
 
         ax = get_axes(ax)
         log = self.method != "decoding" if log is None else log
@@ -180,7 +180,8 @@ class MemoryCurve:
         if self.chance is not None:
             ax.axhline(self.chance, ls=":", color="0.5", label=f"chance {self.chance:.2f}")
             level = self.chance + self.threshold * (1.0 - self.chance)
-        ax.axhline(level, ls="--", color="tab:red", lw=0.8, label=f"threshold {level:.2f}")
+        ax.axhline(level, ls="--", color=OKABE_ITO["vermillion"], lw=0.8,
+                   label=f"threshold {level:.2f}")
         if self.time_constant is not None and 0 < self.time_constant < np.inf:
             ax.plot(self.lags, np.exp(-self.lags / self.time_constant), ls=":", color="0.3",
                     label=f"exp(-k/{self.time_constant:.3g})")

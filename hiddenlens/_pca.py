@@ -162,7 +162,7 @@ class PCATrajectories:
         -----
         Circles mark where each trajectory starts, squares where it ends.
         """
-        from ._plotting import get_axes
+        from ._plotting import RUN_COLORS, get_axes
 
         dims = _check_dims(dims, self.n_components)
         B, T, _ = self.projected.shape
@@ -182,7 +182,8 @@ class PCATrajectories:
         used = len(np.unique(colouring[1])) if colouring[0] == "labels" else 1
         for i, (label, tr) in enumerate(_as_named_traces(others)):
             Q = self.project(tr)[:, :, :dims]  # (B', T', dims)
-            handles += _draw_lines(ax, Q, ("single", f"C{(used + i) % 10}"), None, label=label,
+            colour = RUN_COLORS[(used + i) % len(RUN_COLORS)]
+            handles += _draw_lines(ax, Q, ("single", colour), None, label=label,
                                    ls="--")
             drawn.append(Q)
         handles += _mark_ends(ax, drawn)
