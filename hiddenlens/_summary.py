@@ -84,9 +84,11 @@ CAUTIONS: dict[str, str] = {
 FIGURES: dict[str, tuple[str, str, str]] = {
     "lyapunov_max": ("largest Lyapunov exponent", "per step", "lyapunov"),
     "kaplan_yorke_dimension": ("Kaplan-Yorke dimension", "", "lyapunov"),
+    "lyapunov_steps": ("Lyapunov counted steps", "steps", "lyapunov"),
     "gradient_rate": ("gradient log-rate", "per step", "gradient_flow"),
     "gradient_half_life": ("gradient half-life", "steps", "gradient_flow"),
     "gradient_verdict": ("gradient verdict", "", "gradient_flow"),
+    "gradient_lags": ("gradient lags fitted", "lags", "gradient_flow"),
     "memory_span": ("memory span", "steps", "memory"),
     "memory_capacity": ("memory capacity", "", "memory"),
     "memory_max_lag": ("longest memory lag tried", "steps", "memory"),
@@ -391,6 +393,8 @@ def key_figures(results: Mapping[str, Any]) -> dict[str, Any]:
         ky = _first_attr(r, ("kaplan_yorke_dimension", "kaplan_yorke", "kaplan_yorke_dim"))
         if ky is not None:
             fig["kaplan_yorke_dimension"] = float(ky)
+        if isinstance(getattr(r, "n_steps", None), (int, np.integer)):
+            fig["lyapunov_steps"] = int(r.n_steps)
     r = results.get("gradient_flow")
     if r is not None:
         rate = _scalar(_first_attr(r, ("rate", "log_rate", "rate_per_step", "decay_rate")))
@@ -400,8 +404,12 @@ def key_figures(results: Mapping[str, Any]) -> dict[str, Any]:
         if hl is not None:
             fig["gradient_half_life"] = hl
         verdict = getattr(r, "verdict", None)
+        meta = getattr(r, "metadata", {}) or {}
         if verdict is not None:
-            fig["gradient_verdict"] = str(verdict)
+            note = meta.get("verdict_note")
+            fig["gradient_verdict"] = str(verdict) + (f" ({note})" if note else "")
+        if isinstance(meta.get("counted_lags"), (int, np.integer)):
+            fig["gradient_lags"] = int(meta["counted_lags"])
     r = results.get("memory")
     if r is not None:
         for key, attr in (("memory_span", "span"), ("memory_capacity", "capacity")):
@@ -452,6 +460,10 @@ def _steps(v: float) -> str:
     return f"{v:.0f}" if v >= 10 else f"{v:.2g}"
 
 
+#: A largest Lyapunov exponent from fewer counted steps is quoted as not conclusive.
+LYAPUNOV_MIN_STEPS = 100
+
+
 def summary_sentence(figures: Mapping[str, Any]) -> str:
     """Key figures in plain words, skipping the absent ones.
 
@@ -463,10 +475,15 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
     if rate is not None and math.isfinite(rate) and rate != 0:
         every = math.log(10.0) / abs(rate)
         word = "shrink" if rate < 0 else "grow"
+        lags = figures.get("gradient_lags")
         if every > 1e4:
             parts.append("gradients keep their size over the lags seen")
+        elif lags is not None and every > lags:
+            parts.append(f"gradients {word} ~10x every {_steps(every)} steps (extrapolated "
+                         f"from {lags} lag{'s' if lags != 1 else ''})")
         else:
-            parts.append(f"gradients {word} ~10x every {_steps(every)} steps")
+            parts.append(f"gradients {word} ~10x every {_steps(every)} steps"
+                         + ("" if lags is None else f" (fit on {lags} lags)"))
     elif figures.get("gradient_half_life") is not None:
         hl = float(figures["gradient_half_life"])
         if math.isfinite(hl) and hl > 0:
@@ -482,6 +499,11 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
     if lam is not None and math.isfinite(lam):
         kind = "chaotic on these inputs" if lam > 0.01 else (
             "near the edge of chaos" if lam > -0.01 else "contracting")
+        n = figures.get("lyapunov_steps")
+        if n is not None and n < LYAPUNOV_MIN_STEPS:
+            kind += f"; from only {n} counted step{'s' if n != 1 else ''}, not conclusive"
+        elif n is not None:
+            kind += f"; {n} counted steps"
         parts.append(f"largest Lyapunov exponent {lam:+.3g}/step ({kind})")
     span = figures.get("memory_span")
     if span is not None and math.isfinite(span):
