@@ -329,7 +329,7 @@ def _median_over_leading(a: Any) -> np.ndarray:
 
 def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw: Any):
     """Draw one analysis of several runs on one Axes; ``results`` maps run name -> result."""
-    from ._plotting import get_axes
+    from ._plotting import get_axes, plain_text
 
     ax = get_axes(ax)
     names = list(results)
@@ -398,12 +398,13 @@ def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, **kw
             ax.axhline(next(iter(levels)), ls="--", color="0.5", lw=0.8, label="span threshold")
     ax.set_title(TITLES.get(analysis, analysis))
     ax.legend(fontsize="small")
+    plain_text(ax)  # run names are the user's: plain text, not mathtext
     return ax
 
 
 def plot_cka(cka: Any, names: Iterable[str], ax: Any = None, **kw: Any):
     """Draw a runs x runs CKA matrix with its values written in the cells."""
-    from ._plotting import get_axes
+    from ._plotting import get_axes, plain_text
 
     ax = get_axes(ax)
     names = list(names)
@@ -417,4 +418,4 @@ def plot_cka(cka: Any, names: Iterable[str], ax: Any = None, **kw: Any):
                     color="black" if m[i, j] > 0.6 else "white", fontsize="small")
     ax.figure.colorbar(im, ax=ax, label="linear CKA")
     ax.set_title("Linear CKA of hidden states")
-    return ax
+    return plain_text(ax)

@@ -230,7 +230,7 @@ def gradient_flow(
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B_all, T, S = prev.shape
     end = _check_index(end, T, "end", T - 1)
-    max_lag = _check_index(max_lag, end + 2, "max_lag", end, low=1)
+    max_lag = _check_index(max_lag, end + 2, "max_lag", max(end, 1), low=1)
     rows = _part_columns(trace, parts)
     sel = _check_samples(samples, B_all)
     if not (isinstance(threshold, (int, float)) and threshold >= 0):

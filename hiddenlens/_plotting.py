@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["get_axes", "time_colors"]
+__all__ = ["get_axes", "plain_text", "time_colors"]
 
 
 def get_axes(ax: Any = None, *, projection: str | None = None,
@@ -34,3 +34,17 @@ def _linspace(n: int):
     import numpy as np
 
     return np.linspace(0.0, 1.0, max(n, 1))
+
+
+def plain_text(ax_or_fig: Any):
+    """Draw every text of a figure as plain text (no mathtext), and return the argument.
+
+    Run and model names come from users: ``"$\\foo$"`` would otherwise be parsed as
+    mathtext and fail when the figure is drawn.
+    """
+    from matplotlib.text import Text
+
+    fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    for t in fig.findobj(Text):
+        t.set_parse_math(False)
+    return ax_or_fig

@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from ._compare import RunComparison, plot_cka, plot_overlay
+from ._plotting import plain_text
 from ._summary import (
     ANALYSES,
     CAUTIONS,
@@ -84,6 +85,7 @@ def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
     fig.subplots_adjust(left=left, right=0.95, bottom=0.14, top=0.9)
     ax = fig.add_subplot(projection=projection)
     draw(ax)
+    plain_text(fig)  # names come from users: never parse them as mathtext
     buf = io.BytesIO()
     fig.savefig(buf, format="png", metadata={"Software": None})
     return base64.b64encode(buf.getvalue()).decode("ascii")

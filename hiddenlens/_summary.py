@@ -544,6 +544,8 @@ def _median_curve(a: Any) -> list[float]:
     arr = np.asarray(a, dtype=float)
     if arr.ndim <= 1:
         return [float(v) for v in arr.reshape(-1)]
+    if arr.size == 0:
+        return []
     flat = arr.reshape(-1, arr.shape[-1])
     return [float(v) for v in _nanmedian(flat, axis=0)] if flat.shape[0] else []
 
