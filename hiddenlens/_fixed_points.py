@@ -359,7 +359,11 @@ def find_fixed_points(
         reps, support = _merge(s[kept], q[kept], distance_tol)
         P = s[kept][reps]  # (m, S)
         if P.shape[0]:
-            J = step_jacobians(work, P, x_star.expand(P.shape[0], I)).to(torch.float64)
+            # the search returns float64 points: give the step its own precision back, and
+            # keep a module step function's trainable parameters out of the Jacobians' graph
+            with torch.no_grad():
+                J = step_jacobians(work, P.to(dt), x_star.expand(P.shape[0], I))
+            J = J.detach().to(torch.float64)
         else:
             J = torch.zeros(0, S, S, dtype=torch.float64)
     eig, directions, stability = _linearise(J, marginal_tol)
