@@ -24,6 +24,7 @@ _LAZY = {
     "LayerWeights": "_systems",
     "record": "_record",
     "NonFiniteStateWarning": "_record",
+    "StationaryTrajectoryWarning": "_lyapunov",
     "Trace": "_trace",
     "load_trace": "_trace",
     "jacobians": "_jacobians",

@@ -14,6 +14,7 @@ from ._guard import preserved
 from ._jacobians import step_jacobians
 from ._record import as_system
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._trace import Trace, _unit_names
 from ._validation import as_float_tensor, check_finite, describe
@@ -352,7 +353,7 @@ def find_fixed_points(
     _check_options(max_iter=max_iter, slow_tol=slow_tol, distance_tol=distance_tol,
                    marginal_tol=marginal_tol, tol=tol)
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
-    with preserved(system.model if system.kind == "callable" else None):
+    with preserved(system.model if system.kind == "callable" else None), step_errors(system):
         s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
                                     max_iter=max_iter, progress=progress)
         kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)

@@ -19,6 +19,7 @@ from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._threads import single_thread
 from ._validation import as_float_tensor
 
@@ -263,7 +264,7 @@ def gradient_flow(
     show = progress if progress is not None else max_lag * B * S**3 > 5e10
     bar = tqdm(total=max_lag, disable=not show, desc="gradient flow", leave=False)
     L = 0
-    with torch.no_grad(), bar, _threads_for(2.0 * B * S**3):
+    with torch.no_grad(), bar, _threads_for(2.0 * B * S**3), step_errors(system):
         while L < max_lag:
             # Jacobians J_t for t = end - L, end - L - 1, ... (the next factors), newest first
             t_hi = end - L + 1

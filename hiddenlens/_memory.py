@@ -19,6 +19,7 @@ from ._guard import preserved
 from ._jacobians import input_jacobians, step_jacobians
 from ._record import as_system, record
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._trace import Trace
 
@@ -337,7 +338,8 @@ def memory_curve(
             return _decoding(trace, cols, opts, meta, progress)
         if opts["method"] == "perturbation":
             return _perturbation(system, trace, cols, in_std, opts, meta)
-        with torch.no_grad():  # a module step function's parameters may require grad
+        # a module step function's parameters may require grad
+        with torch.no_grad(), step_errors(system):
             return _sensitivity(system, trace, cols, in_std, opts, meta, progress)
 
 
