@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -481,8 +482,11 @@ def _check_options(**opts: Any) -> None:
         v = opts[name]
         if v is None and name == "tol":
             continue
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v >= 0:
-            raise ValueError(f"{name} must be a number >= 0, got {v!r}")
+        # numpy scalars (np.float32(1e-5)) are numbers too; NaN and inf are not tolerances
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, float, np.integer,
+                                                                 np.floating)) \
+                or not 0 <= v < math.inf:
+            raise ValueError(f"{name} must be a number >= 0 (finite), got {v!r}")
 
 
 # ---------------------------------------------------------------------- optimisation

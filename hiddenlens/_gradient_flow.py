@@ -234,9 +234,14 @@ def gradient_flow(
     max_lag = _check_index(max_lag, end + 2, "max_lag", max(end, 1), low=1)
     rows = _part_columns(trace, parts)
     sel = _check_samples(samples, B_all)
-    if not (isinstance(threshold, (int, float)) and threshold >= 0):
+    if not (isinstance(threshold, (int, float, np.integer, np.floating))
+            and not isinstance(threshold, bool) and 0 <= threshold < math.inf):
         raise ValueError(f"threshold must be a number >= 0 (natural log per step), got "
                          f"{threshold!r}")
+    if not (isinstance(tol, (int, float, np.integer, np.floating))
+            and not isinstance(tol, bool) and 0 < tol < 1):
+        raise ValueError(f"tol must be a number in (0, 1) (relative tolerance of the power "
+                         f"iteration), got {tol!r}")
     lo_fit, hi_fit = _check_fit_lags(fit_lags, max_lag)
     if isinstance(max_iter, bool) or not isinstance(max_iter, int) or max_iter < 1:
         raise ValueError(f"max_iter must be a positive integer, got {max_iter!r}")

@@ -404,3 +404,15 @@ def test_find_fixed_points_on_module_step_function_with_trainable_parameters(dty
     ev = np.sort(np.abs(np.linalg.eigvals(step.W.detach().double().numpy())))
     np.testing.assert_allclose(np.sort(np.abs(fp.eigenvalues[0])), ev, rtol=1e-4)
     assert all(p.requires_grad for p in step.parameters()) and step.W.grad is None
+
+
+def test_find_fixed_points_accepts_numpy_scalar_tolerances_and_refuses_negative_ones():
+    system = _map(lambda s, x: 0.5 * s, 2)
+    trace = _trace(system, np.ones((1, 2)))
+    fp = find_fixed_points(system, trace, tol=np.float64(1e-10), slow_tol=np.float32(1e-5),
+                           distance_tol=np.float64(1e-3), n_starts=3)
+    assert fp.n_fixed == 1
+    for bad in ({"tol": -1e-9}, {"slow_tol": np.float64(-1.0)}, {"tol": float("nan")},
+                {"marginal_tol": np.inf}):
+        with pytest.raises(ValueError, match="must be a number >= 0"):
+            find_fixed_points(system, trace, n_starts=3, **bad)

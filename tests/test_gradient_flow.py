@@ -351,3 +351,13 @@ def test_gradient_flow_flags_rates_from_few_lags(gen):
     slow = hl.gradient_flow(_linear_system(W * (0.95 / 1.5)), _flat_trace(3, 30), max_lag=14)
     text = summary_sentence(key_figures({"gradient_flow": slow}))
     assert "every 45 steps (extrapolated from 14 lags)" in text
+
+
+def test_gradient_flow_accepts_numpy_scalars_and_refuses_negative_tol():
+    W = torch.eye(3, dtype=torch.float64) * 0.5
+    system, trace = _linear_system(W), _flat_trace(3, 10)
+    res = hl.gradient_flow(system, trace, threshold=np.float32(0.01), tol=np.float64(1e-9))
+    assert res.verdict == "vanishing"
+    for bad in ({"tol": -1.0}, {"tol": 0.0}, {"threshold": float("nan")}, {"threshold": -0.1}):
+        with pytest.raises(ValueError, match="must be a number"):
+            hl.gradient_flow(system, trace, **bad)
