@@ -242,7 +242,11 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
     float
         0.0 when the largest exponent is negative.
     """
-    lam = np.sort(np.asarray(exponents, dtype=np.float64).reshape(-1))[::-1]
+    try:
+        lam = np.sort(np.asarray(exponents, dtype=np.float64).reshape(-1))[::-1]
+    except (TypeError, ValueError):
+        raise TypeError(f"exponents must be numbers (an array of shape (k,)), got "
+                        f"{type(exponents).__name__}; pass LyapunovSpectrum.exponents") from None
     if lam.size == 0 or np.isnan(lam).any():
         return float("nan")
     if lam[0] < 0:
