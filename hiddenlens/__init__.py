@@ -27,6 +27,7 @@ _LAZY = {
     "LoadedWeights": "_checkpoints",
     "record": "_record",
     "NonFiniteStateWarning": "_record",
+    "StationaryTrajectoryWarning": "_lyapunov",
     "Trace": "_trace",
     "load_trace": "_trace",
     "jacobians": "_jacobians",

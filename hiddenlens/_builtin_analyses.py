@@ -114,8 +114,12 @@ def _figures_gradient_flow(r: Any) -> dict[str, Any]:
         v = scalar(value)
         if v is not None:
             out[key] = v
+    meta = getattr(r, "metadata", None) or {}
     if r.verdict is not None:
-        out["gradient_verdict"] = str(r.verdict)
+        note = meta.get("verdict_note")
+        out["gradient_verdict"] = str(r.verdict) + (f" ({note})" if note else "")
+    if isinstance(meta.get("counted_lags"), (int, np.integer)):
+        out["gradient_lags"] = int(meta["counted_lags"])
     return out
 
 
@@ -126,6 +130,8 @@ def _figures_lyapunov(r: Any) -> dict[str, Any]:
         out["lyapunov_max"] = float(ex[0])
     if r.kaplan_yorke is not None:
         out["kaplan_yorke_dimension"] = float(r.kaplan_yorke)
+    if isinstance(getattr(r, "n_steps", None), (int, np.integer)):
+        out["lyapunov_steps"] = int(r.n_steps)
     return out
 
 
@@ -152,6 +158,10 @@ def _figures_memory(r: Any) -> dict[str, Any]:
 
 
 # ---------------------------------------------------------------------- words
+#: A largest Lyapunov exponent from fewer counted steps is quoted as not conclusive.
+LYAPUNOV_MIN_STEPS = 100
+
+
 def _steps(v: float) -> str:
     return f"{v:.0f}" if v >= 10 else f"{v:.2g}"
 
@@ -162,8 +172,15 @@ def _gradient_words(f: Mapping[str, Any]) -> list[str]:
     if finite(rate) and rate != 0:
         every = math.log(10.0) / abs(rate)
         word = "shrink" if rate < 0 else "grow"
-        parts.append("gradients keep their size over the lags seen" if every > 1e4
-                     else f"gradients {word} ~10x every {_steps(every)} steps")
+        lags = f.get("gradient_lags")
+        if every > 1e4:
+            parts.append("gradients keep their size over the lags seen")
+        elif lags is not None and every > lags:
+            parts.append(f"gradients {word} ~10x every {_steps(every)} steps (extrapolated "
+                         f"from {lags} lag{'s' if lags != 1 else ''})")
+        else:
+            parts.append(f"gradients {word} ~10x every {_steps(every)} steps"
+                         + ("" if lags is None else f" (fit on {lags} lags)"))
     elif finite(hl) and hl > 0:
         parts.append(f"gradients shrink ~10x every {_steps(hl * math.log2(10.0))} steps")
     if f.get("gradient_verdict"):
@@ -184,6 +201,11 @@ def _lyapunov_words(f: Mapping[str, Any]) -> list[str]:
         return []
     kind = "chaotic on these inputs" if lam > 0.01 else (
         "near the edge of chaos" if lam > -0.01 else "contracting")
+    n = f.get("lyapunov_steps")
+    if n is not None and n < LYAPUNOV_MIN_STEPS:
+        kind += f"; from only {n} counted step{'s' if n != 1 else ''}, not conclusive"
+    elif n is not None:
+        kind += f"; {n} counted steps"
     return [f"largest Lyapunov exponent {lam:+.3g}/step ({kind})"]
 
 
@@ -388,7 +410,8 @@ _spec(
     key_figures=_figures_gradient_flow,
     figures={"gradient_rate": Figure("gradient log-rate", "per step"),
              "gradient_half_life": Figure("gradient half-life", "steps"),
-             "gradient_verdict": Figure("gradient verdict")},
+             "gradient_verdict": Figure("gradient verdict"),
+             "gradient_lags": Figure("gradient lags fitted", "lags")},
     caution="The verdict (vanishing / near-isometric / exploding) is a heuristic read off a "
             "fitted rate with fixed thresholds, not a proof about training.",
     budget=_budget_gradient_flow, phrases=_gradient_words, arrays=_arrays_gradient_flow,
@@ -398,7 +421,8 @@ _spec(
     title="Lyapunov spectrum",
     key_figures=_figures_lyapunov,
     figures={"lyapunov_max": Figure("largest Lyapunov exponent", "per step"),
-             "kaplan_yorke_dimension": Figure("Kaplan-Yorke dimension")},
+             "kaplan_yorke_dimension": Figure("Kaplan-Yorke dimension"),
+             "lyapunov_steps": Figure("Lyapunov counted steps", "steps")},
     caution="Finite-time Lyapunov exponents of an input-driven network depend on the input "
             "statistics and on the number of steps; they are estimates, not properties of the "
             "weights alone.",

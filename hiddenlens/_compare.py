@@ -356,7 +356,7 @@ def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, *,
     The analysis' ``overlay`` draws; one without an overlay draws each run's ``.plot`` on the
     same Axes. ``colors`` gives one colour per run (default: matplotlib's cycle).
     """
-    from ._plotting import get_axes
+    from ._plotting import get_axes, no_mathtext
 
     spec = analysis_spec(analysis)
     ax = get_axes(ax)
@@ -371,12 +371,13 @@ def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, *,
     ax.set_title(spec.title)
     if ax.get_legend_handles_labels()[0]:
         ax.legend(fontsize="small")
+    no_mathtext(ax)  # run names are the user's: plain text, not mathtext
     return ax
 
 
 def plot_cka(cka: Any, names: Iterable[str], ax: Any = None, **kw: Any):
     """Draw a runs x runs CKA matrix with its values written in the cells."""
-    from ._plotting import get_axes
+    from ._plotting import get_axes, no_mathtext
 
     ax = get_axes(ax)
     names = list(names)
@@ -390,4 +391,4 @@ def plot_cka(cka: Any, names: Iterable[str], ax: Any = None, **kw: Any):
                     color="black" if m[i, j] > 0.6 else "white", fontsize="small")
     ax.figure.colorbar(im, ax=ax, label="linear CKA")
     ax.set_title("Linear CKA of hidden states")
-    return ax
+    return no_mathtext(ax)

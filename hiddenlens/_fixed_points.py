@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -14,6 +15,7 @@ from ._guard import preserved
 from ._jacobians import step_jacobians
 from ._record import as_system
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._threads import single_thread
 from ._trace import Trace, _unit_names
@@ -364,7 +366,7 @@ def find_fixed_points(
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
     # batched S x S solves of small states: one torch thread (two were 5.4x slower on a
     # shared 2-core machine at S = 128; benchmarks/bench_fixed_points.py)
-    with preserved(system.model if system.kind == "callable" else None), \
+    with preserved(system.model if system.kind == "callable" else None), step_errors(system), \
             single_thread(S <= _ONE_THREAD_UP_TO):
         s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
                                     max_iter=max_iter, progress=progress)
@@ -372,7 +374,11 @@ def find_fixed_points(
         reps, support = _merge(s[kept], q[kept], distance_tol)
         P = s[kept][reps]  # (m, S)
         if P.shape[0]:
-            J = step_jacobians(work, P, x_star.expand(P.shape[0], I)).to(torch.float64)
+            # the search returns float64 points: give the step its own precision back, and
+            # keep a module step function's trainable parameters out of the Jacobians' graph
+            with torch.no_grad():
+                J = step_jacobians(work, P.to(dt), x_star.expand(P.shape[0], I))
+            J = J.detach().to(torch.float64)
         else:
             J = torch.zeros(0, S, S, dtype=torch.float64)
     eig, directions, stability = _linearise(J, marginal_tol)
@@ -489,8 +495,11 @@ def _check_options(**opts: Any) -> None:
         v = opts[name]
         if v is None and name == "tol":
             continue
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v >= 0:
-            raise ValueError(f"{name} must be a number >= 0, got {v!r}")
+        # numpy scalars (np.float32(1e-5)) are numbers too; NaN and inf are not tolerances
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, float, np.integer,
+                                                                 np.floating)) \
+                or not 0 <= v < math.inf:
+            raise ValueError(f"{name} must be a number >= 0 (finite), got {v!r}")
 
 
 # ---------------------------------------------------------------------- optimisation

@@ -19,6 +19,7 @@ from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._threads import single_thread
 from ._validation import as_float_tensor
 
@@ -157,8 +158,10 @@ class GradientFlow:
 
     def __repr__(self) -> str:
         B, L = self.norms.shape
-        return (f"GradientFlow(B={B}, lags 1..{L}, rate={self.rate:+.4g} per step, "
-                f"half_life={self.half_life:.4g}, verdict={self.verdict!r})")
+        note = self.metadata.get("verdict_note")
+        return (f"GradientFlow(B={B}, lags 1..{L}, rate={self.rate:+.4g} per step from "
+                f"{self.metadata.get('counted_lags', L)} lags, half_life={self.half_life:.4g}, "
+                f"verdict={self.verdict!r}" + (f" [{note}]" if note else "") + ")")
 
 
 # ---------------------------------------------------------------------- computation
@@ -228,18 +231,28 @@ def gradient_flow(
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B_all, T, S = prev.shape
     end = _check_index(end, T, "end", T - 1)
-    max_lag = _check_index(max_lag, end + 2, "max_lag", end, low=1)
+    max_lag = _check_index(max_lag, end + 2, "max_lag", max(end, 1), low=1)
     rows = _part_columns(trace, parts)
     sel = _check_samples(samples, B_all)
-    if not (isinstance(threshold, (int, float)) and threshold >= 0):
+    if not (isinstance(threshold, (int, float, np.integer, np.floating))
+            and not isinstance(threshold, bool) and 0 <= threshold < math.inf):
         raise ValueError(f"threshold must be a number >= 0 (natural log per step), got "
                          f"{threshold!r}")
+    if not (isinstance(tol, (int, float, np.integer, np.floating))
+            and not isinstance(tol, bool) and 0 < tol < 1):
+        raise ValueError(f"tol must be a number in (0, 1) (relative tolerance of the power "
+                         f"iteration), got {tol!r}")
     lo_fit, hi_fit = _check_fit_lags(fit_lags, max_lag)
     if isinstance(max_iter, bool) or not isinstance(max_iter, int) or max_iter < 1:
         raise ValueError(f"max_iter must be a positive integer, got {max_iter!r}")
     chunk = check_chunk(chunk)
     prev, x = prev[sel], x[sel]
     B = prev.shape[0]
+    # overflow or NaN in the states must not reach the products (an inf state gives a zero or
+    # NaN Jacobian, which would read as "vanishing"): fit on the finite part before it
+    end, max_lag, lo_fit, hi_fit, blowup = _finite_window(
+        trace.states[sel.numpy()], trace.initial[sel.numpy()], x, end, max_lag, lo_fit, hi_fit,
+        sel.numpy(), fit_lags is not None)
     if chunk is None:
         chunk = max(1, _CHUNK_ELEMENTS // max(B * S * S, 1))
     gen = torch.Generator().manual_seed(int(seed))
@@ -256,7 +269,7 @@ def gradient_flow(
     show = progress if progress is not None else max_lag * B * S**3 > 5e10
     bar = tqdm(total=max_lag, disable=not show, desc="gradient flow", leave=False)
     L = 0
-    with torch.no_grad(), bar, _threads_for(2.0 * B * S**3):
+    with torch.no_grad(), bar, _threads_for(2.0 * B * S**3), step_errors(system):
         while L < max_lag:
             # Jacobians J_t for t = end - L, end - L - 1, ... (the next factors), newest first
             t_hi = end - L + 1
@@ -281,6 +294,10 @@ def gradient_flow(
                     log_n[:, L] = (log_scale + sigma.log()).numpy()
                 L += 1
                 bar.update(1)
+    if blowup is not None and blowup["excluded"]:
+        rows_out = np.isin(sel.numpy(), blowup["excluded"])
+        log_n[rows_out] = np.nan
+        log_f[rows_out] = np.nan
     lags = np.arange(1, max_lag + 1)
     with np.errstate(over="ignore", under="ignore"):
         norms, frob = np.exp(log_n), np.exp(log_f)
@@ -291,14 +308,94 @@ def gradient_flow(
     with np.errstate(invalid="ignore", divide="ignore"):
         pooled = np.where(known, log_n[:, fit], 0.0).sum(axis=0) / known.sum(axis=0)
     rate, intercept = _fit_rate(lags[fit], pooled)
+    counted = int(np.isfinite(pooled).sum())
+    verdict = _verdict(rate, threshold)
+    notes = []
+    if blowup is not None:
+        if blowup["kind"] == "overflow" and verdict != "undetermined":
+            # states that grow without bound to inf are exploding whatever the finite part says
+            verdict = "exploding"
+        notes.append(blowup["note"])
+    if verdict != "undetermined" and counted < MIN_FIT_LAGS:
+        notes.append(f"rate from only {counted} lag{'s' if counted != 1 else ''} (fewer than "
+                     f"{MIN_FIT_LAGS}); treat it as indicative")
+    if verdict == "undetermined" and counted < 2:
+        notes.append(f"{counted} finite lag{'s' if counted != 1 else ''}: no rate can be fitted"
+                     " (need at least 2; raise max_lag)")
+    meta = dict(trace.metadata, counted_lags=counted, fit_lags=[int(lo_fit), int(hi_fit)])
+    if notes:
+        meta["verdict_note"] = "; ".join(notes)
+    if blowup is not None:
+        meta["non_finite"] = {k: v for k, v in blowup.items() if k != "note"}
     return GradientFlow(
         lags=readonly(lags), norms=readonly(norms), log_norms=readonly(log_n),
         frobenius=readonly(frob), log_frobenius=readonly(log_f), rate=rate, rates=readonly(rates),
-        intercept=intercept, half_life=_half_life(rate), verdict=_verdict(rate, threshold),
+        intercept=intercept, half_life=_half_life(rate), verdict=verdict,
         threshold=float(threshold), end=end, samples=readonly(sel.numpy()),
         parts=None if parts is None else tuple([parts] if isinstance(parts, str) else parts),
-        metadata=frozen_mapping(trace.metadata),
+        metadata=frozen_mapping(meta),
     )
+
+
+#: Fewer lags than this in the fit mark the rate as indicative (``metadata["verdict_note"]``).
+MIN_FIT_LAGS = 20
+
+
+def _finite_window(states: np.ndarray, initial: np.ndarray, x: torch.Tensor, end: int,
+                   max_lag: int, lo_fit: int, hi_fit: int, samples: np.ndarray,
+                   fit_given: bool) -> tuple[int, int, int, int, dict[str, Any] | None]:
+    """Where the states (B, T, S) the products need are not finite: exclude or shorten.
+
+    Samples whose states stay finite over the window are kept and the others excluded (their
+    norms read NaN); when every sample blows up, ``end`` moves before the first non-finite
+    state. Returns the end, max_lag and fit range to use and a description of the blow-up
+    (None when every state is finite).
+    """
+    if not bool(torch.isfinite(x).all()):
+        bt = (~torch.isfinite(x)).any(dim=2).nonzero()[0].tolist()
+        raise ValueError(f"the trace's inputs contain NaN or Inf (sample {samples[bt[0]]}, step "
+                         f"{bt[1]}); record the trace from finite inputs")
+    lo_step = end - max_lag  # s_{end - max_lag} is the oldest state used (initial when -1)
+    window = states[:, max(lo_step, 0):end + 1]  # (B, n, S)
+    init_ok = lo_step >= 0 or bool(np.isfinite(initial).all())
+    if init_ok and np.isfinite(window.max()) and np.isfinite(window.min()):
+        return end, max_lag, lo_fit, hi_fit, None
+    finite = np.isfinite(window).all(axis=2)  # (B, n)
+    if lo_step < 0:
+        finite = np.concatenate([np.isfinite(initial).all(axis=1)[:, None], finite], axis=1)
+    first = np.where(finite.all(axis=1), finite.shape[1], np.argmin(finite, axis=1))
+    t_first = first + (lo_step if lo_step < 0 else max(lo_step, 0))  # step of s_t, -1: initial
+    bad = np.flatnonzero(first < finite.shape[1])
+    b = int(bad[np.argmin(t_first[bad])])
+    t_bad = int(t_first[b])
+    row = initial[b] if t_bad < 0 else states[b, t_bad]
+    kind = "overflow" if np.isinf(row).any() else "nan"
+    what = "overflowed to inf" if kind == "overflow" else "became NaN"
+    where = "in the initial state" if t_bad < 0 else f"at t={t_bad}"
+    info: dict[str, Any] = {"kind": kind, "step": t_bad, "sample": int(samples[b]),
+                            "excluded": [int(samples[i]) for i in bad]}
+    if kind == "nan" and np.isinf(states[bad]).any():
+        info["kind"] = kind = "overflow"  # a NaN that follows an overflow elsewhere
+    if bad.size < len(samples):
+        names = ", ".join(str(samples[i]) for i in bad)
+        info["note"] = (f"states {what} {where}, sample {samples[b]}; "
+                        f"sample{'s' if bad.size > 1 else ''} {names} excluded from the rate")
+        return end, max_lag, lo_fit, hi_fit, info
+    new_end = t_bad - 1
+    new_max = min(max_lag, new_end + 1) if new_end >= 0 else 0
+    if new_max < 1:
+        raise ValueError(f"the states {what} {where} (sample {samples[b]}) before any finite "
+                         "lag: gradient flow is undefined there; pass end= before the blow-up "
+                         "or record with smaller inputs / weights")
+    hi = min(hi_fit, new_max)
+    lo = min(lo_fit, hi)
+    info["end"] = new_end
+    info["note"] = (f"states {what} {where}, sample {samples[b]}; the rate is fitted on the "
+                    f"finite part before it (end={new_end}, lags {lo}..{hi})")
+    if fit_given and (hi, lo) != (hi_fit, lo_fit):
+        info["note"] += f" instead of the requested lags {lo_fit}..{hi_fit}"
+    info["excluded"] = []
+    return new_end, new_max, lo, hi, info
 
 
 def _threads_for(step_flops: float):

@@ -8,6 +8,7 @@ re-orthonormalised by QR. See docs/lyapunov.md for the definition and the cautio
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from typing import Any
@@ -19,11 +20,13 @@ from ._guard import preserved
 from ._jacobians import step_jacobians, step_jvp
 from ._record import as_system, initial_states
 from ._results import frozen_mapping, readonly
+from ._stepcheck import state_only, step_errors
 from ._systems import RecurrentSystem
 from ._threads import single_thread
 from ._validation import as_dtype, as_sequences
 
-__all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension"]
+__all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension",
+           "StationaryTrajectoryWarning"]
 
 METHODS = ("auto", "jacobian", "jvp")
 
@@ -239,7 +242,11 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
     float
         0.0 when the largest exponent is negative.
     """
-    lam = np.sort(np.asarray(exponents, dtype=np.float64).reshape(-1))[::-1]
+    try:
+        lam = np.sort(np.asarray(exponents, dtype=np.float64).reshape(-1))[::-1]
+    except (TypeError, ValueError):
+        raise TypeError(f"exponents must be numbers (an array of shape (k,)), got "
+                        f"{type(exponents).__name__}; pass LyapunovSpectrum.exponents") from None
     if lam.size == 0 or np.isnan(lam).any():
         return float("nan")
     if lam[0] < 0:
@@ -267,6 +274,8 @@ def lyapunov_spectrum(
     qr_every: int = 1,
     seed: int = 0,
     progress: bool | None = None,
+    steps: int | None = None,
+    keep_trace: bool = False,
     **wrap_options: Any,
 ) -> LyapunovSpectrum:
     """The k largest Lyapunov exponents of a recurrent system along given input sequences.
@@ -279,9 +288,11 @@ def lyapunov_spectrum(
     ----------
     system : RecurrentSystem, nn.Module or callable
         Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
-    inputs : Tensor or ndarray of shape (B, T, I) or (T, I)
+    inputs : Tensor or ndarray of shape (B, T, I) or (T, I), int or None
         Input sequences driving the system, batch first; each sample gives its own estimate.
-        For an autonomous map (``input_size=0``) pass zeros of shape (B, T, 0).
+        For an autonomous map (``input_size=0``) pass the number of steps (or None with
+        ``steps=``); B is then the batch of ``h0`` (1 without one). A step function of the
+        state alone, ``f(s)``, is accepted for an autonomous map.
     k : int, optional
         How many of the largest exponents (default: all S).
     warmup : int, optional
@@ -310,12 +321,26 @@ def lyapunov_spectrum(
         first k exponents of the full spectrum.
     progress : bool, optional
         Show a progress bar (default: only for long runs).
+    steps : int, optional
+        Number of steps of an autonomous map (instead of zero-width inputs).
+    keep_trace : bool, default False
+        Keep the trajectory the exponents were computed on as ``metadata["trace"]`` (a
+        :class:`~hiddenlens.Trace`), so its states need no second run.
     **wrap_options
         Passed to :func:`hiddenlens.wrap` when ``system`` is not yet a system.
 
     Returns
     -------
     LyapunovSpectrum
+        ``metadata["caution"]`` says when the estimate is not conclusive: fewer than
+        ``MIN_COUNTED_STEPS`` counted steps, or a trajectory that sits at a fixed point.
+
+    Warns
+    -----
+    StationaryTrajectoryWarning
+        When the trajectory never leaves its starting state or settles on a fixed point (the
+        default ``h0`` of zeros is a fixed point of many autonomous flows, e.g. Lorenz): the
+        exponents are then the fixed point's, not the attractor's.
 
     Raises
     ------
@@ -347,10 +372,14 @@ def lyapunov_spectrum(
     """
     if dtype is not None and not isinstance(system, RecurrentSystem):
         wrap_options.setdefault("dtype", dtype)
+    if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
+            and wrap_options.get("input_size", 0) == 0 and state_only(system) is not None:
+        system, wrap_options = state_only(system), {**wrap_options, "input_size": 0}
     system = as_system(system, **wrap_options)
     if dtype is not None:
         system = _with_dtype(system, as_dtype(dtype))
     dt = system.dtype
+    inputs = _autonomous_inputs(system, inputs, steps, h0, dt)
     x = as_sequences(inputs, system.input_size, dt, what=f"the {system.source} system")
     if system.time_reversed:
         x = x.flip(1)
@@ -369,7 +398,8 @@ def lyapunov_spectrum(
     # flops of one step of the state (up to 4 gates) and of the frame (J Q and its QR)
     state_flops = B * 8 * S * (S + system.input_size)
     frame_flops = B * (2 * S * S * k + 4 * S * k * k)
-    with preserved(system.model if system.kind == "callable" else None), torch.no_grad():
+    with preserved(system.model if system.kind == "callable" else None), torch.no_grad(), \
+            step_errors(system):
         if system.kind == "callable":
             _check_step_dtype(system, s0, x[:, 0])
         with _threads_for(state_flops):
@@ -382,18 +412,88 @@ def lyapunov_spectrum(
     per_sample = sums / (T - warmup)  # (B, k)
     exponents = per_sample.mean(axis=0)
     std = per_sample.std(axis=0, ddof=1) if B > 1 else np.full(k, np.nan)
+    meta: dict[str, Any] = {"source": system.source, "kind": system.kind, "batch_size": B,
+                            "input_steps": T, "seed": int(seed),
+                            "fingerprint": system.fingerprint, "counted_steps": T - warmup}
+    cautions = []
+    still = _stationary(states, s0, warmup)
+    if still:
+        cautions.append(still)
+        warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
+                      "start from another h0 (e.g. a small random state) or drive the system",
+                      StationaryTrajectoryWarning, stacklevel=2)
+    if T - warmup < MIN_COUNTED_STEPS:
+        cautions.append(f"from only {T - warmup} counted step{'s' if T - warmup != 1 else ''} "
+                        f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
+    if cautions:
+        meta["caution"] = "; ".join(cautions)
+    # leaky RNNs built with dt: exponents per unit of the model's own time too
+    meta["dt"] = system.dt
+    meta["exponents_per_unit_time"] = (None if system.dt is None
+                                       else (np.asarray(exponents) / system.dt).tolist())
+    if keep_trace:
+        from ._record import _metadata
+        from ._trace import Trace
+
+        rec = Trace(states.numpy(), s0.numpy(), x.numpy(), system.parts,
+                    _metadata(system, tuple(x.shape)))
+        meta["trace"] = rec
     return LyapunovSpectrum(
         exponents=exponents, per_sample=per_sample, std=std, running=running,
         running_steps=running_steps, kaplan_yorke=kaplan_yorke_dimension(exponents, S),
         state_size=S, n_steps=T - warmup, warmup=warmup, method=chosen, qr_every=qr_every,
         dtype=str(dt).replace("torch.", ""),
-        metadata={"source": system.source, "kind": system.kind, "batch_size": B,
-                  "input_steps": T, "seed": int(seed), "fingerprint": system.fingerprint,
-                  # leaky RNNs built with dt: exponents per unit of the model's own time too
-                  "dt": system.dt,
-                  "exponents_per_unit_time": None if system.dt is None
-                  else (np.asarray(exponents) / system.dt).tolist()},
+        metadata=meta,
     )
+
+
+#: Fewer counted steps than this mark the exponents as not conclusive (``metadata["caution"]``).
+MIN_COUNTED_STEPS = 100
+
+
+class StationaryTrajectoryWarning(RuntimeWarning):
+    """The trajectory of :func:`lyapunov_spectrum` sits at a fixed point or never left h0."""
+
+
+def _stationary(states: torch.Tensor, s0: torch.Tensor, warmup: int) -> str | None:
+    """A description when every sample's counted states (B, T, S) stay at one point."""
+    counted = states[:, warmup:]  # (B, n, S)
+    scale = 1.0 + counted.abs().amax(dim=(1, 2))  # (B,)
+    eps = 1e3 * torch.finfo(states.dtype).eps
+    moved = (counted - counted[:, -1:]).abs().amax(dim=(1, 2)) > eps * scale
+    if bool(moved.any()):
+        return None
+    left = (states - s0[:, None]).abs().amax(dim=(1, 2)) > eps * scale
+    if not bool(left.any()):
+        return "the trajectory never left its initial state h0 (h0 is a fixed point)"
+    if counted.shape[1] < 2:
+        return None
+    return "the trajectory settled on a fixed point before the counted steps"
+
+
+def _autonomous_inputs(system: RecurrentSystem, inputs: Any, steps: Any, h0: Any,
+                       dt: torch.dtype) -> Any:
+    """Zero-width inputs (B, T, 0) for an autonomous map given by a number of steps."""
+    if steps is None and not (isinstance(inputs, (int, np.integer))
+                              and not isinstance(inputs, bool)):
+        if inputs is None:
+            raise ValueError("inputs is None: pass input sequences (B, T, I), or for an "
+                             "autonomous map (input_size=0) the number of steps, steps=T")
+        return inputs
+    if steps is not None and inputs is not None:
+        raise ValueError("pass either inputs or steps=, not both (steps= is for autonomous "
+                         "maps, which take no inputs)")
+    T = inputs if steps is None else steps
+    if isinstance(T, bool) or not isinstance(T, (int, np.integer)) or T < 1:
+        raise ValueError(f"steps must be a positive integer (the number of steps), got {T!r}")
+    if system.input_size != 0:
+        raise ValueError(f"a number of steps drives only an autonomous map (input_size=0), but "
+                         f"{system.source} takes {system.input_size} input features; pass "
+                         f"inputs of shape (B, T, {system.input_size})")
+    B = 1
+    if h0 is not None and getattr(h0, "ndim", 0) >= 2:
+        B = int(h0.shape[-2])
+    return torch.zeros(B, int(T), 0, dtype=dt)
 
 
 # ---------------------------------------------------------------------- the sweep

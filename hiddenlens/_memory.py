@@ -19,6 +19,7 @@ from ._guard import preserved
 from ._jacobians import input_jacobians, step_jacobians
 from ._record import as_system, record
 from ._results import frozen_mapping, readonly
+from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._trace import Trace
 
@@ -338,7 +339,9 @@ def memory_curve(
             return _decoding(trace, cols, opts, meta, progress)
         if opts["method"] == "perturbation":
             return _perturbation(system, trace, cols, in_std, opts, meta)
-        return _sensitivity(system, trace, cols, in_std, opts, meta, progress)
+        # a module step function's parameters may require grad
+        with torch.no_grad(), step_errors(system):
+            return _sensitivity(system, trace, cols, in_std, opts, meta, progress)
 
 
 # ====================================================================== options and inputs
@@ -457,10 +460,12 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
         else:
             x = rng.standard_normal((B, T, I)) * opts["scale"]  # (B, T, I)
         trace = record(system, x, h0, progress=progress)
+        _check_bounded(trace, "probe inputs", "lower scale=")
         std = np.full(I, opts["scale"]) if not opts["categorical"] else trace.inputs.reshape(
             -1, I).std(axis=0)
         return trace, std
     trace = record(system, inputs, h0, progress=progress)
+    _check_bounded(trace, "inputs", "scale the inputs down")
     x = trace.inputs.reshape(-1, I).astype(np.float64)  # (B*T, I)
     if opts["categorical"] is None:
         opts["categorical"] = bool(I >= 2 and _is_one_hot(x))
@@ -468,7 +473,26 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
         raise ValueError("categorical=True but the inputs are not one-hot: every step must have "
                          "exactly one positive entry and zeros elsewhere; pass categorical=False "
                          "for real-valued inputs")
+    if I and not np.any(x.std(axis=0) > 0):
+        # a constant target is "decoded" perfectly at every lag: that is no memory
+        raise ValueError("the inputs are constant (every feature has zero spread over samples "
+                         "and steps), so no memory of them can be measured; pass inputs that "
+                         "vary or use mode='probe'")
     return trace, x.std(axis=0)
+
+
+def _check_bounded(trace: Trace, what: str, fix: str) -> None:
+    """Refuse states that overflowed or became NaN, naming the first step and sample."""
+    st = trace.states
+    if np.isfinite(st.max()) and np.isfinite(st.min()):
+        return
+    finite = np.isfinite(st).all(axis=2)  # (B, T)
+    t = int(np.flatnonzero(~finite.all(axis=0))[0])
+    b = int(np.flatnonzero(~finite[:, t])[0])
+    kind = "overflowed to inf" if np.isinf(st[b, t]).any() else "became NaN"
+    raise ValueError(f"the states {kind} at step t={t} of sample {b} on these {what}: the "
+                     f"dynamics explode, and a memory curve needs bounded states; {fix} or "
+                     "analyse a stable model")
 
 
 def _is_one_hot(x: np.ndarray) -> bool:

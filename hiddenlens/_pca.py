@@ -279,7 +279,10 @@ def pca_trajectories(
         raise TypeError(f"trace must be a hiddenlens Trace, got {type(trace).__name__}; record "
                         "one with hiddenlens.record(model, inputs)")
     names = None if parts is None else ((parts,) if isinstance(parts, str) else tuple(parts))
-    cols = trace.columns(names)  # (D,)
+    try:
+        cols = trace.columns(names)  # (D,)
+    except KeyError as err:  # an unknown part is a bad option value, as elsewhere
+        raise ValueError(str(err.args[0])) from None
     B, T, _ = trace.states.shape
     X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
     from ._record import valid_steps

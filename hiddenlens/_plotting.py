@@ -16,6 +16,7 @@ __all__ = [
     "color_by_sample",
     "get_axes",
     "keep_labels_inside",
+    "no_mathtext",
     "plain_text",
     "run_style",
     "style_axes",
@@ -170,3 +171,17 @@ def _linspace(n: int):
     import numpy as np
 
     return np.linspace(0.0, 1.0, max(n, 1))
+
+
+def no_mathtext(ax_or_fig: Any):
+    """Draw every text of a figure as plain text (no mathtext), and return the argument.
+
+    Run and model names come from users: ``"$\\foo$"`` would otherwise be parsed as
+    mathtext and fail when the figure is drawn.
+    """
+    from matplotlib.text import Text
+
+    fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    for t in fig.findobj(Text):
+        t.set_parse_math(False)
+    return ax_or_fig

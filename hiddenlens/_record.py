@@ -249,6 +249,21 @@ def _metadata(system: RecurrentSystem, shape: tuple[int, ...]) -> dict[str, Any]
         "dt": system.dt,
         "fingerprint": system.fingerprint,
         "dtype": str(system.dtype).replace("torch.", ""),
+        **_precision_note(system),
         "hiddenlens_version": __version__,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
     }
+
+
+def _precision_note(system: RecurrentSystem) -> dict[str, Any]:
+    """Say so when a model's own weights have another precision than the analysis."""
+    model = getattr(system, "model", None)
+    params = [p for p in model.parameters()] if isinstance(model, torch.nn.Module) else []
+    dtypes = {p.dtype for p in params if p.is_floating_point()}
+    if len(dtypes) != 1 or system.dtype in dtypes:
+        return {}
+    own = str(next(iter(dtypes))).replace("torch.", "")
+    used = str(system.dtype).replace("torch.", "")
+    return {"model_dtype": own,
+            "precision_note": f"the {own} model was analysed in {used} (weight copies "
+                              f"converted); pass dtype=torch.{own} to keep its precision"}

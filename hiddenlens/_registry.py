@@ -349,6 +349,8 @@ def median_curve(a: Any) -> np.ndarray:
     arr = np.asarray(a, dtype=float)
     if arr.ndim <= 1:
         return arr.reshape(-1)
+    if arr.size == 0:
+        return np.empty(0)
     flat = arr.reshape(-1, arr.shape[-1])  # (N, L)
     return np.asarray(nanmedian(flat, axis=0)) if flat.shape[0] else np.empty(0)
 

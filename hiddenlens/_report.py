@@ -31,6 +31,7 @@ from ._figures import (
     key_figures,
     summary_sentence,
 )
+from ._plotting import no_mathtext
 from ._registry import AnalysisSpec, analyses, registered
 from ._runner import AnalysisResults
 from ._version import __version__
@@ -84,6 +85,7 @@ def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
     fig.subplots_adjust(left=left, right=0.95, bottom=0.14, top=0.9)
     ax = fig.add_subplot(projection=projection)
     draw(ax)
+    no_mathtext(fig)  # names come from users: never parse them as mathtext
     buf = io.BytesIO()
     fig.savefig(buf, format="png", metadata={"Software": None})
     return base64.b64encode(buf.getvalue()).decode("ascii")
@@ -445,7 +447,8 @@ def write_report(
     before = set(plt.get_fignums()) if plt is not None else set()
     try:
         page, _ = _build_html(runs, comp, title=title, inputs_description=inputs_description,
-                              notes=list(notes), progress=progress)
+                              notes=[notes] if isinstance(notes, str) else list(notes),
+                              progress=progress)
     finally:
         _close_stray_pyplot_figures(before)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -459,11 +462,15 @@ def write_report(
 
 
 def _atomic_write(path: Path, text: str) -> None:
-    # write next to the target and rename, so an interrupted run never leaves half a file
-    tmp = path.with_name(f".{path.name}.partial")
+    # write next to the target and rename, so an interrupted run never leaves half a file;
+    # mkstemp opens a fresh name with O_EXCL, so a planted symlink is never followed
+    import tempfile
+
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
     try:
-        tmp.write_text(text, encoding="utf-8")
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
         os.replace(tmp, path)
     finally:
-        if tmp.exists():
-            tmp.unlink()
+        if os.path.lexists(tmp):
+            os.unlink(tmp)

@@ -359,21 +359,22 @@ def _run_callable(system: RecurrentSystem, inputs, h0, progress):
     with preserved(model):
         for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
             s = system._step_fn(s, xs[t])
-            if t == 0:
-                _check_step_output(s, B, system.state_size)
+            # every step, cheaply: a step function may change its output shape later on
+            if not isinstance(s, torch.Tensor) or s.shape != (B, system.state_size):
+                _check_step_output(s, B, system.state_size, t)
             s = s.to(system.dtype)  # keep the promised dtype if the function promotes
             out[:, t] = s
     return out
 
 
-def _check_step_output(s, B, S):
+def _check_step_output(s, B, S, t=0):
     if not isinstance(s, torch.Tensor):
         raise TypeError(f"the step function must return a tensor of shape ({B}, {S}), "
-                        f"got {type(s).__name__}")
+                        f"got {type(s).__name__} at step t={t}")
     if tuple(s.shape) != (B, S):
         raise ValueError(
-            f"the step function returned shape {tuple(s.shape)} but states have shape ({B}, {S}); "
-            "it must map (B, S) states and (B, I) inputs to (B, S) states"
+            f"the step function returned shape {tuple(s.shape)} but states have shape ({B}, {S}) "
+            f"(at step t={t}); it must map (B, S) states and (B, I) inputs to (B, S) states"
         )
 
 
@@ -939,6 +940,10 @@ def _weight(module: nn.Module, attr: str, dtype: torch.dtype) -> torch.Tensor:
                 "available here; hiddenlens analyses on the CPU: load the weights with "
                 "map_location='cpu' or call model.cpu() first"
             ) from err
+    if not torch.is_floating_point(p):
+        raise TypeError(f"parameter {attr} has dtype {str(p.dtype).replace('torch.', '')}; "
+                        "recurrent weights must be floating-point: convert the model with "
+                        "model.float() or model.double() before wrapping it")
     return p.detach().to(dtype=dtype, copy=True)
 
 

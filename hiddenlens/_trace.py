@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import json
 import os
+import stat
+import tempfile
+import zipfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -12,10 +15,17 @@ import numpy as np
 
 from ._results import frozen_mapping, readonly
 
-__all__ = ["Trace", "load_trace"]
+__all__ = ["Trace", "load_trace", "MAX_TRACE_BYTES"]
 
 FORMAT = "hiddenlens-trace"
 FORMAT_VERSION = 1
+
+#: Largest total array size :func:`load_trace` reads by default (4 GiB); pass ``max_bytes`` to
+#: read larger traces. Sizes are checked against the file's headers before anything is allocated.
+MAX_TRACE_BYTES = 4 << 30
+#: Largest metadata text read from a trace file (16 MiB of JSON).
+MAX_METADATA_BYTES = 16 << 20
+_READ_CHUNK = 1 << 20
 
 
 @dataclass(frozen=True, eq=False)
@@ -43,6 +53,18 @@ class Trace:
     metadata: Mapping[str, Any]
 
     def __post_init__(self) -> None:
+        for name in ("states", "initial", "inputs"):
+            a = getattr(self, name)
+            dtype = getattr(a, "dtype", None)
+            if hasattr(a, "detach"):  # a tensor: judge its dtype the torch way
+                ok = bool(a.is_floating_point())
+            else:
+                ok = dtype is not None and np.issubdtype(dtype, np.floating)
+            if not ok:
+                raise TypeError(
+                    f"trace {name} must be a floating-point array, got "
+                    f"{type(a).__name__}{'' if dtype is None else f' of dtype {dtype}'}; "
+                    f"convert it explicitly, e.g. np.asarray({name}, dtype=np.float32)")
         states, initial, inputs = (readonly(a) for a in (self.states, self.initial, self.inputs))
         if states.ndim != 3 or initial.shape != (states.shape[0], states.shape[2]) \
                 or inputs.shape[:2] != states.shape[:2]:
@@ -50,10 +72,15 @@ class Trace:
                 f"inconsistent trace arrays: states {states.shape} (expected (B, T, S)), initial "
                 f"{initial.shape} (expected (B, S)), inputs {inputs.shape} (expected (B, T, I))"
             )
+        if 0 in states.shape:
+            raise ValueError(
+                f"empty trace: states have shape {states.shape} (B, T, S); a trace needs at "
+                "least one sequence of one step and a state of one unit")
         object.__setattr__(self, "states", states)
         object.__setattr__(self, "initial", initial)
         object.__setattr__(self, "inputs", inputs)
-        object.__setattr__(self, "parts", frozen_mapping(self.parts))
+        object.__setattr__(self, "parts", frozen_mapping(_check_parts(self.parts,
+                                                                      states.shape[2])))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
 
     # ------------------------------------------------------------------ sizes
@@ -196,14 +223,19 @@ class Trace:
             raise TypeError(f"trace metadata must be JSON-serialisable to be saved: {err}; "
                             "keep metadata to numbers, strings, lists and dicts") from None
         path = os.fspath(path)
-        tmp = f"{path}.partial-{os.getpid()}"
+        folder = os.path.dirname(os.path.abspath(path))
+        # mkstemp creates the temporary file with O_EXCL in the target folder: it never follows
+        # a planted symlink, and os.replace swaps it in atomically (replacing a link at ``path``,
+        # never its target)
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{os.path.basename(path)}.",
+                                   suffix=".partial")
         try:
-            with open(tmp, "wb") as fh:
+            with os.fdopen(fd, "wb") as fh:
                 np.savez(fh, states=self.states, initial=self.initial, inputs=self.inputs,
                          metadata=np.array(text))
             os.replace(tmp, path)
         finally:
-            if os.path.exists(tmp):
+            if os.path.lexists(tmp):
                 os.remove(tmp)
 
 
@@ -218,64 +250,183 @@ def _json_default(value: Any) -> Any:
 _ARRAYS = ("states", "initial", "inputs")
 
 
-def load_trace(path: str | os.PathLike) -> Trace:
+def _check_parts(parts: Any, S: int) -> dict[str, slice]:
+    """Parts as contiguous integer slices inside a state of size S."""
+    if not isinstance(parts, Mapping):
+        raise TypeError(f"trace parts must be a mapping of names to slices, got "
+                        f"{type(parts).__name__}")
+    out = {}
+    for n, sl in parts.items():
+        if not isinstance(n, str) or not isinstance(sl, slice) or sl.step not in (None, 1):
+            raise ValueError(f"trace part {n!r} must be a str name with a contiguous slice, "
+                             f"got {sl!r}")
+        lo = 0 if sl.start is None else sl.start
+        hi = S if sl.stop is None else sl.stop
+        if not all(isinstance(v, (int, np.integer)) and not isinstance(v, bool)
+                   for v in (lo, hi)) or not 0 <= lo < hi <= S:
+            raise ValueError(f"trace part {n!r} = {sl!r} lies outside the state of size {S}; "
+                             f"expected integer bounds 0 <= start < stop <= {S}")
+        out[n] = slice(int(lo), int(hi))
+    return out
+
+
+def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> Trace:
     """Read a trace written by :meth:`Trace.save`.
 
-    Arrays are read with ``np.load(..., allow_pickle=False)`` and metadata is JSON, so loading an
-    untrusted file runs no code from it.
+    Arrays are read with numpy's own ``.npy`` header parser (no pickles) and metadata is JSON, so
+    loading an untrusted file runs no code from it. Every array's shape and dtype is checked
+    against its header and against ``max_bytes`` before memory is allocated, and each array is
+    read straight into its final buffer (peak memory about the size of the arrays).
+
+    Parameters
+    ----------
+    path : str or PathLike
+        A regular file (pipes, devices and folders are refused without being read).
+    max_bytes : int, default MAX_TRACE_BYTES (4 GiB)
+        Largest total size of the arrays; raise it to read larger traces.
 
     Raises
     ------
     FileNotFoundError
         When ``path`` does not exist.
     ValueError
-        When the file is not a hiddenlens trace, is damaged, or comes from a newer hiddenlens.
+        When the file is not a hiddenlens trace, is damaged, is larger than ``max_bytes``, or
+        comes from a newer hiddenlens. The message names the file and the defect.
     """
+    if isinstance(max_bytes, bool) or not isinstance(max_bytes, (int, np.integer)) \
+            or max_bytes < 1:
+        raise ValueError(f"max_bytes must be a positive integer (bytes), got {max_bytes!r}")
     name = os.fspath(path)
-    if not os.path.exists(name):
+    if not os.path.lexists(name):
         raise FileNotFoundError(f"no trace file at {name!r}")
     not_trace = f"{name!r} is not a hiddenlens trace file (written by Trace.save)"
     try:
-        data = np.load(name, allow_pickle=False)
-    except (OSError, ValueError, EOFError):
-        # numpy reads unknown bytes as a pickle, which allow_pickle=False refuses
-        raise ValueError(f"{not_trace}: it is not an .npz archive") from None
-    if not isinstance(data, np.lib.npyio.NpzFile):
-        raise ValueError(f"{not_trace}: it holds a single array, not an .npz archive")
-    try:
-        with data:
-            missing = {*_ARRAYS, "metadata"} - set(data.files)
-            if missing:
-                raise ValueError(f"{not_trace}: it lacks {', '.join(sorted(missing))}")
-            arrays = {k: data[k] for k in _ARRAYS}
-            meta = json.loads(str(data["metadata"][()]))
-    except (OSError, ValueError, EOFError, KeyError) as err:  # JSONDecodeError is a ValueError
-        if str(err).startswith(not_trace):
-            raise
-        raise ValueError(f"{not_trace}: {err}") from None
+        # O_NONBLOCK: opening a FIFO must not wait for a writer
+        fd = os.open(name, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+    except OSError as err:
+        raise ValueError(f"{not_trace}: cannot open it ({err.strerror})") from None
+    if not stat.S_ISREG(os.fstat(fd).st_mode):
+        os.close(fd)
+        raise ValueError(f"{not_trace}: it is not a regular file (a pipe, device or "
+                         "folder); copy the trace to a file first")
+    with os.fdopen(fd, "rb") as fh:
+        try:
+            arrays, meta = _read_archive(fh, not_trace, int(max_bytes))
+        except RecursionError:
+            raise ValueError(f"{not_trace}: its metadata JSON is nested too deeply") from None
+        except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, OSError, KeyError,
+                ValueError, OverflowError, MemoryError, NotImplementedError) as err:
+            text = str(err)
+            if text.startswith(not_trace):
+                raise
+            raise ValueError(f"{not_trace}: it is damaged ({type(err).__name__}: "
+                             f"{text[:200]})") from None
     if not isinstance(meta, dict) or meta.get("format") != FORMAT:
-        raise ValueError(not_trace)
+        raise ValueError(f"{not_trace}: its metadata does not name the format {FORMAT!r}")
     version = meta.get("format_version")
-    if not isinstance(version, int):
+    if isinstance(version, bool) or not isinstance(version, int):
         raise ValueError(f"{not_trace}: format_version is missing")
     if version > FORMAT_VERSION:
         raise ValueError(f"{name!r} was written by a newer hiddenlens (format {version}, this "
                          f"one reads up to {FORMAT_VERSION}); upgrade hiddenlens to read it")
-    for key, a in arrays.items():
-        if not np.issubdtype(a.dtype, np.floating):
-            raise ValueError(f"{not_trace}: {key} has dtype {a.dtype}, expected float")
-    S = arrays["states"].shape[-1] if arrays["states"].ndim == 3 else -1
+    st = arrays["states"]
+    if st.ndim != 3 or 0 in st.shape:
+        raise ValueError(f"{not_trace}: states have shape {st.shape}, expected a non-empty "
+                         "(B, T, S)")
+    S = st.shape[2]
     raw_parts = meta.pop("parts", None)
-    try:
-        parts = {str(n): slice(int(a), int(b)) for n, (a, b) in raw_parts.items()}
-    except (AttributeError, TypeError, ValueError):
-        raise ValueError(f"{not_trace}: malformed parts {raw_parts!r}") from None
-    for n, sl in parts.items():
-        if not 0 <= sl.start < sl.stop <= S:
-            raise ValueError(f"{not_trace}: part {n!r} = {sl} lies outside the state of size {S}")
+    if not isinstance(raw_parts, dict):
+        raise ValueError(f"{not_trace}: malformed parts {str(raw_parts)[:100]}")
+    parts = {}
+    for n, bounds in raw_parts.items():
+        ok = isinstance(bounds, list) and len(bounds) == 2 and all(
+            isinstance(v, int) and not isinstance(v, bool) for v in bounds)
+        if not ok:
+            raise ValueError(f"{not_trace}: part {n!r} = {str(bounds)[:60]} is not a pair of "
+                             "integers [start, stop]")
+        if not 0 <= bounds[0] < bounds[1] <= S:
+            raise ValueError(f"{not_trace}: part {n!r} = {bounds} lies outside the state of "
+                             f"size {S}")
+        parts[n] = slice(*bounds)
     meta.pop("format")
     meta.pop("format_version")
-    return Trace(parts=parts, metadata=meta, **arrays)
+    try:
+        return Trace(parts=parts, metadata=meta, **arrays)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{not_trace}: {err}") from None
+
+
+def _read_archive(fh: Any, not_trace: str, max_bytes: int) -> tuple[dict[str, np.ndarray], Any]:
+    """The three arrays and the parsed metadata of an open trace file, checked as they come."""
+    magic = fh.read(6)
+    if magic == b"\x93NUMPY":
+        raise ValueError(f"{not_trace}: it holds a single array, not an .npz archive")
+    if magic[:4] != b"PK\x03\x04":
+        raise ValueError(f"{not_trace}: it is not an .npz archive")
+    fh.seek(0)
+    with zipfile.ZipFile(fh) as zf:
+        members = {i.filename: i for i in zf.infolist()}
+        missing = [k for k in (*_ARRAYS, "metadata") if f"{k}.npy" not in members]
+        if missing:
+            raise ValueError(f"{not_trace}: it lacks {', '.join(sorted(missing))}")
+        headers = {}
+        total = 0
+        for key in (*_ARRAYS, "metadata"):
+            info = members[f"{key}.npy"]
+            with zf.open(info) as f:
+                shape, dtype, offset = _npy_header(f, key, not_trace)
+            nbytes = int(np.prod(shape, dtype=object)) * dtype.itemsize
+            if info.file_size != offset + nbytes:
+                raise ValueError(
+                    f"{not_trace}: {key} declares shape {shape} of {dtype} ({nbytes} bytes) "
+                    f"but its entry holds {max(info.file_size - offset, 0)} bytes")
+            if key == "metadata":
+                if dtype.kind != "U" or shape != () or nbytes > MAX_METADATA_BYTES:
+                    raise ValueError(f"{not_trace}: metadata must be one JSON string of at "
+                                     f"most {MAX_METADATA_BYTES} bytes, got {dtype} {shape}")
+            else:
+                if dtype.kind != "f":
+                    raise ValueError(f"{not_trace}: {key} has dtype {dtype}, expected float")
+                total += nbytes
+            headers[key] = (info, shape, dtype, offset)
+        if total > max_bytes:
+            raise ValueError(
+                f"{not_trace}: its arrays declare {total} bytes, more than max_bytes="
+                f"{max_bytes}; pass load_trace(path, max_bytes=...) to read a trace this large")
+        arrays = {}
+        for key, (info, shape, dtype, offset) in headers.items():
+            out = np.empty(shape, dtype=dtype)
+            with zf.open(info) as f:  # the stream checks the CRC once the entry is read
+                f.read(offset)
+                view = memoryview(out.reshape(-1).view(np.uint8)) if out.size else memoryview(b"")
+                got = 0
+                while got < len(view):
+                    # bounded pieces: a zip entry's readinto reads a whole bytes copy first
+                    n = f.readinto(view[got:got + _READ_CHUNK])
+                    if not n:
+                        raise ValueError(f"{not_trace}: {key} is truncated")
+                    got += n
+                f.read()  # reach the end of the entry so that a bad CRC is noticed
+            arrays[key] = out
+        meta = json.loads(str(arrays.pop("metadata")[()]))
+    for a in arrays.values():
+        a.setflags(write=False)
+    return arrays, meta
+
+
+def _npy_header(f: Any, key: str, not_trace: str) -> tuple[tuple[int, ...], np.dtype, int]:
+    """Shape, dtype and data offset of one ``.npy`` entry, read from its header alone."""
+    fmt = np.lib.format
+    version = fmt.read_magic(f)
+    if version == (1, 0):
+        shape, fortran, dtype = fmt.read_array_header_1_0(f)
+    elif version in ((2, 0), (3, 0)):
+        shape, fortran, dtype = fmt.read_array_header_2_0(f)
+    else:
+        raise ValueError(f"{not_trace}: {key} has an unknown .npy version {version}")
+    if dtype.hasobject or fortran:
+        raise ValueError(f"{not_trace}: {key} holds Python objects or Fortran-ordered data")
+    return tuple(int(d) for d in shape), dtype, int(f.tell())  # data starts after the header
 
 
 def _unit_names(parts: Mapping[str, slice], size: int) -> list[str]:

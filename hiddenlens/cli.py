@@ -48,7 +48,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     rep.add_argument("--model", required=True, metavar="MODULE:FUNCTION",
                      help="importable factory that builds the model with no arguments, "
-                          "e.g. mypackage.nets:make_model")
+                          "e.g. mypackage.nets:make_model; it runs as Python code, so name "
+                          "only code you trust (the working directory is searched for it)")
     rep.add_argument("--weights", required=True, nargs="+", metavar="FILE",
                      help="one or more state_dict files (torch.save(model.state_dict(), ...))")
     rep.add_argument("--names", nargs="+", metavar="NAME",
@@ -95,6 +96,8 @@ def _common_options(p: argparse.ArgumentParser, *, default_output: str,
                            f"{threads}; the example models are small, so one thread is fastest")
                         + ")")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress lines on stderr")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing report at the output path")
 
 
 def _positive_int(text: str) -> int:
@@ -130,7 +133,15 @@ def _analyses(values: Sequence[str] | None) -> list[str] | None:
     return list(dict.fromkeys(names))
 
 
-def _output_paths(output: str) -> Path:
+def _output_paths(output: str, force: bool = False) -> Path:
+    out = _output_path(output)
+    if out.exists() and not force:
+        raise CommandError(f"a report already exists at {str(out)!r}; pass --force to replace "
+                           "it or choose another --output")
+    return out
+
+
+def _output_path(output: str) -> Path:
     p = Path(output)
     if p.suffix.lower() in (".html", ".htm"):
         return p
@@ -146,13 +157,21 @@ def load_factory(spec: str) -> Callable[[], Any]:
     module_name, sep, attr = spec.partition(":")
     if not sep or not module_name or not attr or ":" in attr:
         raise CommandError(f"--model must look like package.module:function, got {spec!r}")
-    if "" not in sys.path and os.getcwd() not in sys.path:
-        sys.path.insert(0, os.getcwd())  # like `python -m`: factories next to the user's files
+    # like `python -m`, factories next to the user's files are found, but the working folder
+    # is on the path only while this import runs: a stray file there must not shadow the
+    # libraries the analyses import later
+    cwd = os.getcwd()
+    added = "" not in sys.path and cwd not in sys.path
+    if added:
+        sys.path.insert(0, cwd)
     try:
         module = importlib.import_module(module_name)
     except ImportError as err:
         raise CommandError(f"cannot import module {module_name!r} named in --model: {err}; "
                            "check the spelling and that it is on the Python path") from err
+    finally:
+        if added and cwd in sys.path:
+            sys.path.remove(cwd)
     fn = module
     for part in attr.split("."):
         fn = getattr(fn, part, None)
@@ -216,18 +235,10 @@ def load_weights(model: Any, path: str, spec: str) -> None:
     model.eval()
 
 
-def load_inputs(spec: str) -> Any:
-    """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything)."""
-    import numpy as np
-
-    path, key = spec, None
-    head, sep, tail = spec.rpartition(":")
-    if sep and head.lower().endswith(".npz") and tail:
-        path, key = head, tail
-    if not os.path.isfile(path):
-        raise CommandError(f"inputs file {path!r} not found")
+def _read_array(np: Any, fh: Any, path: str, key: str | None) -> Any:
+    """The array of an open .npy file, or array ``key`` of an .npz file (no pickles)."""
     try:
-        data = np.load(path, allow_pickle=False)
+        data = np.load(fh, allow_pickle=False)
     except Exception as err:
         msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
         raise CommandError(f"cannot read inputs from {path!r} (expected .npy or .npz without "
@@ -244,12 +255,32 @@ def load_inputs(spec: str) -> Any:
                                    f"{', '.join(data.files)}")
             try:
                 arr = data[key]
-            except ValueError as err:
-                raise CommandError(f"cannot read array {key!r} of {path!r}: {err}") from err
+            except Exception as err:  # damaged archives raise zipfile, zlib and EOF errors
+                msg = " ".join(str(err).split())[:200] or type(err).__name__
+                raise CommandError(f"cannot read array {key!r} of {path!r}, the file is "
+                                   f"damaged: {type(err).__name__}: {msg}") from None
     else:
         if key is not None:
             raise CommandError("a :KEY suffix applies to .npz files only")
         arr = data
+    return arr
+
+
+def load_inputs(spec: str) -> Any:
+    """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything)."""
+    import numpy as np
+
+    path, key = spec, None
+    head, sep, tail = spec.rpartition(":")
+    if sep and head.lower().endswith(".npz") and tail:
+        path, key = head, tail
+    if not os.path.exists(path):
+        raise CommandError(f"inputs file {path!r} not found")
+    if not os.path.isfile(path):
+        raise CommandError(f"inputs {path!r} is not a regular file (a folder, pipe or device)")
+    # our own handle, closed however numpy fails on a damaged file
+    with open(path, "rb") as fh:
+        arr = _read_array(np, fh, path, key)
     if not np.issubdtype(arr.dtype, np.floating):
         raise CommandError(f"inputs in {spec!r} have dtype {arr.dtype}; expected floating-point "
                            "numbers (one-hot encode tokens and save as float32)")
@@ -279,7 +310,8 @@ class _Progress:
     def __call__(self, message: str, done: int | None = None, total: int | None = None) -> None:
         if self.quiet or message == "done":
             return
-        count = f"[{done + 1}/{total}] " if done is not None and total else ""
+        # done counts finished steps: the step under way is done + 1, never past the total
+        count = f"[{min(done + 1, total)}/{total}] " if done is not None and total else ""
         print(f"{PROG}: {time.perf_counter() - self.t0:6.1f} s  {count}{message}",
               file=sys.stderr, flush=True)
 
@@ -422,7 +454,7 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
 
 def _cmd_report(args: argparse.Namespace) -> int:
     which = _analyses(args.analyses)
-    out = _output_paths(args.output)
+    out = _output_paths(args.output, args.force)
     weights = list(args.weights)
     if args.names is not None:
         if len(args.names) != len(weights):
@@ -482,7 +514,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from .examples import sorting_line
 
     which = _analyses(args.analyses)
-    out = _output_paths(args.output)
+    out = _output_paths(args.output, args.force)
     runs = demo_runs()
     n, t = DEMO_PROBE
     inputs = sorting_line.make_inputs(n, t, seed=args.seed)

@@ -247,3 +247,55 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     if "fixed_points" in present:
         fp = hiddenlens.find_fixed_points(model, trace, **opts["fixed_points"])
         assert run["arrays"]["fixed_points"]["stability"] == fp.stability.tolist()
+
+
+def test_report_damaged_inputs_fail_with_one_line(weights, capsys, tmp_path):
+    import os
+
+    np.savez(tmp_path / "x.npz", a=np.load(weights / "x.npy"))
+    data = (tmp_path / "x.npz").read_bytes()
+    (tmp_path / "cut.npz").write_bytes(data[: len(data) // 2])
+    flipped = bytearray(data)
+    flipped[200] ^= 0xFF
+    (tmp_path / "flip.npz").write_bytes(bytes(flipped))
+    os.mkfifo(tmp_path / "pipe.npy")
+    base = ["report", "--model", FACTORY, "--weights", str(weights / "gain0.5.pt"),
+            "--analyses", "pca", "-o", str(tmp_path / "r")]
+    for name, reason in (("cut.npz", "cannot read inputs"), ("flip.npz", "damaged"),
+                         ("pipe.npy", "not a regular file")):
+        line = _error(capsys, [*base, "--inputs", str(tmp_path / name)])
+        assert reason in line and name in line
+    assert not (tmp_path / "r").exists()
+
+
+def test_report_refuses_to_overwrite_without_force(weights, capsys, tmp_path):
+    out = tmp_path / "r.html"
+    argv = ["report", "--model", FACTORY, "--weights", str(weights / "gain0.5.pt"),
+            "--probe", "2,10", "--analyses", "pca", "-q", "-o", str(out)]
+    assert cli.main(argv) == 0
+    first = out.read_text()
+    capsys.readouterr()
+    line = _error(capsys, argv)
+    assert "a report already exists" in line and "--force" in line
+    assert out.read_text() == first
+    assert cli.main([*argv, "--force"]) == 0
+
+
+def test_model_factory_import_leaves_sys_path_alone(tmp_path, monkeypatch):
+    import sys
+
+    (tmp_path / "my_factory_mod.py").write_text("def make():\n    return None\n")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(sys, "path", [p for p in sys.path if p not in ("", str(tmp_path))])
+    before = list(sys.path)
+    assert cli.load_factory("my_factory_mod:make")() is None  # found in the working folder
+    assert sys.path == before  # and the folder is off the path again
+    monkeypatch.delitem(sys.modules, "my_factory_mod")
+
+
+def test_progress_label_never_passes_the_total(capsys):
+    say = cli._Progress(quiet=False)
+    say("pca done", 6, 6)
+    say("pca", 5, 6)
+    err = capsys.readouterr().err
+    assert "[6/6] pca done" in err and "[7/6]" not in err and "[6/6] pca\n" in err

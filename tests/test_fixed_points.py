@@ -376,3 +376,43 @@ def test_plot_needs_axes_for_wide_states(agg):
 def test_result_type_is_exported():
     assert hl.find_fixed_points is find_fixed_points
     assert FixedPoints.__dataclass_params__.frozen
+
+
+class _TanhStep(nn.Module):
+    """s' = tanh(W s + U x) with trainable parameters (requires_grad stays on)."""
+
+    def __init__(self, dtype):
+        super().__init__()
+        g = torch.Generator().manual_seed(3)
+        self.W = nn.Parameter(0.5 * torch.randn(4, 4, generator=g, dtype=dtype))
+        self.U = nn.Parameter(torch.randn(4, 2, generator=g, dtype=dtype))
+
+    def forward(self, s, x):
+        return torch.tanh(s @ self.W.T + x @ self.U.T)
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+def test_find_fixed_points_on_module_step_function_with_trainable_parameters(dtype):
+    step = _TanhStep(dtype)
+    system = hl.wrap(step, state_size=4, input_size=2, dtype=dtype)
+    x = np.random.default_rng(0).normal(size=(2, 20, 2)).astype(
+        np.float32 if dtype == torch.float32 else np.float64)
+    fp = find_fixed_points(system, hl.record(system, x), n_starts=6)
+    # ||W||_2 < 1 makes the map a contraction at x = 0: one fixed point, the origin, whose
+    # Jacobian is W there (tanh'(0) = 1), so its eigenvalues are W's (numpy.linalg.eigvals)
+    assert fp.n_fixed == 1 and np.abs(fp.points[0]).max() < 1e-4
+    ev = np.sort(np.abs(np.linalg.eigvals(step.W.detach().double().numpy())))
+    np.testing.assert_allclose(np.sort(np.abs(fp.eigenvalues[0])), ev, rtol=1e-4)
+    assert all(p.requires_grad for p in step.parameters()) and step.W.grad is None
+
+
+def test_find_fixed_points_accepts_numpy_scalar_tolerances_and_refuses_negative_ones():
+    system = _map(lambda s, x: 0.5 * s, 2)
+    trace = _trace(system, np.ones((1, 2)))
+    fp = find_fixed_points(system, trace, tol=np.float64(1e-10), slow_tol=np.float32(1e-5),
+                           distance_tol=np.float64(1e-3), n_starts=3)
+    assert fp.n_fixed == 1
+    for bad in ({"tol": -1e-9}, {"slow_tol": np.float64(-1.0)}, {"tol": float("nan")},
+                {"marginal_tol": np.inf}):
+        with pytest.raises(ValueError, match="must be a number >= 0"):
+            find_fixed_points(system, trace, n_starts=3, **bad)

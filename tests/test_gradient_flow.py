@@ -11,6 +11,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
+from hiddenlens._summary import key_figures, summary_sentence
 
 
 def _linear_system(W: torch.Tensor):
@@ -285,4 +286,78 @@ def test_non_finite_trajectories(make, gen):
     assert res.rate == pytest.approx(res.rates[0]) and res.verdict != "undetermined"
     states[0, 3:] = np.nan
     dead = hl.Trace(states, trace.initial, trace.inputs, trace.parts, trace.metadata)
-    assert hl.gradient_flow(model, dead).verdict == "undetermined"
+    # every sample blew up at t=3: the rate comes from the finite part before it, and says so
+    res = hl.gradient_flow(model, dead)
+    assert res.end == 2 and res.lags.tolist() == [1, 2, 3]
+    assert "became NaN at t=3" in res.metadata["verdict_note"]
+    assert "only 3 lags" in res.metadata["verdict_note"]
+    states[:, 0] = np.nan
+    with pytest.raises(ValueError, match="became NaN at t=0"):
+        hl.gradient_flow(model, hl.Trace(states, trace.initial, trace.inputs, trace.parts, {}))
+
+
+def _tripling_relu():
+    # h_t = relu(3 h_{t-1} + 1): the states (and d h_T / d h_t = 3^(T-t)) grow x3 per step
+    model = nn.RNN(2, 4, nonlinearity="relu", batch_first=True)
+    with torch.no_grad():
+        for p in model.parameters():
+            p.zero_()
+        model.weight_hh_l0.copy_(3 * torch.eye(4))
+        model.bias_ih_l0.fill_(1.0)
+    return model
+
+
+def test_gradient_flow_verdict_survives_float32_overflow():
+    model = _tripling_relu()
+    with pytest.warns(hl.NonFiniteStateWarning):
+        trace = hl.record(model, np.zeros((2, 120, 2), np.float32))
+    t_inf = int(np.argmin(np.isfinite(trace.states).all(axis=2)[0]))
+    assert 70 < t_inf < 120  # 3^t passes float32's 3.4e38 near t = 81
+    res = hl.gradient_flow(model, trace)
+    # the exact rate is ln 3 per step (the Jacobian is 3 I while the units are active)
+    assert res.rate == pytest.approx(math.log(3.0), rel=1e-6)
+    assert res.verdict == "exploding" and res.half_life == math.inf
+    note = res.metadata["verdict_note"]
+    assert f"overflowed to inf at t={t_inf}, sample 0" in note and "finite part" in note
+    assert res.end == t_inf - 1 and res.metadata["counted_lags"] == t_inf
+    figs = key_figures({"gradient_flow": res})
+    assert "exploding (states overflowed" in summary_sentence(figs)
+    assert "vanishing" not in summary_sentence(figs)
+
+
+def test_gradient_flow_overflow_in_one_sample_still_reads_exploding():
+    model = _tripling_relu()
+    x = np.zeros((2, 100, 2), np.float32)
+    x[1] = -50.0  # sample 1 stays at zero (relu of a negative drive)
+    with torch.no_grad():
+        model.weight_ih_l0.fill_(1.0)
+    with pytest.warns(hl.NonFiniteStateWarning):
+        trace = hl.record(model, x)
+    res = hl.gradient_flow(model, trace)
+    assert res.verdict == "exploding"
+    assert "sample 1 excluded" not in res.metadata["verdict_note"]
+    assert "sample 0 excluded" in res.metadata["verdict_note"]
+    assert np.isnan(res.log_norms[0]).all()
+
+
+def test_gradient_flow_flags_rates_from_few_lags(gen):
+    W = torch.eye(3, dtype=torch.float64) * 1.5
+    res = hl.gradient_flow(_linear_system(W), _flat_trace(3, 30), max_lag=14)
+    assert res.metadata["counted_lags"] == 14 and "only 14 lags" in res.metadata["verdict_note"]
+    assert "from 14 lags" in repr(res)
+    one = hl.gradient_flow(_linear_system(W), _flat_trace(3, 30), max_lag=1)
+    assert one.verdict == "undetermined" and "need at least 2" in one.metadata["verdict_note"]
+    # a 10x period longer than the lags fitted is an extrapolation, and the sentence says so
+    slow = hl.gradient_flow(_linear_system(W * (0.95 / 1.5)), _flat_trace(3, 30), max_lag=14)
+    text = summary_sentence(key_figures({"gradient_flow": slow}))
+    assert "every 45 steps (extrapolated from 14 lags)" in text
+
+
+def test_gradient_flow_accepts_numpy_scalars_and_refuses_negative_tol():
+    W = torch.eye(3, dtype=torch.float64) * 0.5
+    system, trace = _linear_system(W), _flat_trace(3, 10)
+    res = hl.gradient_flow(system, trace, threshold=np.float32(0.01), tol=np.float64(1e-9))
+    assert res.verdict == "vanishing"
+    for bad in ({"tol": -1.0}, {"tol": 0.0}, {"threshold": float("nan")}, {"threshold": -0.1}):
+        with pytest.raises(ValueError, match="must be a number"):
+            hl.gradient_flow(system, trace, **bad)

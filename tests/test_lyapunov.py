@@ -14,6 +14,7 @@ from torch import nn
 
 import hiddenlens as hl
 from hiddenlens._lyapunov import LyapunovSpectrum, kaplan_yorke_dimension, lyapunov_spectrum
+from hiddenlens._summary import key_figures, summary_sentence
 
 F64 = torch.float64
 
@@ -106,14 +107,17 @@ def test_linear_map_log_moduli_of_eigenvalues():
     W = rng.normal(0, 1 / np.sqrt(6), (6, 6))
     Wt = torch.tensor(W)
     system = hl.wrap(lambda s, x: s @ Wt.T, state_size=6, input_size=0, dtype=F64)
-    res = lyapunov_spectrum(system, autonomous(1, 3000))  # h0 = 0: J_t = W at every step
+    # h0 = 0 is a fixed point (and says so); J_t = W at every step, wherever the state is
+    with pytest.warns(hl.StationaryTrajectoryWarning):
+        res = lyapunov_spectrum(system, autonomous(1, 3000))
     # reference: numpy.linalg.eigvals; exponents of h' = W h are log |eigenvalues| (common
     # practice); complex pairs share a modulus, and a finite run splits them by O(1/T)
     ref = np.sort(np.log(np.abs(np.linalg.eigvals(W))))[::-1]
     np.testing.assert_allclose(res.exponents, ref, atol=1e-3)
     assert abs(res.exponents.sum() - ref.sum()) < 1e-10  # log |det W| exactly
     # k < S: the first k columns of the frame and of R do not depend on the rest (Gram-Schmidt)
-    top = lyapunov_spectrum(system, autonomous(1, 3000), k=3)
+    with pytest.warns(hl.StationaryTrajectoryWarning):
+        top = lyapunov_spectrum(system, autonomous(1, 3000), k=3)
     np.testing.assert_allclose(top.exponents, res.exponents[:3], rtol=0, atol=1e-12)
 
 
@@ -148,7 +152,9 @@ def random_tanh_network(g: float, N: int = 200, seed: int = 1):
 @pytest.mark.parametrize("g", [0.5, 0.9])
 def test_random_tanh_network_subcritical_decays(g):
     rnn, W, h0 = random_tanh_network(g)
-    res = lyapunov_spectrum(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=700, dtype=F64)
+    with pytest.warns(hl.StationaryTrajectoryWarning, match="settled on a fixed point"):
+        res = lyapunov_spectrum(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=700,
+                                dtype=F64)
     # the state decays to the fixed point 0, where J = W: the largest exponent is ln rho(W)
     # (common practice; reference numpy.linalg.eigvals), negative for g < 1 (circular law)
     ln_rho = math.log(np.abs(np.linalg.eigvals(W)).max())
@@ -326,3 +332,86 @@ def test_step_function_in_the_wrong_precision_is_refused():
                      dtype=F64)
     with pytest.raises(TypeError, match="returned torch.float32 states for float64 inputs"):
         lyapunov_spectrum(system, autonomous(1, 20))
+
+
+def _lorenz(s, dt=0.01):
+    # Lorenz (1963) with sigma=10, rho=28, beta=8/3, one explicit Euler step of length dt
+    x, y, z = s[..., 0], s[..., 1], s[..., 2]
+    return s + dt * torch.stack([10.0 * (y - x), x * (28.0 - z) - y, x * y - 8.0 / 3.0 * z], -1)
+
+
+def test_lyapunov_warns_when_the_trajectory_never_leaves_h0():
+    # the origin is a fixed point of Lorenz: from the default h0 of zeros nothing moves
+    with pytest.warns(hl.StationaryTrajectoryWarning, match="never left its initial state"):
+        res = hl.lyapunov_spectrum(_lorenz, 300, state_size=3, dtype="float64")
+    assert "never left" in res.metadata["caution"]
+    # the origin's exponents are those of its Jacobian I + dt A (numpy.linalg.eigvals)
+    A = np.array([[-10.0, 10.0, 0.0], [28.0, -1.0, 0.0], [0.0, 0.0, -8.0 / 3.0]])
+    ref = np.sort(np.log(np.abs(np.linalg.eigvals(np.eye(3) + 0.01 * A))))[::-1]
+    np.testing.assert_allclose(np.sort(res.exponents)[::-1], ref, atol=1e-3)
+
+
+def test_lyapunov_warns_when_the_trajectory_settles_on_a_fixed_point():
+    def contract(s):
+        return 0.1 * s
+
+    with pytest.warns(hl.StationaryTrajectoryWarning, match="settled on a fixed point"):
+        hl.lyapunov_spectrum(contract, 400, state_size=2, dtype="float64",
+                             h0=np.ones((1, 2)))
+
+
+def test_lyapunov_autonomous_map_takes_steps_and_a_state_only_function():
+    h0 = np.array([[1.0, 1.0, 1.0]])
+    a = hl.lyapunov_spectrum(_lorenz, None, steps=3000, state_size=3, dtype="float64", h0=h0)
+    b = hl.lyapunov_spectrum(_lorenz, 3000, state_size=3, dtype="float64", h0=h0)
+    c = hl.lyapunov_spectrum(_lorenz, np.zeros((1, 3000, 0)), state_size=3, input_size=0,
+                             dtype="float64", h0=h0)
+    np.testing.assert_array_equal(a.exponents, b.exponents)
+    np.testing.assert_array_equal(a.exponents, c.exponents)
+    # one positive, one near zero, one strongly negative exponent (Lorenz 1963; the flow's
+    # values ~0.9, 0, -14.6 per unit time are quoted from memory, Sprott 2003)
+    lam = a.exponents / 0.01
+    assert lam[0] > 0.3 and abs(lam[1]) < 0.3 and lam[2] < -10
+    with pytest.raises(ValueError, match="drives only an autonomous map"):
+        hl.lyapunov_spectrum(hl.wrap(lambda s, x: s + x, state_size=2, input_size=2), 50)
+    with pytest.raises(ValueError, match="either inputs or steps="):
+        hl.lyapunov_spectrum(_lorenz, 10, steps=10, state_size=3)
+    with pytest.raises(ValueError, match="steps must be a positive integer"):
+        hl.lyapunov_spectrum(_lorenz, None, steps=0, state_size=3)
+
+
+def test_lyapunov_flags_exponents_from_few_counted_steps():
+    h0 = np.array([[1.0, 1.0, 1.0]])
+    res = hl.lyapunov_spectrum(_lorenz, 23, state_size=3, dtype="float64", h0=h0, warmup=0)
+    assert res.metadata["counted_steps"] == 23
+    assert "only 23 counted steps" in res.metadata["caution"]
+    one = hl.lyapunov_spectrum(_lorenz, 2, state_size=3, dtype="float64", h0=h0, warmup=1)
+    assert "only 1 counted step " in one.metadata["caution"]
+    figs = key_figures({"lyapunov": res})
+    assert "from only 23 counted steps, not conclusive" in summary_sentence(figs)
+
+
+def test_lyapunov_keeps_the_trajectory_it_ran():
+    h0 = np.array([[1.0, 1.0, 1.0]])
+    res = hl.lyapunov_spectrum(_lorenz, 200, state_size=3, dtype="float64", h0=h0,
+                               keep_trace=True)
+    tr = res.metadata["trace"]
+    again = hl.record(hl.wrap(lambda s, x: _lorenz(s), state_size=3, input_size=0,
+                              dtype=torch.float64), np.zeros((1, 200, 0)), h0)
+    np.testing.assert_array_equal(tr.states, again.states)
+
+
+@pytest.mark.parametrize("name, step, message", [
+    ("heaviside", lambda s: 0.3 * s + 0.5 * torch.heaviside(s, torch.tensor(0.5, dtype=s.dtype)),
+     "operation with no derivative"),
+    ("floordiv", lambda s: 0.5 * s + (s * 10) // 3 * 0.01, "operation with no derivative"),
+    ("if", lambda s: s * 0.5 if s.sum() > 0 else s * 0.4, "torch.where"),
+    ("item", lambda s: s * (0.5 + 0.0 * s.sum().item()), "torch.where"),
+    ("numpy", lambda s: torch.from_numpy(np.tanh(s.numpy())), "converts tensors to numpy"),
+    ("random", lambda s: 0.5 * s + 0.01 * torch.randn_like(s), "draws random numbers.*as an input"),
+])
+def test_lyapunov_step_function_errors_say_what_to_avoid(name, step, message):
+    state = torch.get_rng_state()
+    with pytest.raises(TypeError, match=message):
+        hl.lyapunov_spectrum(step, 50, state_size=2, h0=np.ones((1, 2), np.float32))
+    assert torch.equal(state, torch.get_rng_state())  # the global RNG is untouched

@@ -437,3 +437,44 @@ def test_import_leaves_matplotlib_out():
     # the core imports without matplotlib (layering rule of the package)
     code = "import sys, hiddenlens._memory; assert 'matplotlib' not in sys.modules"
     subprocess.run([sys.executable, "-c", code], check=True)
+
+
+class _LinearStep(torch.nn.Module):
+    """s' = a s + x with ``a`` a trainable parameter (requires_grad stays on)."""
+
+    def __init__(self, a, dtype):
+        super().__init__()
+        self.a = torch.nn.Parameter(torch.tensor([a], dtype=dtype))
+
+    def forward(self, s, x):
+        return self.a * s + x
+
+
+@pytest.mark.parametrize("dtype", [torch.float32, torch.float64])
+@pytest.mark.parametrize("mode", ["probe", "data"])
+def test_sensitivity_on_module_step_function_with_trainable_parameters(dtype, mode):
+    step = _LinearStep(0.5, dtype)
+    system = hiddenlens.wrap(step, state_size=1, input_size=1, dtype=dtype)
+    kw = {"n_sequences": 1, "n_steps": 60} if mode == "probe" else {
+        "inputs": np.random.default_rng(0).standard_normal((1, 60, 1))}
+    curve = memory_curve(system, max_lag=8, method="sensitivity", **kw)
+    # analytic: d s_t / d x_{t-k} = a^k
+    np.testing.assert_allclose(curve.scores, 0.5 ** np.arange(9), rtol=1e-5)
+    assert step.a.requires_grad and step.a.grad is None
+
+
+def test_memory_data_mode_refuses_overflowing_states_with_step_and_sample():
+    system = reservoir([[3.0]], [1.0], dtype=torch.float32)
+    x = np.abs(np.random.default_rng(0).standard_normal((2, 200, 1)))
+    for method in ("decoding", "sensitivity", "perturbation"):
+        with pytest.warns(hiddenlens.NonFiniteStateWarning), pytest.raises(
+                ValueError, match=r"states overflowed to inf at step t=\d+ of sample \d.*bounded"):
+            memory_curve(system, inputs=x, max_lag=5, method=method)
+
+
+def test_memory_data_mode_refuses_constant_inputs():
+    # a constant target is "decoded" with R^2 = 1 at every lag: no memory can be claimed
+    system = reservoir([[0.5]], [1.0])
+    for x in (np.zeros((2, 100, 1)), np.ones((2, 100, 1))):
+        with pytest.raises(ValueError, match="the inputs are constant"):
+            memory_curve(system, inputs=x, max_lag=5)

@@ -175,7 +175,7 @@ def test_to_frame():
         ({"n_components": 0}, "n_components must be an integer from 1 to 7", ValueError),
         ({"n_components": 8}, "n_components must be an integer from 1 to 7", ValueError),
         ({"n_components": 2.0}, "n_components must be an integer", ValueError),
-        ({"parts": "layer9"}, "no part named 'layer9'", KeyError),
+        ({"parts": "layer9"}, "no part named 'layer9'", ValueError),  # as elsewhere
         ({"parts": []}, "parts is empty", ValueError),
     ],
 )

@@ -283,3 +283,34 @@ def test_interrupted_step_function_run_leaves_model_and_rng(make, gen, snapshot)
         hl.record(cell, np.zeros((2, 10, 0)), state_size=2, input_size=0)
     snap.assert_unchanged()
     assert cell.training and cell.drop.training
+
+
+def test_float64_model_recorded_in_float32_says_so_in_metadata():
+    model = torch.nn.GRU(2, 3, batch_first=True).double()
+    trace = hl.record(model, np.zeros((1, 4, 2), np.float32))
+    assert trace.metadata["model_dtype"] == "float64" and trace.metadata["dtype"] == "float32"
+    assert "analysed in float32" in trace.metadata["precision_note"]
+    same = hl.record(model, np.zeros((1, 4, 2)), dtype=torch.float64)
+    assert "precision_note" not in same.metadata
+    flow = hl.gradient_flow(model, trace)  # results carry the trace's metadata
+    assert "precision_note" in flow.metadata
+
+
+def test_step_function_output_shape_is_checked_at_every_step():
+    calls = {"n": 0}
+
+    def shrinking(s, x):
+        calls["n"] += 1
+        return s if calls["n"] < 3 else s[:, :1]
+
+    system = hl.wrap(shrinking, state_size=2, input_size=0)
+    with pytest.raises(ValueError, match=r"returned shape \(1, 1\) .*\(at step t=2\)"):
+        hl.record(system, np.zeros((1, 5, 0), np.float32))
+
+
+def test_integer_weights_are_refused_not_cast():
+    model = torch.nn.RNN(2, 3, batch_first=True)
+    model.weight_hh_l0 = torch.nn.Parameter(torch.zeros(3, 3, dtype=torch.int64),
+                                            requires_grad=False)
+    with pytest.raises(TypeError, match="weight_hh_l0 has dtype int64.*floating-point"):
+        hl.wrap(model)

@@ -180,3 +180,35 @@ def test_report_modules_import_without_matplotlib():
 def test_write_report_refuses_other_objects(tmp_path):
     with pytest.raises(TypeError, match="write_report takes"):
         write_report([1, 2], tmp_path / "x.html")
+
+
+def test_report_on_one_step_inputs_does_not_crash(tmp_path):
+    x = np.random.default_rng(1).standard_normal((2, 1, 3)).astype(np.float32)
+    res = run_analyses(_module(torch.nn.GRU, 4, 0), x, options=OPTIONS)
+    path = write_report(res, tmp_path / "t1.html")
+    doc = json.loads(path.with_suffix(".json").read_text())
+    # one step: gradient flow has the single lag back to the initial state
+    assert next(iter(doc["runs"].values()))["arrays"]["gradient_flow"]["lags"] == [1.0]
+
+
+def test_report_draws_run_names_as_plain_text(inputs, tmp_path):
+    runs = {r"$\foo$": _module(torch.nn.RNN, 5, 1), "b_$x^{2$": _module(torch.nn.RNN, 5, 2)}
+    comp = compare_runs(runs, inputs, which=["pca"])
+    page = write_report(comp, tmp_path / "m.html").read_text(encoding="utf-8")
+    assert page.count(IMG) == 4 and r"$\foo$" in page
+
+
+def test_report_note_given_as_one_string_stays_one_paragraph(results, tmp_path):
+    page = write_report(results, tmp_path / "n.html", notes="hello",
+                        json_path=False).read_text(encoding="utf-8")
+    assert "hello" in page and ">h<" not in page
+
+
+def test_report_temporary_file_never_follows_a_planted_symlink(results, tmp_path):
+    import os
+
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep me")
+    os.symlink(victim, tmp_path / ".r.html.partial")  # the name an older version used
+    write_report(results, tmp_path / "r.html", json_path=False)
+    assert victim.read_text() == "keep me" and (tmp_path / "r.html").stat().st_size > 1000

@@ -12,7 +12,6 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens import _trace
 from hiddenlens._trace import Trace, load_trace
 
 pytestmark = pytest.mark.usefixtures("one_thread")
@@ -163,18 +162,20 @@ def test_float64_and_callable_traces_round_trip(tmp_path):
     assert back.metadata["hidden_size"] is None
 
 
-def test_load_uses_allow_pickle_false(trace, tmp_path, monkeypatch):
+def test_load_never_unpickles(trace, tmp_path, monkeypatch):
+    import pickle
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("load_trace unpickled something")
+
+    monkeypatch.setattr(pickle, "load", refuse)
+    monkeypatch.setattr(pickle, "loads", refuse)
     trace.save(tmp_path / "t.npz")
-    calls = []
-    real = np.load
-
-    def spy(*args, **kwargs):
-        calls.append(kwargs)
-        return real(*args, **kwargs)
-
-    monkeypatch.setattr(_trace.np, "load", spy)
     load_trace(tmp_path / "t.npz")
-    assert calls and all(c.get("allow_pickle") is False for c in calls)
+    write_npz(tmp_path / "obj.npz", **dict(good_arrays(trace),
+                                           states=np.array([[[{"a": 1}]]], dtype=object)))
+    with pytest.raises(ValueError, match="states holds Python objects"):
+        load_trace(tmp_path / "obj.npz")
 
 
 def test_metadata_must_be_json(trace, tmp_path):
@@ -214,17 +215,17 @@ def test_bad_and_foreign_files(trace, tmp_path):
     cases["other.npz"] = r"lacks initial, inputs, metadata, states"
     write_npz(tmp_path / "pickled.npz", **dict(good_arrays(trace),
                                                metadata=np.array([{"a": 1}], dtype=object)))
-    cases["pickled.npz"] = r"is not a hiddenlens trace file.*allow_pickle=False"
+    cases["pickled.npz"] = r"is not a hiddenlens trace file.*holds Python objects"
     write_npz(tmp_path / "notjson.npz", **dict(good_arrays(trace), metadata=np.array("{oops")))
     cases["notjson.npz"] = r"is not a hiddenlens trace file.*Expecting"
     write_npz(tmp_path / "foreign.npz", **good_arrays(trace, format="something-else"))
-    cases["foreign.npz"] = r"is not a hiddenlens trace file \(written by Trace\.save\)$"
+    cases["foreign.npz"] = r"\(written by Trace\.save\): its metadata does not name the format"
     write_npz(tmp_path / "newer.npz", **good_arrays(trace, format_version=99))
     cases["newer.npz"] = r"written by a newer hiddenlens \(format 99.*upgrade hiddenlens"
     write_npz(tmp_path / "noversion.npz", **good_arrays(trace, format_version=None))
     cases["noversion.npz"] = "format_version is missing"
     write_npz(tmp_path / "parts.npz", **good_arrays(trace, parts={"x": [0, 99]}))
-    cases["parts.npz"] = r"part 'x' = slice\(0, 99, None\) lies outside the state of size 16"
+    cases["parts.npz"] = r"part 'x' = \[0, 99\] lies outside the state of size 16"
     write_npz(tmp_path / "badparts.npz", **good_arrays(trace, parts=[1, 2]))
     cases["badparts.npz"] = "malformed parts"
     write_npz(tmp_path / "ints.npz",
@@ -240,3 +241,162 @@ def test_bad_and_foreign_files(trace, tmp_path):
             load_trace(tmp_path / name)
     with pytest.raises(FileNotFoundError, match="no trace file at"):
         load_trace(tmp_path / "missing.npz")
+
+
+# ---------------------------------------------------------------------------- hostile files
+def _saved(trace, tmp_path, name="t.npz"):
+    trace.save(tmp_path / name)
+    return (tmp_path / name).read_bytes()
+
+
+def test_load_trace_truncated_file_names_the_defect(trace, tmp_path):
+    data = _saved(trace, tmp_path)
+    for cut in (len(data) // 2, len(data) - 10, 40):
+        (tmp_path / "cut.npz").write_bytes(data[:cut])
+        with pytest.raises(ValueError, match=r"cut\.npz' is not a hiddenlens trace file.*"
+                                             r"(damaged|truncated)"):
+            load_trace(tmp_path / "cut.npz")
+
+
+def test_load_trace_flipped_byte_is_a_bad_crc_value_error(trace, tmp_path):
+    data = bytearray(_saved(trace, tmp_path))
+    # a byte inside the states data (past the first local header and the .npy header)
+    data[300] ^= 0xFF
+    (tmp_path / "flip.npz").write_bytes(bytes(data))
+    with pytest.raises(ValueError, match=r"flip\.npz'.*damaged.*(CRC|Bad)"):
+        load_trace(tmp_path / "flip.npz")
+
+
+@pytest.mark.parametrize("parts, message", [
+    ('{"x": [0, 1e400]}', "is not a pair of integers"),  # JSON reads 1e400 as inf
+    ('{"x": [0.0, 2.9]}', "is not a pair of integers"),  # no silent truncation to [0, 2]
+    ('{"x": [true, 2]}', "is not a pair of integers"),
+    ('{"x": [0, 1, 2]}', "is not a pair of integers"),
+])
+def test_load_trace_refuses_non_integer_parts(trace, tmp_path, parts, message):
+    meta = json.dumps(dict(format="hiddenlens-trace", format_version=1)).replace(
+        "{", '{"parts": ' + parts + ", ", 1)
+    write_npz(tmp_path / "p.npz", **dict(good_arrays(trace), metadata=np.array(meta)))
+    with pytest.raises(ValueError, match=message):
+        load_trace(tmp_path / "p.npz")
+
+
+def test_load_trace_deeply_nested_json_is_a_value_error(trace, tmp_path):
+    deep = "[" * 100_000 + "]" * 100_000
+    meta = '{"format": "hiddenlens-trace", "format_version": 1, "x": ' + deep + "}"
+    write_npz(tmp_path / "deep.npz", **dict(good_arrays(trace), metadata=np.array(meta)))
+    with pytest.raises(ValueError, match="nested too deeply"):
+        load_trace(tmp_path / "deep.npz")
+
+
+def _magic_header(header):
+    import io
+
+    buf = io.BytesIO()
+    np.lib.format.write_array_header_2_0(buf, header)  # writes magic + header
+    return buf.getvalue()
+
+
+def test_load_trace_checks_declared_size_before_allocating(trace, tmp_path):
+    # a tiny file whose header declares 2**45 float64 = 256 TiB of states
+    path = tmp_path / "huge.npz"
+    with zipfile.ZipFile(path, "w") as zf:
+        zf.writestr("states.npy", _magic_header({"descr": "<f8", "fortran_order": False,
+                                                 "shape": (1, 2**20, 2**25)}))
+        for k, a in good_arrays(trace).items():
+            if k != "states":
+                with zf.open(f"{k}.npy", "w") as f:
+                    np.lib.format.write_array(f, a)
+    assert path.stat().st_size < 4096
+    with pytest.raises(ValueError, match=r"states declares shape \(1, 1048576, 33554432\).*"
+                                         r"but its entry holds 0 bytes"):
+        load_trace(path)
+
+
+def test_load_trace_refuses_a_zip_bomb_above_max_bytes(tmp_path):
+    # 64 MiB of zeros deflate to ~64 KiB: the limit applies to the declared (inflated) size
+    B, T, S = 1, 2**13, 2**10
+    big = Trace(np.zeros((B, T, S)), np.zeros((B, S)), np.zeros((B, T, 0)), {}, {})
+    path = tmp_path / "bomb.npz"
+    with open(path, "wb") as fh:
+        np.savez_compressed(fh, states=big.states, initial=big.initial, inputs=big.inputs,
+                            metadata=np.array('{"format": "hiddenlens-trace", '
+                                              '"format_version": 1, "parts": {}}'))
+    assert path.stat().st_size < 2**20
+    with pytest.raises(ValueError, match=r"declare 67\d+ bytes, more than max_bytes=1048576; "
+                                         r"pass load_trace\(path, max_bytes=\.\.\.\)"):
+        load_trace(path, max_bytes=2**20)
+    assert load_trace(path).states.shape == (B, T, S)  # within the default limit
+    with pytest.raises(ValueError, match="max_bytes must be a positive integer"):
+        load_trace(path, max_bytes=0)
+
+
+def test_load_trace_refuses_a_fifo_without_hanging(tmp_path):
+    import os
+
+    if not hasattr(os, "mkfifo"):
+        pytest.skip("no FIFOs on this platform")
+    os.mkfifo(tmp_path / "pipe.npz")
+    with pytest.raises(ValueError, match=r"pipe\.npz'.*not a regular file"):
+        load_trace(tmp_path / "pipe.npz")
+    with pytest.raises(ValueError, match="not a regular file"):
+        load_trace(tmp_path)
+
+
+def test_load_trace_refuses_empty_traces(tmp_path):
+    for shape in [(0, 5, 3), (2, 0, 3)]:
+        meta = '{"format": "hiddenlens-trace", "format_version": 1, "parts": {}}'
+        write_npz(tmp_path / "e.npz", states=np.zeros(shape), initial=np.zeros(shape[::2]),
+                  inputs=np.zeros(shape[:2] + (1,)), metadata=np.array(meta))
+        with pytest.raises(ValueError, match=r"e\.npz'.*states have shape .*non-empty"):
+            load_trace(tmp_path / "e.npz")
+
+
+def test_load_trace_peak_memory_near_the_array_size(tmp_path):
+    import tracemalloc
+
+    S = 2**9
+    big = Trace(np.ones((4, 2**10, S)), np.zeros((4, S)), np.zeros((4, 2**10, 0)), {}, {})
+    big.save(tmp_path / "big.npz")
+    size = big.states.nbytes
+    tracemalloc.start()
+    try:
+        back = load_trace(tmp_path / "big.npz")
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert back.states.nbytes == size
+    assert peak < 1.3 * size  # numpy's own reader of a zip entry holds about twice the array
+
+
+def test_trace_refuses_bad_arrays_and_parts():
+    z = np.zeros
+    with pytest.raises(TypeError, match="trace states must be a floating-point array.*int64"):
+        Trace(z((2, 3, 4), np.int64), z((2, 4)), z((2, 3, 1)), {}, {})
+    with pytest.raises(ValueError, match=r"empty trace: states have shape \(0, 3, 4\)"):
+        Trace(z((0, 3, 4)), z((0, 4)), z((0, 3, 1)), {}, {})
+    for bad in (slice(0, 9), slice(-1, 2), slice(2, 2), slice(0, 4, 2), slice(0.0, 2)):
+        with pytest.raises(ValueError, match="trace part 'x'"):
+            Trace(z((2, 3, 4)), z((2, 4)), z((2, 3, 1)), {"x": bad}, {})
+    with pytest.raises(TypeError, match="parts must be a mapping"):
+        Trace(z((2, 3, 4)), z((2, 4)), z((2, 3, 1)), [("x", slice(0, 1))], {})
+
+
+def test_trace_save_never_follows_a_planted_symlink(trace, tmp_path):
+    import os
+
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep me")
+    # the temporary names an older version used, planted as links to the victim
+    for name in (f"t.npz.partial-{os.getpid()}", ".t.npz.partial"):
+        os.symlink(victim, tmp_path / name)
+    trace.save(tmp_path / "t.npz")
+    assert victim.read_text() == "keep me"
+    assert load_trace(tmp_path / "t.npz").states.shape == trace.states.shape
+    # a link at the destination itself is replaced, its target left alone
+    os.symlink(victim, tmp_path / "link.npz")
+    trace.save(tmp_path / "link.npz")
+    assert victim.read_text() == "keep me" and not (tmp_path / "link.npz").is_symlink()
+    leftovers = [p.name for p in tmp_path.iterdir() if p.name.endswith(".partial")
+                 and not p.is_symlink()]
+    assert leftovers == []
