@@ -52,12 +52,14 @@ def check_figures(figures: Any) -> tuple[str, ...]:
     return out
 
 
-def _budgets(figures: Sequence[str], T: int) -> dict[str, dict[str, Any]]:
+def _budgets(figures: Sequence[str], T: int, S: int) -> dict[str, dict[str, Any]]:
     """Small budgets: one singular value and one exponent, at most 50 lags of gradient flow."""
     opts: dict[str, dict[str, Any]] = {}
     need = {MONITOR_FIGURES[f] for f in figures}
     if "spectra" in need:
         opts["spectra"] = {"k": 1, "radius": "spectral_radius_median" in figures}
+        if S <= 128:  # a batched dense SVD beats the iterative methods for small states
+            opts["spectra"]["method"] = "svd"
     if "lyapunov" in need:
         opts["lyapunov"] = {"k": None if "kaplan_yorke_dimension" in figures else 1}
     if "gradient_flow" in need:
@@ -93,18 +95,19 @@ def probe_figures(model_or_system: Any, inputs: Any, figures: Sequence[str] = DE
         others are named with the reason in ``skipped`` (when given).
     """
     from ._bootstrap import figure_intervals
+    from ._record import as_system
     from ._summary import available_analyses, run_analyses
 
     figures = check_figures(figures)
     x = inputs.detach().cpu().numpy() if hasattr(inputs, "detach") else np.asarray(inputs)
-    T = x.shape[-2]
-    opts = _budgets(figures, T)
+    system = as_system(model_or_system)  # weight copies, taken once per check
+    opts = _budgets(figures, x.shape[-2], system.state_size)
     for a, o in (options or {}).items():
         opts.setdefault(a, {}).update(o)
     have = set(available_analyses())
     which = [a for a in dict.fromkeys(MONITOR_FIGURES[f] for f in figures)
              if a != "task_memory" and a in have]
-    res = run_analyses(model_or_system, x, which=which,
+    res = run_analyses(system, x, which=which,
                        options={a: opts[a] for a in which if a in opts}, seed=seed)
     fi = figure_intervals(res, level=level, n_boot=n_boot, seed=seed)
     rows = []

@@ -11,13 +11,13 @@ import hiddenlens as hl
 from example_models import sorting_line as sl
 
 
-def _train(monitor=None, steps=21):
+def _train(monitor=None, steps=11):
     torch.manual_seed(0)  # the user's own global RNG; the monitor must not consume from it
     model = sl.make_tanh_rnn(gain=1.5, seed=3)
     opt = torch.optim.Adam(model.parameters(), lr=3e-3)
     model.train()
     for k in range(steps):
-        data = sl.make_dataset(8, 60, seed=100 + k)
+        data = sl.make_dataset(8, 40, seed=100 + k)
         x, y = torch.from_numpy(data.inputs), torch.from_numpy(data.targets)
         out = model(x) + 1e-3 * torch.randn(1)  # consumes the global RNG each step
         loss = nn.functional.cross_entropy(out.reshape(-1, out.shape[-1]), y.reshape(-1),
@@ -31,8 +31,8 @@ def _train(monitor=None, steps=21):
 
 
 def test_monitor_records_timeline_and_leaves_training_alone(tmp_path):
-    probe = sl.make_inputs(6, 60, seed=7)
-    mon = hl.Monitor(probe, every=10, n_boot=50)
+    probe = sl.make_inputs(4, 40, seed=7)
+    mon = hl.Monitor(probe, every=5, n_boot=30)
     monitored = _train(mon)
     plain = _train(None)
     # identical weights: the monitor changed neither the model nor the user's RNG stream
@@ -41,12 +41,12 @@ def test_monitor_records_timeline_and_leaves_training_alone(tmp_path):
     assert monitored.training
     t = mon.timeline
     assert list(t.columns) == ["step", "figure", "value", "low", "high"]
-    assert sorted(set(t.step)) == [0, 10, 20]
+    assert sorted(set(t.step)) == [0, 5, 10]
     assert set(t.figure) == set(hl._monitor.DEFAULT_FIGURES)
     lam = t[t.figure == "lyapunov_max"]
     assert np.all(lam.low <= lam.value) and np.all(lam.value <= lam.high)
     # the last check equals a direct analysis of the trained weights (library oracle)
-    direct = hl.lyapunov_spectrum(monitored, probe, k=1, warmup=15, seed=0)
+    direct = hl.lyapunov_spectrum(monitored, probe, k=1, warmup=10, seed=0)
     np.testing.assert_allclose(lam.value.iloc[-1], direct.exponents[0], rtol=1e-5)
     for ext in ("csv", "json"):
         path = tmp_path / f"timeline.{ext}"
