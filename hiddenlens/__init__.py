@@ -65,6 +65,16 @@ _LAZY = {
     "FixedPoints": "_fixed_points",
     "MemoryCurve": "_memory",
     "RunComparison": "_compare",
+    # over training and across runs
+    "Monitor": "_monitor",
+    "timeline": "_timeline",
+    "Timeline": "_timeline",
+    "sweep": "_sweep",
+    "SweepResult": "_sweep",
+    "bootstrap_figures": "_bootstrap",
+    "figure_intervals": "_bootstrap",
+    "within_noise": "_bootstrap",
+    "FigureIntervals": "_bootstrap",
 }
 
 __all__ = ["__version__", *_LAZY]

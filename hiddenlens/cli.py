@@ -71,7 +71,43 @@ def build_parser() -> argparse.ArgumentParser:
                     "init gains and a GRU, all on the sorting-line task) and write the report.",
     )
     _common_options(demo, default_output="hiddenlens-demo", threads=1)
+    _add_timeline_parser(sub)
     return parser
+
+
+# ---------------------------------------------------------------------- timeline subcommand
+def _add_timeline_parser(sub: Any) -> None:
+    tl = sub.add_parser(
+        "timeline", help="key figures of a folder of checkpoints of one run, over training",
+        description="Read every checkpoint in a folder as one run over time (ordered by the "
+                    "step or epoch stored in it or in its file name) and write an HTML page "
+                    "of the key figures against step.")
+    tl.add_argument("--model", required=True, metavar="MODULE:FUNCTION",
+                    help="importable factory that builds the model with no arguments")
+    tl.add_argument("--checkpoints", required=True, metavar="DIR",
+                    help="folder of checkpoints (.pt, .pth, .ckpt, .bin)")
+    tl.add_argument("--inputs", required=True, metavar="FILE[:KEY]",
+                    help="probe inputs (B, T, I) from a .npy or .npz file")
+    tl.add_argument("-o", "--output", default="hiddenlens-timeline", metavar="PATH",
+                    help="folder for timeline.html, or a path ending in .html")
+    tl.add_argument("--seed", type=int, default=0, help="seed of the analyses (default 0)")
+    tl.add_argument("--threads", type=_positive_int, default=None, metavar="N",
+                    help="torch threads (default: torch's default)")
+    tl.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+
+
+def _cmd_timeline(args: argparse.Namespace) -> int:
+    from ._timeline import timeline
+    from ._timeline_report import write_timeline_page
+
+    load_factory(args.model)  # a clear message for a bad --model before any work
+    inputs = load_inputs(args.inputs)
+    result = timeline(args.checkpoints, args.model, inputs, seed=args.seed,
+                      progress=not args.quiet)
+    path = write_timeline_page(result, args.output, source=f"checkpoints in "
+                               f"{args.checkpoints}; inputs from {args.inputs}")
+    print(path)
+    return 0
 
 
 def _common_options(p: argparse.ArgumentParser, *, default_output: str,
@@ -544,6 +580,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         if args.command == "report":
             return _cmd_report(args)
+        if args.command == "timeline":
+            return _cmd_timeline(args)
         return _cmd_demo(args)
     except KeyboardInterrupt:
         print(f"{PROG}: interrupted; no report written", file=sys.stderr)
