@@ -3,18 +3,20 @@
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import step_jacobians
+from ._options import check_options, int_seed, renamed
 from ._record import as_system
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
+from ._threads import honours_threads
 from ._trace import Trace, _unit_names
 from ._validation import as_float_tensor, check_finite, describe
 
@@ -259,6 +261,7 @@ class FixedPoints:
         return ax
 
 
+@honours_threads
 def find_fixed_points(
     model_or_system: Any,
     trace: Trace | None,
@@ -267,14 +270,16 @@ def find_fixed_points(
     n_starts: int = 256,
     starts: Any = None,
     noise: float = 0.0,
-    tol: float | None = None,
+    fixed_tol: float | None = None,
     slow_tol: float = 1e-5,
     max_iter: int = 100,
     distance_tol: float = 1e-3,
     marginal_tol: float = 1e-3,
     dtype: Any = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
+    tol: float | None = None,
     **wrap_options: Any,
 ) -> FixedPoints:
     """Find fixed and slow points of ``s = F(s, x*)`` under a constant input and classify them.
@@ -303,9 +308,10 @@ def find_fixed_points(
         Explicit starting states instead of samples from the trace.
     noise : float, default 0.0
         Standard deviation of Gaussian noise added to the sampled starts (state units).
-    tol : float, optional
-        Points with ``q < tol`` are fixed points; default 1e-12 when computing in float64 and
-        1e-9 in float32.
+    fixed_tol : float, optional
+        Points with ``q < fixed_tol`` are fixed points; default 1e-12 when computing in float64
+        and 1e-9 in float32. (Called ``tol`` in 0.1; ``tol=`` still works for one release with
+        a DeprecationWarning. In hiddenlens ``tol`` names solver convergence tolerances.)
     slow_tol : float, default 1e-5
         End points with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher
         are discarded. q is in squared state units: scale it with the size of the states.
@@ -343,6 +349,9 @@ def find_fixed_points(
     Sussillo & Barak (2013), "Opening the black box: low-dimensional dynamics in
     high-dimensional recurrent neural networks", Neural Computation 25(3), 626-649.
     """
+    check_options("find_fixed_points", locals())
+    tol = renamed("find_fixed_points", "tol", "fixed_tol", tol, fixed_tol)
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
     work, dt = _working_system(system, dtype)
     S, I = system.state_size, system.input_size
@@ -352,7 +361,7 @@ def find_fixed_points(
     _check_options(max_iter=max_iter, slow_tol=slow_tol, distance_tol=distance_tol,
                    marginal_tol=marginal_tol, tol=tol)
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
-    with preserved(system.model if system.kind == "callable" else None):
+    with grad_restored():
         s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
                                     max_iter=max_iter, progress=progress)
         kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)

@@ -18,8 +18,9 @@ import torch
 from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
+from ._options import check_options, int_seed
 from ._results import frozen_mapping, readonly
-from ._threads import single_thread
+from ._threads import honours_threads, single_thread
 from ._validation import as_float_tensor
 
 __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_norms",
@@ -162,6 +163,7 @@ class GradientFlow:
 
 
 # ---------------------------------------------------------------------- computation
+@honours_threads
 def gradient_flow(
     system: Any,
     trace: Any,
@@ -176,7 +178,8 @@ def gradient_flow(
     max_iter: int = 30,
     chunk: int | None = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
 ) -> GradientFlow:
     """Norm of d s_T / d s_t against the lag T - t along a recorded trace.
 
@@ -224,6 +227,8 @@ def gradient_flow(
     (normalised) product, started from the previous lag's singular vectors (an SVD for S <= 128).
     Cost: one S x S matrix product per lag and sample.
     """
+    check_options("gradient_flow", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = system_for_trace(system, trace)
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B_all, T, S = prev.shape
@@ -543,7 +548,7 @@ def loss_gradient_norms(
     from the adjoint recurrence lambda_t = g_t + J_{t+1}^T lambda_{t+1} with the closed-form
     step Jacobians, in float64.
     """
-    from ._guard import preserved
+    from ._guard import grad_restored, private_copy
     from ._record import initial_states
     from ._systems import _find_recurrent, wrap
 
@@ -585,13 +590,13 @@ def loss_gradient_norms(
         calls.append({"args": args, "kwargs": kwargs, "out": output, "leaves": leaves})
         return seq_leaf, hn_leaf
 
-    params = {n: p.detach() for n, p in model.named_parameters()}
-    with preserved(model), torch.enable_grad():
-        handle = module.register_forward_hook(hook, with_kwargs=True)
-        try:
-            out = torch.func.functional_call(model, params, (inputs,))
-        finally:
-            handle.remove()
+    # the model runs as a private frozen copy (eval mode, parameters without grad): the hook
+    # goes on the copy's recurrent submodule, never on the user's
+    work = private_copy(model)
+    work_module, _ = _find_recurrent(work, submodule)
+    with grad_restored(), torch.enable_grad():
+        work_module.register_forward_hook(hook, with_kwargs=True)
+        out = work(inputs)
         pred = out[0] if isinstance(out, (tuple, list)) else out
         if not isinstance(pred, torch.Tensor):
             raise TypeError(f"the model returned {type(pred).__name__}; loss_gradient_norms "

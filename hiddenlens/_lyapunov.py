@@ -8,20 +8,23 @@ re-orthonormalised by QR. See docs/lyapunov.md for the definition and the cautio
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+import warnings
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import step_jacobians, step_jvp
+from ._options import check_options, int_seed
 from ._record import as_system, initial_states
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
-from ._threads import single_thread
-from ._validation import as_dtype, as_sequences
+from ._threads import honours_threads, single_thread
+from ._trace import Trace
+from ._validation import as_dtype, as_sequences, check_trace_fits
 
 __all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension"]
 
@@ -255,9 +258,10 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
 
 
 # ---------------------------------------------------------------------- the analysis
+@honours_threads
 def lyapunov_spectrum(
     system: Any,
-    inputs: Any,
+    trace: Trace | Any,
     k: int | None = None,
     *,
     warmup: int | None = None,
@@ -266,7 +270,8 @@ def lyapunov_spectrum(
     method: str = "auto",
     qr_every: int = 1,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
     **wrap_options: Any,
 ) -> LyapunovSpectrum:
     """The k largest Lyapunov exponents of a recurrent system along given input sequences.
@@ -279,9 +284,12 @@ def lyapunov_spectrum(
     ----------
     system : RecurrentSystem, nn.Module or callable
         Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
-    inputs : Tensor or ndarray of shape (B, T, I) or (T, I)
-        Input sequences driving the system, batch first; each sample gives its own estimate.
-        For an autonomous map (``input_size=0``) pass zeros of shape (B, T, 0).
+    trace : Trace
+        A recording (:func:`hiddenlens.record`) whose trajectory is reused: its ``states``,
+        ``initial`` states and ``inputs`` (B, T, ...); each sample gives its own estimate. For an
+        autonomous map (``input_size=0``) record zeros of shape (B, T, 0). Passing the input
+        sequences themselves (the 0.1 form) still works for one release, with a
+        DeprecationWarning: they are recorded first.
     k : int, optional
         How many of the largest exponents (default: all S).
     warmup : int, optional
@@ -289,7 +297,7 @@ def lyapunov_spectrum(
         They remove the transient of the state and let the random frame align with the most
         expanding directions; without them the estimate carries a bias of order 1/T.
     h0 : Tensor or ndarray, optional
-        Initial states, as in :func:`hiddenlens.record`; zeros by default.
+        Only with the deprecated inputs form: initial states, as in :func:`hiddenlens.record`.
     dtype : {None, "float32", "float64"}
         Precision of states, Jacobians and frame. None: the system's own (float32 for a model
         wrapped here). float64 converts the weight copies of a module-backed system; a step
@@ -345,15 +353,30 @@ def lyapunov_spectrum(
     Kaplan & Yorke (1979), in Functional Differential Equations and Approximation of Fixed
     Points, Springer, vol. 730, 204-227.
     """
+    check_options("lyapunov_spectrum", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     if dtype is not None and not isinstance(system, RecurrentSystem):
         wrap_options.setdefault("dtype", dtype)
     system = as_system(system, **wrap_options)
     if dtype is not None:
         system = _with_dtype(system, as_dtype(dtype))
     dt = system.dtype
-    x = as_sequences(inputs, system.input_size, dt, what=f"the {system.source} system")
-    if system.time_reversed:
-        x = x.flip(1)
+    recorded = isinstance(trace, Trace)
+    if recorded:
+        check_trace_fits(system, trace, "lyapunov_spectrum")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+        # the recorded trajectory is reused as it is (inputs already in the system's order)
+        x = torch.as_tensor(np.array(trace.inputs), dtype=dt)  # (B, T, I)
+    else:
+        warnings.warn(
+            "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
+            "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
+            DeprecationWarning, stacklevel=3)
+        x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
+        if system.time_reversed:
+            x = x.flip(1)
     B, T, _ = x.shape
     S = system.state_size
     k = _check_k(k, S)
@@ -364,16 +387,22 @@ def lyapunov_spectrum(
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
     chosen = _choose_method(system, k) if method == "auto" else method
-    s0 = initial_states(system, h0, B)  # (B, S)
+    if recorded:
+        s0 = torch.as_tensor(np.array(trace.initial), dtype=dt)  # (B, S)
+    else:
+        s0 = initial_states(system, h0, B)  # (B, S)
 
     # flops of one step of the state (up to 4 gates) and of the frame (J Q and its QR)
     state_flops = B * 8 * S * (S + system.input_size)
     frame_flops = B * (2 * S * S * k + 4 * S * k * k)
-    with preserved(system.model if system.kind == "callable" else None), torch.no_grad():
+    with grad_restored(), torch.no_grad():
         if system.kind == "callable":
             _check_step_dtype(system, s0, x[:, 0])
-        with _threads_for(state_flops):
-            states = system.run(x, s0, progress=False)  # (B, T, S)
+        if recorded:
+            states = torch.as_tensor(np.array(trace.states), dtype=dt)  # (B, T, S)
+        else:
+            with _threads_for(state_flops):
+                states = system.run(x, s0, progress=False)  # (B, T, S)
         _check_trajectory(states, system)
         with _threads_for(frame_flops):
             sums, running, running_steps = _qr_sweep(

@@ -8,19 +8,23 @@ effect on the state trajectory, and the norm of the input sensitivity d s_t / d 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+import warnings
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import input_jacobians, step_jacobians
+from ._options import check_options, int_seed
 from ._record import as_system, record
 from ._results import frozen_mapping, readonly
 from ._systems import RecurrentSystem
+from ._threads import honours_threads
 from ._trace import Trace
+from ._validation import check_trace_fits
 
 __all__ = ["MemoryCurve", "memory_curve"]
 
@@ -201,9 +205,10 @@ class MemoryCurve:
 
 
 # ====================================================================== entry point
+@honours_threads
 def memory_curve(
     model_or_system: Any,
-    inputs: Any = None,
+    trace: Trace | None = None,
     *,
     max_lag: int = 50,
     method: str = "decoding",
@@ -222,7 +227,8 @@ def memory_curve(
     normalize: str | None = None,
     seed: int = 0,
     h0: Any = None,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
     **wrap_options: Any,
 ) -> MemoryCurve:
     """How many steps back a recurrent system still holds its inputs, as a curve over lag.
@@ -231,8 +237,11 @@ def memory_curve(
     ----------
     model_or_system : RecurrentSystem, nn.Module or callable
         Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``).
-    inputs : Tensor or ndarray of shape (B, T, I) or (T, I), optional
-        The user's sequences (data mode). Without them the system is driven by probe inputs.
+    trace : Trace, optional
+        A recording of the user's sequences (data mode), used as it is. Without it the system
+        is driven by probe inputs, recorded through one helper. Passing the input sequences
+        themselves (the 0.1 form) still works for one release, with a DeprecationWarning:
+        they are recorded first.
     max_lag : int, default 50
         K, the largest lag on the curve.
     method : {"decoding", "perturbation", "sensitivity"}, default "decoding"
@@ -318,9 +327,22 @@ def memory_curve(
     >>> curve = hiddenlens.memory_curve(gru, max_lag=20)
     >>> curve.capacity, curve.span  # doctest: +SKIP
     """
+    check_options("memory_curve", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
+    inputs: Any = trace
+    if isinstance(trace, Trace):
+        check_trace_fits(system, trace, "memory_curve")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+    elif trace is not None:
+        warnings.warn(
+            "memory_curve(system, inputs) is deprecated; record first and pass the trace: "
+            "memory_curve(system, hiddenlens.record(system, inputs, h0))",
+            DeprecationWarning, stacklevel=3)
     opts = _check_options(system, inputs, locals())
-    with preserved(system.model if system.kind == "callable" else None):
+    with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
         meta = {
@@ -459,7 +481,8 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
         std = np.full(I, opts["scale"]) if not opts["categorical"] else trace.inputs.reshape(
             -1, I).std(axis=0)
         return trace, std
-    trace = record(system, inputs, h0, progress=progress)
+    # a given trace is the data (the one path that records is probe mode, above)
+    trace = inputs if isinstance(inputs, Trace) else record(system, inputs, h0, progress=progress)
     x = trace.inputs.reshape(-1, I).astype(np.float64)  # (B*T, I)
     if opts["categorical"] is None:
         opts["categorical"] = bool(I >= 2 and _is_one_hot(x))

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -17,7 +17,9 @@ from ._jacobians import (
     linearize,
     system_for_trace,
 )
+from ._options import check_options, int_seed
 from ._results import frozen_mapping, readonly
+from ._threads import honours_threads
 from ._validation import as_dtype
 
 __all__ = ["JacobianSpectra", "jacobian_spectra", "top_singular_values"]
@@ -144,6 +146,7 @@ class JacobianSpectra:
                 f"method={self.method!r}, median sigma_1={self.median[0]:.4g})")
 
 
+@honours_threads
 def jacobian_spectra(
     system: Any,
     trace: Any,
@@ -156,7 +159,8 @@ def jacobian_spectra(
     dtype: Any = torch.float64,
     chunk: int | None = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
 ) -> JacobianSpectra:
     """Singular values of the step Jacobians J_t = d s_t / d s_{t-1} along a recorded trace.
 
@@ -205,6 +209,8 @@ def jacobian_spectra(
     (sigma_S) a perturbation of the state; their logarithms over many steps relate to the
     Lyapunov exponents (Oseledets). See ``docs/jacobians.md``.
     """
+    check_options("jacobian_spectra", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = system_for_trace(system, trace)
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B, T, S = prev.shape

@@ -8,7 +8,6 @@ change the user's model; it is a snapshot of the weights at the time of wrapping
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -18,7 +17,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ._guard import preserved
+from ._guard import private_copy
 from ._results import frozen_mapping
 from ._validation import as_dtype
 
@@ -147,10 +146,7 @@ class RecurrentSystem:
     def step(self, state: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
         """Advance flat states (B, S) by one step with inputs (B, I); differentiable, vmap-able."""
         if self._step_fn is not None:
-            if isinstance(self.model, nn.Module) and self.model.training:
-                with _eval_mode(self.model):
-                    return self._step_fn(state, x)
-            return self._step_fn(state, x)
+            return self._step_fn(state, x)  # a module step function is a private eval copy
         new = []
         inp = x
         for layer in self.layers:
@@ -193,18 +189,6 @@ class RecurrentSystem:
 
 
 # ---------------------------------------------------------------------- running
-@contextlib.contextmanager
-def _eval_mode(model: nn.Module):
-    """Dropout off for a step function that is an nn.Module; training flags restored after."""
-    flags = [(m, m.training) for m in model.modules()]
-    try:
-        model.eval()
-        yield
-    finally:
-        for m, flag in flags:
-            m.training = flag
-
-
 def _run_layers(layers, inputs, h0, state_size):
     B, T, _ = inputs.shape
     out = torch.empty(B, T, state_size, dtype=inputs.dtype)  # (B, T, S)
@@ -287,16 +271,13 @@ def _run_callable(system: RecurrentSystem, inputs, h0, progress):
     xs = inputs.transpose(0, 1).contiguous()  # (T, B, I): contiguous per-step inputs
     s = h0
     show = progress if progress is not None else T >= 20_000
-    model = system.model if isinstance(system.model, nn.Module) else None
-    # a step function may be a module in training mode or draw random numbers: run it in eval
-    # mode and give torch's global RNG back as it was
-    with preserved(model):
-        for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
-            s = system._step_fn(s, xs[t])
-            if t == 0:
-                _check_step_output(s, B, system.state_size)
-            s = s.to(system.dtype)  # keep the promised dtype if the function promotes
-            out[:, t] = s
+    # a module step function is already a private copy in eval mode (see _guard.private_copy)
+    for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
+        s = system._step_fn(s, xs[t])
+        if t == 0:
+            _check_step_output(s, B, system.state_size)
+        s = s.to(system.dtype)  # keep the promised dtype if the function promotes
+        out[:, t] = s
     return out
 
 
@@ -520,8 +501,10 @@ def _wrap_callable(fn, dtype, state_size, input_size, parts, name):
                              f"{state_size}")
         parts[pname] = slice(lo, hi)
     source = name or getattr(fn, "__name__", type(fn).__name__)
+    # a module runs as a private frozen copy: the user's module is never run nor flipped
+    step_fn = private_copy(fn) if isinstance(fn, nn.Module) else fn
     return RecurrentSystem(
         state_size=state_size, input_size=input_size, parts=parts, dtype=dtype,
-        kind="callable", source=source, fingerprint=fingerprint(fn), step_fn=fn,
-        model=fn if isinstance(fn, nn.Module) else None,
+        kind="callable", source=source, fingerprint=fingerprint(fn), step_fn=step_fn,
+        model=step_fn if isinstance(fn, nn.Module) else None,
     )
