@@ -12,11 +12,10 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import step_jacobians
-from ._options import check_options, int_seed, renamed
+from ._options import analysis, check_options, int_seed, renamed
 from ._record import as_system
-from ._results import frozen_mapping, readonly
+from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
-from ._threads import honours_threads
 from ._trace import Trace, _unit_names
 from ._validation import as_float_tensor, check_finite, describe
 
@@ -33,7 +32,7 @@ _MARKERS = {
 
 
 @dataclass(frozen=True, eq=False)
-class FixedPoints:
+class FixedPoints(Result):
     """Fixed and slow points of ``s = F(s, x*)`` found by minimising ``q(s)``, with their stability.
 
     Points are ordered by ``q``, smallest first.
@@ -200,7 +199,7 @@ class FixedPoints:
         if pca is None and S > 3 and self.trace is not None:
             pca = self.trace
         if isinstance(pca, Trace):
-            pca = pca_trajectories(pca, n_components=dims)
+            pca = pca_trajectories(pca, k=dims)
         if pca is None:
             if S > 3:
                 raise ValueError(
@@ -261,7 +260,7 @@ class FixedPoints:
         return ax
 
 
-@honours_threads
+@analysis("find_fixed_points")
 def find_fixed_points(
     model_or_system: Any,
     trace: Trace | None,

@@ -18,9 +18,9 @@ import torch
 from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
-from ._options import check_options, int_seed
-from ._results import frozen_mapping, readonly
-from ._threads import honours_threads, single_thread
+from ._options import analysis, check_options, int_seed
+from ._results import Result, frozen_mapping, readonly
+from ._threads import single_thread
 from ._validation import as_float_tensor
 
 __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_norms",
@@ -40,7 +40,7 @@ _EXACT_SIZE = 128
 
 # ---------------------------------------------------------------------- result
 @dataclass(frozen=True, eq=False)
-class GradientFlow:
+class GradientFlow(Result):
     """Norms of d s_T / d s_t over the lag T - t, with a fitted rate and a verdict.
 
     Attributes
@@ -163,7 +163,7 @@ class GradientFlow:
 
 
 # ---------------------------------------------------------------------- computation
-@honours_threads
+@analysis("gradient_flow")
 def gradient_flow(
     system: Any,
     trace: Any,
@@ -434,7 +434,7 @@ def _check_fit_lags(fit_lags: Any, max_lag: int) -> tuple[int, int]:
 
 # ---------------------------------------------------------------------- loss gradients
 @dataclass(frozen=True, eq=False)
-class LossGradientNorms:
+class LossGradientNorms(Result):
     """Norm of the total gradient dL/dh_t of a loss at every step of a model's recurrence.
 
     Attributes

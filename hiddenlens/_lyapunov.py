@@ -18,11 +18,11 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import step_jacobians, step_jvp
-from ._options import check_options, int_seed
+from ._options import analysis, check_options, int_seed
 from ._record import as_system, initial_states
-from ._results import frozen_mapping, readonly
+from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
-from ._threads import honours_threads, single_thread
+from ._threads import single_thread
 from ._trace import Trace
 from ._validation import as_dtype, as_sequences, check_trace_fits
 
@@ -63,7 +63,7 @@ def _choose_method(system: RecurrentSystem, k: int) -> str:
 
 # ---------------------------------------------------------------------- result
 @dataclass(frozen=True, eq=False)
-class LyapunovSpectrum:
+class LyapunovSpectrum(Result):
     """The k largest Lyapunov exponents of a system driven by given inputs.
 
     Exponents are in natural log per step (divide by the step length for a sampled
@@ -129,6 +129,7 @@ class LyapunovSpectrum:
             object.__setattr__(self, name, readonly(getattr(self, name), np.float64))
         object.__setattr__(self, "running_steps", readonly(self.running_steps, np.int64))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        super().__post_init__()
 
     @property
     def k(self) -> int:
@@ -258,10 +259,10 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
 
 
 # ---------------------------------------------------------------------- the analysis
-@honours_threads
+@analysis("lyapunov_spectrum")
 def lyapunov_spectrum(
     system: Any,
-    trace: Trace | Any,
+    trace: Trace | Any = None,
     k: int | None = None,
     *,
     warmup: int | None = None,
@@ -272,6 +273,7 @@ def lyapunov_spectrum(
     seed: int = 0,
     progress: bool | Callable[[int, int, str], Any] | None = None,
     threads: int | None = None,
+    inputs: Any = None,
     **wrap_options: Any,
 ) -> LyapunovSpectrum:
     """The k largest Lyapunov exponents of a recurrent system along given input sequences.
@@ -361,6 +363,13 @@ def lyapunov_spectrum(
     if dtype is not None:
         system = _with_dtype(system, as_dtype(dtype))
     dt = system.dtype
+    if inputs is not None:  # the 0.1 keyword form lyapunov_spectrum(system, inputs=x)
+        if trace is not None:
+            raise TypeError("lyapunov_spectrum got both a trace and inputs; pass only the trace")
+        trace = inputs
+    if trace is None:
+        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
+                        "trace = hiddenlens.record(system, inputs)")
     recorded = isinstance(trace, Trace)
     if recorded:
         check_trace_fits(system, trace, "lyapunov_spectrum")

@@ -18,11 +18,10 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import input_jacobians, step_jacobians
-from ._options import check_options, int_seed
+from ._options import analysis, check_options, int_seed
 from ._record import as_system, record
-from ._results import frozen_mapping, readonly
+from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
-from ._threads import honours_threads
 from ._trace import Trace
 from ._validation import check_trace_fits
 
@@ -38,7 +37,7 @@ _CHUNK_BYTES = 64 * 2**20
 
 # ====================================================================== result
 @dataclass(frozen=True, eq=False)
-class MemoryCurve:
+class MemoryCurve(Result):
     """A memory curve over lags k = 0..max_lag, from :func:`memory_curve`.
 
     Attributes
@@ -126,6 +125,7 @@ class MemoryCurve:
             if value is not None:
                 object.__setattr__(self, name, readonly(value))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        super().__post_init__()
 
     @property
     def max_lag(self) -> int:
@@ -205,7 +205,7 @@ class MemoryCurve:
 
 
 # ====================================================================== entry point
-@honours_threads
+@analysis("memory_curve")
 def memory_curve(
     model_or_system: Any,
     trace: Trace | None = None,
@@ -229,6 +229,7 @@ def memory_curve(
     h0: Any = None,
     progress: bool | Callable[[int, int, str], Any] | None = None,
     threads: int | None = None,
+    inputs: Any = None,
     **wrap_options: Any,
 ) -> MemoryCurve:
     """How many steps back a recurrent system still holds its inputs, as a curve over lag.
@@ -330,7 +331,11 @@ def memory_curve(
     check_options("memory_curve", locals())
     seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
-    inputs: Any = trace
+    if inputs is not None:  # the 0.1 keyword form memory_curve(system, inputs=x)
+        if trace is not None:
+            raise TypeError("memory_curve got both a trace and inputs; pass only the trace")
+        trace = inputs
+    inputs = trace
     if isinstance(trace, Trace):
         check_trace_fits(system, trace, "memory_curve")
         if h0 is not None:

@@ -25,6 +25,9 @@ The vocabulary (the same name means the same thing in every analysis):
 
 from __future__ import annotations
 
+import contextlib
+import functools
+import inspect
 import numbers
 import warnings
 from collections.abc import Callable, Iterator, Mapping
@@ -38,7 +41,7 @@ __all__ = [
     "OptionError", "Interval", "OneOf", "InstanceOf", "NONE", "BOOL", "CALLABLE", "SEED",
     "PROGRESS", "CHUNK", "K", "MAX_LAG", "TOL", "THREADS", "CONSTRAINTS", "check_options",
     "describe_constraints",
-    "bad_values", "torch_generator", "numpy_rng", "int_seed", "progress_bar", "renamed",
+    "bad_values", "analysis", "torch_generator", "numpy_rng", "int_seed", "progress_bar", "renamed",
 ]
 
 
@@ -356,3 +359,50 @@ def progress_bar(progress: Any, *, total: int, label: str, auto: bool,
 
     show = bool(progress) if progress is not None else bool(auto)
     return tqdm(iterable, total=total, desc=label, disable=not show, leave=False, **tqdm_options)
+
+
+# ---------------------------------------------------------------------- the analysis boundary
+def analysis(name: str) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """Mark ``fn(system, trace, *, options) -> Result`` as the analysis ``name``.
+
+    The wrapper runs ``fn`` with the calling thread's torch thread count set to its
+    ``threads`` option (per thread, given back after; see :mod:`hiddenlens._threads`) and
+    fills the result's common metadata (:func:`hiddenlens._results.stamp`) from the system, the
+    trace and the options used. Option values are checked by ``check_options`` inside ``fn``.
+    """
+    from ._results import stamp
+    from ._threads import num_threads
+
+    def decorate(fn: Callable[..., Any]) -> Callable[..., Any]:
+        signature = inspect.signature(fn)
+        params = list(signature.parameters.values())
+        data = [p.name for p in params[:2]]
+        skip = {p.name for p in params if p.kind in (p.VAR_POSITIONAL, p.VAR_KEYWORD)}
+
+        @functools.wraps(fn)
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            threads = kwargs.get("threads")
+            usable = isinstance(threads, int) and not isinstance(threads, bool) and threads >= 1
+            with num_threads(threads) if usable else contextlib.nullcontext():
+                result = fn(*args, **kwargs)
+            try:
+                bound = signature.bind(*args, **kwargs)
+            except TypeError:  # pragma: no cover - fn accepted the call, so binding does too
+                return result
+            bound.apply_defaults()
+            given = bound.arguments
+            system, trace = (given.get(n) for n in (data + [None, None])[:2])
+            from ._trace import Trace
+
+            if isinstance(system, Trace):  # pca_trajectories(trace)
+                system, trace = None, system
+            options = {k: v for k, v in given.items() if k not in data and k not in skip}
+            for var in skip:
+                extra = given.get(var)
+                if isinstance(extra, Mapping):
+                    options.update(extra)
+            return stamp(result, name, system, trace, options)
+
+        return wrapper
+
+    return decorate

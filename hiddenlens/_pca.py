@@ -10,10 +10,9 @@ from typing import Any
 import numpy as np
 import torch
 
-from ._options import check_options, int_seed, renamed
-from ._results import frozen_mapping, readonly
+from ._options import analysis, check_options, int_seed, renamed
+from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
-from ._threads import honours_threads
 from ._trace import Trace
 from ._validation import check_trace_fits
 
@@ -21,7 +20,7 @@ __all__ = ["PCATrajectories", "pca_trajectories"]
 
 
 @dataclass(frozen=True, eq=False)
-class PCATrajectories:
+class PCATrajectories(Result):
     """Hidden-state trajectories projected onto their principal components.
 
     Attributes
@@ -230,7 +229,7 @@ class PCATrajectories:
                 f"n_components_90={self.n_components_90})")
 
 
-@honours_threads
+@analysis("pca_trajectories")
 def pca_trajectories(
     system: Any,
     trace: Trace | None = None,

@@ -17,9 +17,8 @@ from ._jacobians import (
     linearize,
     system_for_trace,
 )
-from ._options import check_options, int_seed
-from ._results import frozen_mapping, readonly
-from ._threads import honours_threads
+from ._options import analysis, check_options, int_seed
+from ._results import Result, frozen_mapping, readonly
 from ._validation import as_dtype
 
 __all__ = ["JacobianSpectra", "jacobian_spectra", "top_singular_values"]
@@ -34,7 +33,7 @@ _KRYLOV_MIN_STATE = 4096
 
 
 @dataclass(frozen=True, eq=False)
-class JacobianSpectra:
+class JacobianSpectra(Result):
     """Top singular values (and spectral radius) of every step Jacobian J_t = d s_t / d s_{t-1}.
 
     Attributes
@@ -146,7 +145,7 @@ class JacobianSpectra:
                 f"method={self.method!r}, median sigma_1={self.median[0]:.4g})")
 
 
-@honours_threads
+@analysis("jacobian_spectra")
 def jacobian_spectra(
     system: Any,
     trace: Any,

@@ -211,7 +211,7 @@ def _invoke(name: str, fn: Callable[..., Any], system: RecurrentSystem, trace: T
     if name == "pca":
         return fn(trace, **opts)
     if name == "lyapunov":
-        return fn(system, inputs, **opts)
+        return fn(system, trace, **opts)
     if name == "memory":
         # probe mode unless the caller asks for the data: i.i.d. probes keep the inputs' own
         # autocorrelation out of the curve

@@ -18,17 +18,14 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
-import functools
-import inspect
 import threading
-from collections.abc import Callable, Iterator
-from typing import Any, TypeVar
+from collections.abc import Iterator
+from typing import Any
 
 import torch
 
-__all__ = ["single_thread", "num_threads", "per_thread_available", "honours_threads"]
+__all__ = ["single_thread", "num_threads", "per_thread_available"]
 
-F = TypeVar("F", bound=Callable[..., Any])
 _LOCK = threading.Lock()
 _OMP: Any = None
 _SEARCHED = False
@@ -98,18 +95,3 @@ def single_thread(when: bool = True) -> contextlib.AbstractContextManager[None]:
     """Use one torch thread in the calling thread inside the block when ``when`` is true."""
     return num_threads(1 if when else None)
 
-
-def honours_threads(fn: F) -> F:
-    """Run ``fn`` inside ``num_threads(threads)`` where ``threads`` is its keyword option."""
-    signature = inspect.signature(fn)
-
-    @functools.wraps(fn)
-    def wrapper(*args: Any, **kwargs: Any) -> Any:
-        threads = kwargs.get("threads", signature.parameters["threads"].default)
-        if threads is None or isinstance(threads, bool) or not isinstance(threads, int) \
-                or threads < 1:
-            return fn(*args, **kwargs)  # None, or a bad value for the option check to name
-        with num_threads(threads):
-            return fn(*args, **kwargs)
-
-    return wrapper  # type: ignore[return-value]

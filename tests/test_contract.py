@@ -23,10 +23,10 @@ CASES = [
           lambda s, tr, x: hl.jacobian_spectra(s, tr, k=0)),
     _case("gradient_flow", lambda s, tr, x: hl.gradient_flow(s, tr),
           lambda s, tr, x: hl.gradient_flow(s, tr, max_lag=-1)),
-    _case("lyapunov", lambda s, tr, x: hl.lyapunov_spectrum(s, x, k=3, warmup=5),
-          lambda s, tr, x: hl.lyapunov_spectrum(s, x, k=0)),
-    _case("pca", lambda s, tr, x: hl.pca_trajectories(tr, n_components=2),
-          lambda s, tr, x: hl.pca_trajectories(tr, n_components=0)),
+    _case("lyapunov", lambda s, tr, x: hl.lyapunov_spectrum(s, tr, k=3, warmup=5),
+          lambda s, tr, x: hl.lyapunov_spectrum(s, tr, k=0)),
+    _case("pca", lambda s, tr, x: hl.pca_trajectories(s, tr, k=2),
+          lambda s, tr, x: hl.pca_trajectories(s, tr, k=0)),
     _case("fixed_points", lambda s, tr, x: hl.find_fixed_points(s, tr, n_starts=8),
           lambda s, tr, x: hl.find_fixed_points(s, tr, n_starts=0)),
     _case("memory", lambda s, tr, x: hl.memory_curve(s, max_lag=4, n_sequences=4, n_steps=120),
@@ -56,7 +56,7 @@ def _run(call, model, x, dtype):
 
 
 @pytest.mark.parametrize("call, bad", CASES)
-def test_contract(call, bad, setup, snapshot, one_thread):
+def test_contract(call, bad, setup, snapshot):
     model, x = setup
     snap = snapshot(model)
     x_before = x.clone()
