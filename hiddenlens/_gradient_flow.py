@@ -98,7 +98,6 @@ class GradientFlow(Result):
     end: int
     samples: np.ndarray
     parts: tuple[str, ...] | None
-    metadata: Mapping[str, Any]
 
     def plot(self, ax: Any = None, *, sample: int | None = None, norm: str = "spectral",
              **kw: Any):
@@ -466,7 +465,6 @@ class LossGradientNorms(Result):
     initial_norms: np.ndarray
     loss: float
     loss_steps: np.ndarray | None
-    metadata: Mapping[str, Any]
 
     def plot(self, ax: Any = None, *, sample: int | None = None, **kw: Any):
         """||dL/ds_t|| over the steps t on a log axis (median over samples, or one sample);

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -122,7 +122,6 @@ class LyapunovSpectrum(Result):
     method: str
     qr_every: int
     dtype: str
-    metadata: Mapping[str, Any]
 
     def __post_init__(self) -> None:
         for name in ("exponents", "per_sample", "std", "running"):

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -116,7 +116,6 @@ class MemoryCurve(Result):
     feature_scores: np.ndarray | None = None
     alphas: np.ndarray | None = None
     categorical: bool = False
-    metadata: Mapping[str, Any] | None = None
 
     def __post_init__(self) -> None:
         for name in ("lags", "scores", "spread", "samples", "baseline", "baseline_spread",

@@ -342,9 +342,9 @@ def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: 
     else:
         given, positional = trace, tuple(legacy)
         if given is None:
-            raise TypeError("pca_trajectories needs a trace: pca_trajectories(system, trace) or "
-                            "pca_trajectories(trace), with trace = hiddenlens.record(model, "
-                            "inputs)")
+            raise TypeError(f"the trace must be a hiddenlens Trace, got {type(system).__name__}; "
+                            "call pca_trajectories(system, trace) or pca_trajectories(trace) "
+                            "with trace = hiddenlens.record(model, inputs)")
         if not isinstance(given, Trace):
             from ._record import record
 
@@ -394,8 +394,9 @@ def _check_data(X: np.ndarray, n_components: Any) -> None:
         )
     if isinstance(n_components, bool) or not isinstance(n_components, (int, np.integer)) \
             or not 1 <= n_components <= min(N, D):
-        raise ValueError(f"n_components must be an integer from 1 to {min(N, D)} (the number of "
-                         f"selected units or states), got {n_components!r}")
+        raise ValueError(f"k (the number of components) must be an integer from 1 to "
+                         f"{min(N, D)} (the number of selected units or states), got "
+                         f"{n_components!r}")
 
 
 def _covariance_spectrum(X: np.ndarray) -> np.ndarray:
@@ -426,7 +427,7 @@ def _check_dims(dims: Any, k: int) -> int:
         raise ValueError(f"dims must be 2 or 3, got {dims!r}")
     if k < dims:
         raise ValueError(f"a {dims}-D plot needs at least {dims} components but only {k} were "
-                         f"kept; refit with n_components={dims}")
+                         f"kept; refit with k={dims}")
     return int(dims)
 
 

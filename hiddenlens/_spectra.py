@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -77,7 +77,6 @@ class JacobianSpectra(Result):
     method: str
     state_size: int
     tol: float
-    metadata: Mapping[str, Any]
 
     @property
     def k(self) -> int:

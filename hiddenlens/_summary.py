@@ -171,7 +171,7 @@ def _defaults(name: str, system: RecurrentSystem, trace: Trace, seed: int) -> di
     if name == "lyapunov":
         return {"k": k, "warmup": min(100, T // 4), "seed": seed, **quiet}
     if name == "pca":
-        return {"n_components": min(3, S, B * T)}
+        return {"k": min(3, S, B * T)}
     if name == "fixed_points":
         return {"n_starts": min(64, B * T), "seed": seed, **quiet}
     if name == "memory":
@@ -192,7 +192,8 @@ def _call_options(name: str, fn: Callable[..., Any], defaults: Mapping[str, Any]
     names, var_kw = _accepted(fn)
     # a default budget the function does not know is dropped; a user's option is not
     opts = {k: v for k, v in defaults.items() if var_kw or k in names}
-    if name == "memory" and (user.get("inputs") is not None or user.get("mode") == "data"):
+    if name == "memory" and (user.get("trace", user.get("inputs")) is not None
+                             or user.get("mode") == "data"):
         # the user's sequences set the size of a data-mode curve: no probe budget
         opts.pop("n_steps", None)
         opts.pop("n_sequences", None)

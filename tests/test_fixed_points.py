@@ -349,7 +349,7 @@ def test_plot_on_pca_axes_with_unstable_directions(agg, saddle_case):
     assert ax.get_xlabel().startswith("PC1")
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
     assert any(t.startswith("saddle") for t in labels) and "unstable direction" in labels
-    pca = hl.pca_trajectories(tr, n_components=2)
+    pca = hl.pca_trajectories(tr, k=2)
     fig, axes = agg.subplots(1, 2)
     assert fp.plot(axes[0], pca=pca) is axes[0]
     assert fp.plot(axes[1]) is axes[1]  # S = 2: raw state axes
