@@ -291,7 +291,7 @@ def renamed(analysis: str, old: str, new: str, old_value: Any, new_value: Any,
 def int_seed(seed: int | np.random.Generator) -> int:
     """An int seed: the seed itself, or one draw from the user's Generator (which advances it)."""
     if isinstance(seed, np.random.Generator):
-        return int(seed.integers(0, 2**63 - 1))
+        return int(seed.integers(0, 2**32))  # within every consumer's range (scikit-learn: 32 bits)
     return int(seed)
 
 

@@ -14,8 +14,6 @@ from torch import nn
 import hiddenlens as hl
 from hiddenlens._record import as_system, initial_states
 
-pytestmark = pytest.mark.usefixtures("one_thread")
-
 
 def lstm(make, gen, L=2):
     return make(nn.LSTM, 3, 4, L, batch_first=True, gen=gen)

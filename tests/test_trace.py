@@ -15,8 +15,6 @@ import hiddenlens as hl
 from hiddenlens import _trace
 from hiddenlens._trace import Trace, load_trace
 
-pytestmark = pytest.mark.usefixtures("one_thread")
-
 
 @pytest.fixture
 def system(make, gen):
