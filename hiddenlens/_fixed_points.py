@@ -12,7 +12,7 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import step_jacobians
-from ._options import analysis, check_options, int_seed, renamed
+from ._options import analysis, check_options, int_seed, progress_bar, renamed
 from ._record import as_system
 from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
@@ -522,7 +522,6 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
     typically a slow valley towards a degenerate (marginal) fixed point, where Newton's method
     is only linearly convergent, such as a continuum of nearly fixed states.
     """
-    from tqdm.auto import tqdm
 
     s = s0.clone()  # (n, S)
     r = _residual(system, s, X).to(torch.float64)
@@ -541,7 +540,8 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
     nu = torch.full_like(mu, 2.0)
     stall = torch.zeros(active.numel(), dtype=torch.long)
     show = {"disable": progress is False, "delay": 0.0 if progress else 2.0}
-    with tqdm(total=max_iter, desc="fixed points", leave=False, **show) as bar:
+    with progress_bar(progress, total=max_iter, label="fixed points", auto=True,
+                      delay=show["delay"]) as bar:
         for _ in range(max_iter):
             delta, info = _damped_solve(H, g, mu)  # (a, S)
             trial = s[active] + delta.to(s.dtype)

@@ -18,7 +18,7 @@ import torch
 from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
-from ._options import analysis, check_options, int_seed
+from ._options import analysis, check_options, int_seed, progress_bar
 from ._results import Result, frozen_mapping, readonly
 from ._threads import single_thread
 from ._validation import as_float_tensor
@@ -255,10 +255,9 @@ def gradient_flow(
     ncols = S if rows is None else rows.numel()
     v = torch.linalg.qr(torch.randn(B, ncols, min(ncols, 4), generator=gen,
                                     dtype=torch.float64))[0]  # (B, C, p) start block
-    from tqdm.auto import tqdm
 
     show = progress if progress is not None else max_lag * B * S**3 > 5e10
-    bar = tqdm(total=max_lag, disable=not show, desc="gradient flow", leave=False)
+    bar = progress_bar(progress, total=max_lag, label="gradient flow", auto=bool(show))
     L = 0
     with torch.no_grad(), bar, _threads_for(2.0 * B * S**3):
         while L < max_lag:

@@ -18,7 +18,7 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import step_jacobians, step_jvp
-from ._options import analysis, check_options, int_seed
+from ._options import analysis, check_options, int_seed, progress_bar
 from ._record import as_system, initial_states
 from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
@@ -440,7 +440,6 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     running : ndarray of shape (P, k)
     running_steps : ndarray of shape (P,)
     """
-    from tqdm.auto import tqdm
 
     B, T, S = states.shape
     dt = states.dtype
@@ -472,7 +471,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     # is cheaper than applying S x S reflectors.
     householder = method == "jacobian" and k == S
     reflectors = None  # (A, tau) while the frame is held as Householder reflectors
-    with tqdm(total=T, disable=not show, desc="Lyapunov QR", unit="step", leave=False) as bar:
+    with progress_bar(progress, total=T, label="Lyapunov QR", auto=bool(show), unit="step") as bar:
         for t0 in range(0, T, chunk):
             t1 = min(T, t0 + chunk)
             C = t1 - t0

@@ -18,7 +18,7 @@ import torch
 
 from ._guard import grad_restored
 from ._jacobians import input_jacobians, step_jacobians
-from ._options import analysis, check_options, int_seed
+from ._options import analysis, check_options, int_seed, progress_bar
 from ._record import as_system, record
 from ._results import Result, frozen_mapping, readonly
 from ._systems import RecurrentSystem
@@ -648,7 +648,6 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     feature_scores : (K + 1, I) R^2 per feature averaged over folds (categorical: NaN)
     chosen : (n_folds, K + 1) chosen penalty (mean over the lag's targets)
     """
-    from tqdm.auto import tqdm
 
     n_folds = len(folds)
     width = target.width
@@ -660,8 +659,8 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     per_block = max(1, int(16e6 // max(1, X.shape[0] * width)))
     work = X.shape[0] * X.shape[1] * (K + 1) * width * len(alphas) * len(folds)
     show = progress if progress is not None else work > 5e10
-    for f, (tr, te) in enumerate(tqdm(folds, disable=not show, desc="decoding folds",
-                                      leave=False)):
+    for f, (tr, te) in enumerate(progress_bar(progress, iterable=folds, total=len(folds),
+                                              label="decoding folds", auto=bool(show))):
         Xtr, Xte = _standardise(X[tr], X[te])
         Xtr -= Xtr.mean(axis=0)  # exact centring after rounding
         lam, V = np.linalg.eigh(Xtr.T @ Xtr)
@@ -833,7 +832,6 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     unit norm with its log scale carried separately, so long products neither overflow nor
     underflow; means over sources are taken with logsumexp. Cost: B * T * (K + 1) * S^2 * I.
     """
-    from tqdm.auto import tqdm
 
     K, I, S = opts["max_lag"], trace.input_size, trace.state_size
     B, T = trace.batch_size, trace.n_steps
@@ -857,8 +855,9 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     chunk = max(1, int(_CHUNK_BYTES // max(1, B * S * (S + I) * 8)))
     show = progress if progress is not None else B * (T - t_a) * S * S * L * I > 2e10
     slots = torch.arange(L)
-    for c0 in tqdm(range(t_a, T, chunk), disable=not show, desc="input sensitivity",
-                   leave=False):
+    for c0 in progress_bar(progress, iterable=range(t_a, T, chunk),
+                           total=len(range(t_a, T, chunk)), label="input sensitivity",
+                           auto=bool(show)):
         c1 = min(T, c0 + chunk)
         p = prev[:, c0:c1].reshape(-1, S)
         xi = x[:, c0:c1].reshape(-1, I)

@@ -321,6 +321,9 @@ class _Callback:
     def close(self) -> None:
         pass
 
+    def set_postfix(self, *args: Any, **kwargs: Any) -> None:
+        pass
+
     def __iter__(self) -> Iterator[Any]:  # pragma: no cover - used via progress_bar(iterable)
         raise TypeError("iterate with progress_bar(..., iterable=...)")
 

@@ -17,7 +17,7 @@ from ._jacobians import (
     linearize,
     system_for_trace,
 )
-from ._options import analysis, check_options, int_seed
+from ._options import analysis, check_options, int_seed, progress_bar
 from ._results import Result, frozen_mapping, readonly
 from ._validation import as_dtype
 
@@ -239,10 +239,10 @@ def jacobian_spectra(
     rad_out = np.empty((B, T), dtype=np.float64) if want_radius else None
     starts = range(0, T, chunk)
     show = progress if progress is not None else (len(starts) > 10 and B * T * S * S > 1 << 28)
-    from tqdm.auto import tqdm
 
     with torch.no_grad():
-        for t0 in tqdm(starts, disable=not show, desc="spectra", leave=False):
+        for t0 in progress_bar(progress, iterable=starts, total=len(starts),
+                              label="spectra", auto=bool(show)):
             t1 = min(T, t0 + chunk)
             n = t1 - t0
             lin = linearize(system, prev[:, t0:t1].reshape(B * n, S),
