@@ -213,10 +213,10 @@ CONSTRAINTS: dict[str, dict[str, tuple[Constraint, ...]]] = {
         "seed": SEED, "k": (Interval("int", 1, None),), "threads": THREADS,
     },
     "find_fixed_points": {
-        **_COMMON, "threads": THREADS, "n_starts": POSITIVE_INT, "max_iter": POSITIVE_INT,
-        "noise": NON_NEGATIVE, "fixed_tol": (NONE, *POSITIVE), "tol": (NONE, *POSITIVE),
-        "slow_tol": POSITIVE,
-        "distance_tol": POSITIVE, "marginal_tol": POSITIVE,
+        **_COMMON, "threads": THREADS, "n_starts": POSITIVE_INT,
+        "max_iter": (Interval("int", 0, None),), "noise": NON_NEGATIVE,
+        "fixed_tol": (NONE, *NON_NEGATIVE), "tol": (NONE, *NON_NEGATIVE),
+        "slow_tol": NON_NEGATIVE, "distance_tol": NON_NEGATIVE, "marginal_tol": NON_NEGATIVE,
     },
     "memory_curve": {
         **_COMMON, "max_lag": (Interval("int", 0, None),), "threads": THREADS,
