@@ -80,6 +80,9 @@ def num_threads(n: int | None) -> Iterator[None]:
     if lib is None:
         yield
         return
+    # torch sets a thread's count lazily on its first parallel call in that thread (from the
+    # process-wide value of torch.set_num_threads); trigger that first so it cannot undo ours
+    torch.get_num_threads()
     before = int(lib.omp_get_max_threads())
     if before == n:
         yield
