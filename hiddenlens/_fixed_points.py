@@ -4,17 +4,18 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import step_jacobians
+from ._options import analysis, check_options, int_seed, progress_bar, renamed
 from ._record import as_system
-from ._results import frozen_mapping, readonly
+from ._results import Result, frozen_mapping, readonly
 from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._threads import single_thread
@@ -37,7 +38,7 @@ _ONE_THREAD_UP_TO = 512
 
 
 @dataclass(frozen=True, eq=False)
-class FixedPoints:
+class FixedPoints(Result):
     """Fixed and slow points of ``s = F(s, x*)`` found by minimising ``q(s)``, with their stability.
 
     Points are ordered by ``q``, smallest first.
@@ -204,7 +205,7 @@ class FixedPoints:
         if pca is None and S > 3 and self.trace is not None:
             pca = self.trace
         if isinstance(pca, Trace):
-            pca = pca_trajectories(pca, n_components=dims)
+            pca = pca_trajectories(pca, k=dims)
         if pca is None:
             if S > 3:
                 raise ValueError(
@@ -265,6 +266,7 @@ class FixedPoints:
         return ax
 
 
+@analysis("find_fixed_points")
 def find_fixed_points(
     model_or_system: Any,
     trace: Trace | None,
@@ -273,14 +275,16 @@ def find_fixed_points(
     n_starts: int | None = None,
     starts: Any = None,
     noise: float = 0.0,
-    tol: float | None = None,
+    fixed_tol: float | None = None,
     slow_tol: float = 1e-5,
     max_iter: int | None = None,
     distance_tol: float = 1e-3,
     marginal_tol: float = 1e-3,
     dtype: Any = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
+    tol: float | None = None,
     **wrap_options: Any,
 ) -> FixedPoints:
     """Find fixed and slow points of ``s = F(s, x*)`` under a constant input and classify them.
@@ -310,9 +314,10 @@ def find_fixed_points(
         Explicit starting states instead of samples from the trace.
     noise : float, default 0.0
         Standard deviation of Gaussian noise added to the sampled starts (state units).
-    tol : float, optional
-        Points with ``q < tol`` are fixed points; default 1e-12 when computing in float64 and
-        1e-9 in float32.
+    fixed_tol : float, optional
+        Points with ``q < fixed_tol`` are fixed points; default 1e-12 when computing in float64
+        and 1e-9 in float32. (Called ``tol`` in 0.1; ``tol=`` still works for one release with
+        a DeprecationWarning. In hiddenlens ``tol`` names solver convergence tolerances.)
     slow_tol : float, default 1e-5
         End points with ``tol <= q <= slow_tol`` are kept as slow points; starts that end higher
         are discarded. q is in squared state units: scale it with the size of the states.
@@ -351,6 +356,9 @@ def find_fixed_points(
     Sussillo & Barak (2013), "Opening the black box: low-dimensional dynamics in
     high-dimensional recurrent neural networks", Neural Computation 25(3), 626-649.
     """
+    check_options("find_fixed_points", locals())
+    tol = renamed("find_fixed_points", "tol", "fixed_tol", tol, fixed_tol)
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
     work, dt = _working_system(system, dtype)
     S, I = system.state_size, system.input_size
@@ -366,8 +374,7 @@ def find_fixed_points(
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
     # batched S x S solves of small states: one torch thread (two were 5.4x slower on a
     # shared 2-core machine at S = 128; benchmarks/bench_fixed_points.py)
-    with preserved(system.model if system.kind == "callable" else None), step_errors(system), \
-            single_thread(S <= _ONE_THREAD_UP_TO):
+    with grad_restored(), step_errors(system), single_thread(S <= _ONE_THREAD_UP_TO):
         s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
                                     max_iter=max_iter, progress=progress)
         kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)
@@ -536,7 +543,6 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
     typically a slow valley towards a degenerate (marginal) fixed point, where Newton's method
     is only linearly convergent, such as a continuum of nearly fixed states.
     """
-    from tqdm.auto import tqdm
 
     s = s0.clone()  # (n, S)
     r = _residual(system, s, X).to(torch.float64)
@@ -555,7 +561,8 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
     nu = torch.full_like(mu, 2.0)
     stall = torch.zeros(active.numel(), dtype=torch.long)
     show = {"disable": progress is False, "delay": 0.0 if progress else 2.0}
-    with tqdm(total=max_iter, desc="fixed points", leave=False, **show) as bar:
+    with progress_bar(progress, total=max_iter, label="fixed points", auto=True,
+                      delay=show["delay"]) as bar:
         for _ in range(max_iter):
             delta, info = _damped_solve(H, g, mu)  # (a, S)
             trial = s[active] + delta.to(s.dtype)

@@ -18,7 +18,8 @@ import torch
 from torch import nn
 
 from ._jacobians import _trace_tensors, check_chunk, linearize, system_for_trace
-from ._results import frozen_mapping, readonly
+from ._options import analysis, check_options, int_seed, progress_bar
+from ._results import Result, frozen_mapping, readonly
 from ._stepcheck import step_errors
 from ._threads import single_thread
 from ._validation import as_float_tensor
@@ -40,7 +41,7 @@ _EXACT_SIZE = 128
 
 # ---------------------------------------------------------------------- result
 @dataclass(frozen=True, eq=False)
-class GradientFlow:
+class GradientFlow(Result):
     """Norms of d s_T / d s_t over the lag T - t, with a fitted rate and a verdict.
 
     Attributes
@@ -98,7 +99,6 @@ class GradientFlow:
     end: int
     samples: np.ndarray
     parts: tuple[str, ...] | None
-    metadata: Mapping[str, Any]
 
     def plot(self, ax: Any = None, *, sample: int | None = None, norm: str = "spectral",
              **kw: Any):
@@ -165,6 +165,7 @@ class GradientFlow:
 
 
 # ---------------------------------------------------------------------- computation
+@analysis("gradient_flow")
 def gradient_flow(
     system: Any,
     trace: Any,
@@ -179,7 +180,8 @@ def gradient_flow(
     max_iter: int = 30,
     chunk: int | None = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
 ) -> GradientFlow:
     """Norm of d s_T / d s_t against the lag T - t along a recorded trace.
 
@@ -227,6 +229,8 @@ def gradient_flow(
     (normalised) product, started from the previous lag's singular vectors (an SVD for S <= 128).
     Cost: one S x S matrix product per lag and sample.
     """
+    check_options("gradient_flow", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = system_for_trace(system, trace)
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B_all, T, S = prev.shape
@@ -264,10 +268,9 @@ def gradient_flow(
     ncols = S if rows is None else rows.numel()
     v = torch.linalg.qr(torch.randn(B, ncols, min(ncols, 4), generator=gen,
                                     dtype=torch.float64))[0]  # (B, C, p) start block
-    from tqdm.auto import tqdm
 
     show = progress if progress is not None else max_lag * B * S**3 > 5e10
-    bar = tqdm(total=max_lag, disable=not show, desc="gradient flow", leave=False)
+    bar = progress_bar(progress, total=max_lag, label="gradient flow", auto=bool(show))
     L = 0
     with torch.no_grad(), bar, _threads_for(2.0 * B * S**3), step_errors(system):
         while L < max_lag:
@@ -526,7 +529,7 @@ def _check_fit_lags(fit_lags: Any, max_lag: int) -> tuple[int, int]:
 
 # ---------------------------------------------------------------------- loss gradients
 @dataclass(frozen=True, eq=False)
-class LossGradientNorms:
+class LossGradientNorms(Result):
     """Norm of the total gradient dL/dh_t of a loss at every step of a model's recurrence.
 
     Attributes
@@ -558,7 +561,6 @@ class LossGradientNorms:
     initial_norms: np.ndarray
     loss: float
     loss_steps: np.ndarray | None
-    metadata: Mapping[str, Any]
 
     def plot(self, ax: Any = None, *, sample: int | None = None, **kw: Any):
         """||dL/ds_t|| over the steps t on a log axis (median over samples, or one sample);
@@ -644,7 +646,7 @@ def loss_gradient_norms(
     from the adjoint recurrence lambda_t = g_t + J_{t+1}^T lambda_{t+1} with the closed-form
     step Jacobians, in float64.
     """
-    from ._guard import preserved
+    from ._guard import grad_restored, private_copy
     from ._record import initial_states
     from ._systems import RecurrentSystem, _find_recurrent, wrap
 
@@ -702,13 +704,13 @@ def loss_gradient_norms(
         calls.append({"args": args, "kwargs": kwargs, "out": output, "leaves": leaves})
         return seq_leaf, hn_leaf
 
-    params = {n: p.detach() for n, p in model.named_parameters()}
-    with preserved(model), torch.enable_grad():
-        handle = module.register_forward_hook(hook, with_kwargs=True)
-        try:
-            out = torch.func.functional_call(model, params, (inputs,))
-        finally:
-            handle.remove()
+    # the model runs as a private frozen copy (eval mode, parameters without grad): the hook
+    # goes on the copy's recurrent submodule, never on the user's
+    work = private_copy(model)
+    work_module, _ = _find_recurrent(work, submodule)
+    with grad_restored(), torch.enable_grad():
+        work_module.register_forward_hook(hook, with_kwargs=True)
+        out = work(inputs)
         pred = out[0] if isinstance(out, (tuple, list)) else out
         if not isinstance(pred, torch.Tensor):
             raise TypeError(f"the model returned {type(pred).__name__}; loss_gradient_norms "
@@ -776,9 +778,9 @@ def _system_loss_gradients(system, inputs, loss_fn, targets, steps) -> LossGradi
     work = _float64_system(system)
     B, T, _ = x.shape
     s0 = work.zeros(B).to(x.dtype).requires_grad_(True)
-    from ._guard import preserved
+    from ._guard import grad_restored
 
-    with preserved(work.model if work.kind == "callable" else None), torch.enable_grad():
+    with grad_restored(), torch.enable_grad():
         seq, s = [], s0
         for t in range(T):
             s = work.step(s, x[:, t])

@@ -1,94 +1,78 @@
-"""Leave a user's model exactly as it was, even when an analysis fails or is interrupted.
+"""Never touch the user's objects: private frozen copies, and grad mode given back per thread.
 
-Most of hiddenlens never runs the user's module (it works on detached copies of the weights), but
-analyses that must call the module itself wrap the call in :func:`preserved`.
+hiddenlens works on copies. Module-backed systems copy the recurrent weights when wrapped; a step
+function that is an ``nn.Module`` is run as a private copy (:func:`private_copy`): a deep copy
+in eval mode with ``requires_grad`` off, so the user's module, its training flags, parameters,
+``.grad``, buffers and hooks are never read-modified-written, and two analyses running at once
+in different threads never meet on shared state. Random draws come only from local generators
+(``hiddenlens._options.torch_generator``); torch's global RNG is neither used nor saved and
+restored, so a user drawing random numbers in another thread keeps an untouched stream.
+
+Hooks: the copy keeps the hooks registered on the user's module (``copy.deepcopy`` copies the
+hook tables, the hook functions themselves are shared), because they are part of the function the
+module computes. A hook that records into a user list will see the copy's calls; a hook that
+should not run during analysis is best removed before wrapping.
+
+Grad mode is thread-local in torch; analyses change it only through context managers, and
+:func:`grad_restored` gives the calling thread's grad mode back even when a second Ctrl-C lands
+while the first is being handled.
 """
 
 from __future__ import annotations
 
 import contextlib
+import copy
 from collections.abc import Iterator
 
 import torch
 
-__all__ = ["preserved"]
-
-# tensor-level hook tables (``Tensor.register_hook``, ``register_post_accumulate_grad_hook``)
-_TENSOR_HOOKS = ("_backward_hooks", "_post_accumulate_grad_hooks")
+__all__ = ["private_copy", "grad_restored"]
 
 
-def _hook_tables(obj: object, names: tuple[str, ...] | None = None) -> dict[str, dict]:
-    """Copies of the hook dictionaries of a module (every ``*hooks*`` dict) or a tensor."""
-    if names is None:
-        names = tuple(k for k, v in vars(obj).items() if "hook" in k and isinstance(v, dict))
-    out = {}
-    for name in names:
-        table = getattr(obj, name, None)
-        if isinstance(table, dict):
-            out[name] = dict(table)
-    return out
+def private_copy(module: torch.nn.Module) -> torch.nn.Module:
+    """A frozen private copy of ``module``: deep copy, eval mode, ``requires_grad`` off.
 
+    The user's module is only read. ``.grad`` tensors are not carried over (the copy never
+    accumulates gradients into the parameters).
 
-def _restore_tables(obj: object, saved: dict[str, dict], names: tuple[str, ...] | None) -> None:
-    if names is None:
-        names = tuple(k for k, v in vars(obj).items() if "hook" in k and isinstance(v, dict))
-    for name in names:
-        table = getattr(obj, name, None)
-        if isinstance(table, dict):
-            # update the same dict object in place: torch's C++ side may hold a reference to it
-            table.clear()
-            table.update(saved.get(name, {}))
+    Raises
+    ------
+    TypeError
+        When the module cannot be deep-copied (it holds a lock, a file or similar); wrap a plain
+        function that calls a copy you made, e.g. ``wrap(lambda s, x: my_copy(s, x), ...)``.
+    """
+    try:
+        work = copy.deepcopy(module)
+    except Exception as err:  # deepcopy raises TypeError, RuntimeError, pickling errors...
+        raise TypeError(
+            f"hiddenlens runs a step module as a private copy so that yours is never changed, "
+            f"but {type(module).__name__} cannot be copied ({type(err).__name__}: {err}); make "
+            "it copyable with copy.deepcopy, or wrap a plain function of (state, x)"
+        ) from None
+    work.eval()
+    for p in work.parameters():
+        p.requires_grad_(False)
+        p.grad = None
+    return work
 
 
 @contextlib.contextmanager
-def preserved(model: torch.nn.Module | None, *, eval_mode: bool = True) -> Iterator[None]:
-    """Restore training flags, ``requires_grad``, ``.grad``, buffers, hooks and torch's RNG on exit.
+def grad_restored() -> Iterator[None]:
+    """Give the calling thread's grad mode back on exit, however the block ends.
 
-    The restore runs however the block ends: normally, by an exception or by
-    ``KeyboardInterrupt``.
-
-    Parameters
-    ----------
-    model : torch.nn.Module or None
-        The user's module. ``None`` only guards torch's global RNG state.
-    eval_mode : bool, default True
-        Put the module in eval mode (dropout off) for the duration of the block.
-
-    Notes
-    -----
-    ``.grad`` tensors are restored as the same objects with their saved values (a backward pass
-    accumulates into an existing ``.grad`` in place). Buffers (e.g. batch-norm running
-    statistics) get their saved values back. Parameter values are not copied: code inside the
-    block may read and differentiate the parameters but must not assign to them.
+    A ``KeyboardInterrupt`` that arrives while the mode is being restored is held until the
+    mode is back, then raised.
     """
-    rng = torch.get_rng_state()
-    modules = list(model.modules()) if isinstance(model, torch.nn.Module) else []
-    training = [m.training for m in modules]
-    module_hooks = [_hook_tables(m) for m in modules]
-    params = list(model.parameters()) if modules else []
-    requires_grad = [p.requires_grad for p in params]
-    grads = [(p.grad, None if p.grad is None else p.grad.detach().clone()) for p in params]
-    param_hooks = [_hook_tables(p, _TENSOR_HOOKS) for p in params]
-    buffers = list(model.buffers()) if modules else []
-    buffer_values = [b.detach().clone() for b in buffers]
+    before = torch.is_grad_enabled()
     try:
-        if modules and eval_mode:
-            model.eval()
         yield
     finally:
-        for m, flag, saved in zip(modules, training, module_hooks, strict=True):
-            m.training = flag
-            _restore_tables(m, saved, None)
-        with torch.no_grad():
-            state = zip(params, requires_grad, grads, param_hooks, strict=True)
-            for p, flag, (grad, value), saved in state:
-                if p.requires_grad != flag:
-                    p.requires_grad_(flag)
-                if grad is not None and grad.shape == value.shape:
-                    grad.copy_(value)
-                p.grad = grad
-                _restore_tables(p, saved, _TENSOR_HOOKS)
-            for b, value in zip(buffers, buffer_values, strict=True):
-                if b.shape == value.shape:
-                    b.copy_(value)
-        torch.set_rng_state(rng)
+        pending: BaseException | None = None
+        while True:
+            try:
+                torch.set_grad_enabled(before)  # sets the calling thread's mode only
+                break
+            except KeyboardInterrupt as interrupt:  # pragma: no cover - timing dependent
+                pending = interrupt
+        if pending is not None:  # pragma: no cover - timing dependent
+            raise pending

@@ -9,21 +9,23 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Mapping
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import step_jacobians, step_jvp
-from ._record import as_system, initial_states
-from ._results import frozen_mapping, readonly
+from ._options import analysis, check_options, int_seed, progress_bar
+from ._record import as_system, initial_states, record
+from ._results import Result, frozen_mapping, readonly
 from ._stepcheck import state_only, step_errors
 from ._systems import RecurrentSystem
 from ._threads import single_thread
-from ._validation import as_dtype, as_sequences
+from ._trace import Trace
+from ._validation import as_dtype, as_sequences, check_trace_fits
 
 __all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension",
            "StationaryTrajectoryWarning"]
@@ -63,7 +65,7 @@ def _choose_method(system: RecurrentSystem, k: int) -> str:
 
 # ---------------------------------------------------------------------- result
 @dataclass(frozen=True, eq=False)
-class LyapunovSpectrum:
+class LyapunovSpectrum(Result):
     """The k largest Lyapunov exponents of a system driven by given inputs.
 
     Exponents are in natural log per step (divide by the step length for a sampled
@@ -122,13 +124,13 @@ class LyapunovSpectrum:
     method: str
     qr_every: int
     dtype: str
-    metadata: Mapping[str, Any]
 
     def __post_init__(self) -> None:
         for name in ("exponents", "per_sample", "std", "running"):
             object.__setattr__(self, name, readonly(getattr(self, name), np.float64))
         object.__setattr__(self, "running_steps", readonly(self.running_steps, np.int64))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        super().__post_init__()
 
     @property
     def k(self) -> int:
@@ -262,9 +264,10 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
 
 
 # ---------------------------------------------------------------------- the analysis
+@analysis("lyapunov_spectrum")
 def lyapunov_spectrum(
     system: Any,
-    inputs: Any,
+    trace: Trace | Any = None,
     k: int | None = None,
     *,
     warmup: int | None = None,
@@ -273,7 +276,9 @@ def lyapunov_spectrum(
     method: str = "auto",
     qr_every: int = 1,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
+    inputs: Any = None,
     steps: int | None = None,
     keep_trace: bool = False,
     **wrap_options: Any,
@@ -288,11 +293,15 @@ def lyapunov_spectrum(
     ----------
     system : RecurrentSystem, nn.Module or callable
         Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
-    inputs : Tensor or ndarray of shape (B, T, I) or (T, I), int or None
-        Input sequences driving the system, batch first; each sample gives its own estimate.
-        For an autonomous map (``input_size=0``) pass the number of steps (or None with
-        ``steps=``); B is then the batch of ``h0`` (1 without one). A step function of the
-        state alone, ``f(s)``, is accepted for an autonomous map.
+    trace : Trace
+        A recording (:func:`hiddenlens.record`) whose trajectory is reused: its ``states``,
+        ``initial`` states and ``inputs`` (B, T, ...); each sample gives its own estimate. For an
+        autonomous map (``input_size=0``) record zeros of shape (B, T, 0). Passing the input
+        sequences themselves (the 0.1 form) still works for one release, with a
+        DeprecationWarning: they are recorded first. For an autonomous map (``input_size=0``)
+        the number of steps may be given instead (or None with ``steps=``); B is then the batch
+        of ``h0`` (1 without one). A step function of the state alone, ``f(s)``, is accepted for
+        an autonomous map.
     k : int, optional
         How many of the largest exponents (default: all S).
     warmup : int, optional
@@ -300,7 +309,7 @@ def lyapunov_spectrum(
         They remove the transient of the state and let the random frame align with the most
         expanding directions; without them the estimate carries a bias of order 1/T.
     h0 : Tensor or ndarray, optional
-        Initial states, as in :func:`hiddenlens.record`; zeros by default.
+        Only with the deprecated inputs form: initial states, as in :func:`hiddenlens.record`.
     dtype : {None, "float32", "float64"}
         Precision of states, Jacobians and frame. None: the system's own (float32 for a model
         wrapped here). float64 converts the weight copies of a module-backed system; a step
@@ -370,6 +379,8 @@ def lyapunov_spectrum(
     Kaplan & Yorke (1979), in Functional Differential Equations and Approximation of Fixed
     Points, Springer, vol. 730, 204-227.
     """
+    check_options("lyapunov_spectrum", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     if dtype is not None and not isinstance(system, RecurrentSystem):
         wrap_options.setdefault("dtype", dtype)
     if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
@@ -379,10 +390,34 @@ def lyapunov_spectrum(
     if dtype is not None:
         system = _with_dtype(system, as_dtype(dtype))
     dt = system.dtype
-    inputs = _autonomous_inputs(system, inputs, steps, h0, dt)
-    x = as_sequences(inputs, system.input_size, dt, what=f"the {system.source} system")
-    if system.time_reversed:
-        x = x.flip(1)
+    if inputs is not None:  # the 0.1 keyword form lyapunov_spectrum(system, inputs=x)
+        if trace is not None:
+            raise TypeError("lyapunov_spectrum got both a trace and inputs; pass only the trace")
+        trace = inputs
+    if steps is not None or (isinstance(trace, (int, np.integer))
+                             and not isinstance(trace, bool)):
+        # an autonomous map driven for a number of steps: recorded here, from h0
+        trace = record(system, _autonomous_inputs(system, trace, steps, h0, dt), h0)
+        h0 = None
+    if trace is None:
+        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
+                        "trace = hiddenlens.record(system, inputs)")
+    recorded = isinstance(trace, Trace)
+    if recorded:
+        check_trace_fits(system, trace, "lyapunov_spectrum")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+        # the recorded trajectory is reused as it is (inputs already in the system's order)
+        x = torch.as_tensor(np.array(trace.inputs), dtype=dt)  # (B, T, I)
+    else:
+        warnings.warn(
+            "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
+            "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
+            DeprecationWarning, stacklevel=3)
+        x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
+        if system.time_reversed:
+            x = x.flip(1)
     B, T, _ = x.shape
     S = system.state_size
     k = _check_k(k, S)
@@ -393,17 +428,22 @@ def lyapunov_spectrum(
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
     chosen = _choose_method(system, k) if method == "auto" else method
-    s0 = initial_states(system, h0, B)  # (B, S)
+    if recorded:
+        s0 = torch.as_tensor(np.array(trace.initial), dtype=dt)  # (B, S)
+    else:
+        s0 = initial_states(system, h0, B)  # (B, S)
 
     # flops of one step of the state (up to 4 gates) and of the frame (J Q and its QR)
     state_flops = B * 8 * S * (S + system.input_size)
     frame_flops = B * (2 * S * S * k + 4 * S * k * k)
-    with preserved(system.model if system.kind == "callable" else None), torch.no_grad(), \
-            step_errors(system):
+    with grad_restored(), torch.no_grad(), step_errors(system):
         if system.kind == "callable":
             _check_step_dtype(system, s0, x[:, 0])
-        with _threads_for(state_flops):
-            states = system.run(x, s0, progress=False)  # (B, T, S)
+        if recorded:
+            states = torch.as_tensor(np.array(trace.states), dtype=dt)  # (B, T, S)
+        else:
+            with _threads_for(state_flops):
+                states = system.run(x, s0, progress=False)  # (B, T, S)
         _check_trajectory(states, system)
         with _threads_for(frame_flops):
             sums, running, running_steps = _qr_sweep(
@@ -433,7 +473,6 @@ def lyapunov_spectrum(
                                        else (np.asarray(exponents) / system.dt).tolist())
     if keep_trace:
         from ._record import _metadata
-        from ._trace import Trace
 
         rec = Trace(states.numpy(), s0.numpy(), x.numpy(), system.parts,
                     _metadata(system, tuple(x.shape)))
@@ -507,7 +546,6 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     running : ndarray of shape (P, k)
     running_steps : ndarray of shape (P,)
     """
-    from tqdm.auto import tqdm
 
     B, T, S = states.shape
     dt = states.dtype
@@ -539,7 +577,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     # is cheaper than applying S x S reflectors.
     householder = method == "jacobian" and k == S
     reflectors = None  # (A, tau) while the frame is held as Householder reflectors
-    with tqdm(total=T, disable=not show, desc="Lyapunov QR", unit="step", leave=False) as bar:
+    with progress_bar(progress, total=T, label="Lyapunov QR", auto=bool(show), unit="step") as bar:
         for t0 in range(0, T, chunk):
             t1 = min(T, t0 + chunk)
             C = t1 - t0

@@ -8,20 +8,23 @@ effect on the state trajectory, and the norm of the input sensitivity d s_t / d 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+import warnings
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import torch
 
-from ._guard import preserved
+from ._guard import grad_restored
 from ._jacobians import input_jacobians, step_jacobians
+from ._options import analysis, check_options, int_seed, progress_bar
 from ._record import as_system, record
-from ._results import frozen_mapping, readonly
+from ._results import Result, frozen_mapping, readonly
 from ._stepcheck import step_errors
 from ._systems import RecurrentSystem
 from ._trace import Trace
+from ._validation import check_trace_fits
 
 __all__ = ["MemoryCurve", "memory_curve"]
 
@@ -35,7 +38,7 @@ _CHUNK_BYTES = 64 * 2**20
 
 # ====================================================================== result
 @dataclass(frozen=True, eq=False)
-class MemoryCurve:
+class MemoryCurve(Result):
     """A memory curve over lags k = 0..max_lag, from :func:`memory_curve`.
 
     Attributes
@@ -114,7 +117,6 @@ class MemoryCurve:
     feature_scores: np.ndarray | None = None
     alphas: np.ndarray | None = None
     categorical: bool = False
-    metadata: Mapping[str, Any] | None = None
 
     def __post_init__(self) -> None:
         for name in ("lags", "scores", "spread", "samples", "baseline", "baseline_spread",
@@ -123,6 +125,7 @@ class MemoryCurve:
             if value is not None:
                 object.__setattr__(self, name, readonly(value))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        super().__post_init__()
 
     @property
     def max_lag(self) -> int:
@@ -203,9 +206,10 @@ class MemoryCurve:
 
 
 # ====================================================================== entry point
+@analysis("memory_curve")
 def memory_curve(
     model_or_system: Any,
-    inputs: Any = None,
+    trace: Trace | None = None,
     *,
     max_lag: int = 50,
     method: str = "decoding",
@@ -224,7 +228,9 @@ def memory_curve(
     normalize: str | None = None,
     seed: int = 0,
     h0: Any = None,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
+    inputs: Any = None,
     **wrap_options: Any,
 ) -> MemoryCurve:
     """How many steps back a recurrent system still holds its inputs, as a curve over lag.
@@ -233,8 +239,11 @@ def memory_curve(
     ----------
     model_or_system : RecurrentSystem, nn.Module or callable
         Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``).
-    inputs : Tensor or ndarray of shape (B, T, I) or (T, I), optional
-        The user's sequences (data mode). Without them the system is driven by probe inputs.
+    trace : Trace, optional
+        A recording of the user's sequences (data mode), used as it is. Without it the system
+        is driven by probe inputs, recorded through one helper. Passing the input sequences
+        themselves (the 0.1 form) still works for one release, with a DeprecationWarning:
+        they are recorded first.
     max_lag : int, default 50
         K, the largest lag on the curve.
     method : {"decoding", "perturbation", "sensitivity"}, default "decoding"
@@ -320,9 +329,26 @@ def memory_curve(
     >>> curve = hiddenlens.memory_curve(gru, max_lag=20)
     >>> curve.capacity, curve.span  # doctest: +SKIP
     """
+    check_options("memory_curve", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
+    if inputs is not None:  # the 0.1 keyword form memory_curve(system, inputs=x)
+        if trace is not None:
+            raise TypeError("memory_curve got both a trace and inputs; pass only the trace")
+        trace = inputs
+    inputs = trace
+    if isinstance(trace, Trace):
+        check_trace_fits(system, trace, "memory_curve")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+    elif trace is not None:
+        warnings.warn(
+            "memory_curve(system, inputs) is deprecated; record first and pass the trace: "
+            "memory_curve(system, hiddenlens.record(system, inputs, h0))",
+            DeprecationWarning, stacklevel=3)
     opts = _check_options(system, inputs, locals())
-    with preserved(system.model if system.kind == "callable" else None):
+    with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
         meta = {
@@ -464,7 +490,8 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
         std = np.full(I, opts["scale"]) if not opts["categorical"] else trace.inputs.reshape(
             -1, I).std(axis=0)
         return trace, std
-    trace = record(system, inputs, h0, progress=progress)
+    # a given trace is the data (the one path that records is probe mode, above)
+    trace = inputs if isinstance(inputs, Trace) else record(system, inputs, h0, progress=progress)
     _check_bounded(trace, "inputs", "scale the inputs down")
     x = trace.inputs.reshape(-1, I).astype(np.float64)  # (B*T, I)
     if opts["categorical"] is None:
@@ -646,7 +673,6 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     feature_scores : (K + 1, I) R^2 per feature averaged over folds (categorical: NaN)
     chosen : (n_folds, K + 1) chosen penalty (mean over the lag's targets)
     """
-    from tqdm.auto import tqdm
 
     n_folds = len(folds)
     width = target.width
@@ -658,8 +684,8 @@ def _ridge_cv(X: np.ndarray, target: _Targets, K: int,
     per_block = max(1, int(16e6 // max(1, X.shape[0] * width)))
     work = X.shape[0] * X.shape[1] * (K + 1) * width * len(alphas) * len(folds)
     show = progress if progress is not None else work > 5e10
-    for f, (tr, te) in enumerate(tqdm(folds, disable=not show, desc="decoding folds",
-                                      leave=False)):
+    for f, (tr, te) in enumerate(progress_bar(progress, iterable=folds, total=len(folds),
+                                              label="decoding folds", auto=bool(show))):
         Xtr, Xte = _standardise(X[tr], X[te])
         Xtr -= Xtr.mean(axis=0)  # exact centring after rounding
         lam, V = np.linalg.eigh(Xtr.T @ Xtr)
@@ -831,7 +857,6 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     unit norm with its log scale carried separately, so long products neither overflow nor
     underflow; means over sources are taken with logsumexp. Cost: B * T * (K + 1) * S^2 * I.
     """
-    from tqdm.auto import tqdm
 
     K, I, S = opts["max_lag"], trace.input_size, trace.state_size
     B, T = trace.batch_size, trace.n_steps
@@ -855,8 +880,9 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     chunk = max(1, int(_CHUNK_BYTES // max(1, B * S * (S + I) * 8)))
     show = progress if progress is not None else B * (T - t_a) * S * S * L * I > 2e10
     slots = torch.arange(L)
-    for c0 in tqdm(range(t_a, T, chunk), disable=not show, desc="input sensitivity",
-                   leave=False):
+    for c0 in progress_bar(progress, iterable=range(t_a, T, chunk),
+                           total=len(range(t_a, T, chunk)), label="input sensitivity",
+                           auto=bool(show)):
         c1 = min(T, c0 + chunk)
         p = prev[:, c0:c1].reshape(-1, S)
         xi = x[:, c0:c1].reshape(-1, I)

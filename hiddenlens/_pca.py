@@ -2,20 +2,25 @@
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import torch
 
-from ._results import frozen_mapping, readonly
+from ._options import analysis, check_options, int_seed, renamed
+from ._results import Result, frozen_mapping, readonly
+from ._systems import RecurrentSystem
 from ._trace import Trace
+from ._validation import check_trace_fits
 
 __all__ = ["PCATrajectories", "pca_trajectories"]
 
 
 @dataclass(frozen=True, eq=False)
-class PCATrajectories:
+class PCATrajectories(Result):
     """Hidden-state trajectories projected onto their principal components.
 
     Attributes
@@ -225,26 +230,39 @@ class PCATrajectories:
                 f"n_components_90={self.n_components_90})")
 
 
+@analysis("pca_trajectories")
 def pca_trajectories(
-    trace: Trace,
-    n_components: int = 3,
+    system: Any,
+    trace: Trace | None = None,
+    *legacy: Any,
+    k: int | None = None,
     parts: str | Sequence[str] | None = None,
-    *,
     svd_solver: str | None = None,
-    seed: int = 0,
+    seed: int | np.random.Generator = 0,
+    threads: int | None = None,
+    n_components: int | None = None,
 ) -> PCATrajectories:
     """Fit PCA to the recorded states and project the trajectories onto the leading components.
 
     Every (sample, step) state of the chosen parts is one observation: the (B, T, D) states are
     reshaped to (B * T, D) and fitted with :class:`sklearn.decomposition.PCA` in float64.
 
+    Called as ``pca_trajectories(system, trace, k=3)`` like every analysis, or as
+    ``pca_trajectories(trace)`` (PCA needs only the states).
+
     Parameters
     ----------
+    system : RecurrentSystem, model or Trace
+        The system the trace was recorded from (checked against the trace's sizes when it is a
+        RecurrentSystem), or the trace itself.
     trace : Trace
-        Recorded states (B, T, S), e.g. from :func:`hiddenlens.record`.
-    n_components : int, default 3
-        k, the number of components to keep (the participation ratio and the 90%/95% counts use
-        the whole spectrum regardless).
+        Recorded states (B, T, S), e.g. from :func:`hiddenlens.record`. Input sequences given
+        here are recorded first through ``system`` (with a DeprecationWarning).
+    k : int, default 3
+        The number of components to keep (the participation ratio and the 90%/95% counts use
+        the whole spectrum regardless). Called ``n_components`` in 0.1; that name and the
+        positional ``pca_trajectories(trace, 3, parts)`` still work for one release with a
+        DeprecationWarning.
     parts : str or sequence of str, optional
         Parts of the state to analyse (e.g. ``"layer1.h"``); the whole flat state by default.
         Parts with different scales (an LSTM's h and c) are best analysed one at a time.
@@ -252,8 +270,10 @@ def pca_trajectories(
         Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
         D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
         "randomized" is faster for very wide states.
-    seed : int, default 0
+    seed : int >= 0 or numpy.random.Generator, default 0
         Random state of the randomized solver.
+    threads : int, optional
+        Torch threads of the calling thread during the fit (see docs/options.md).
 
     Returns
     -------
@@ -275,9 +295,10 @@ def pca_trajectories(
     """
     from sklearn.decomposition import PCA
 
-    if not isinstance(trace, Trace):
-        raise TypeError(f"trace must be a hiddenlens Trace, got {type(trace).__name__}; record "
-                        "one with hiddenlens.record(model, inputs)")
+    trace, k, parts = _call_form(system, trace, legacy, k, parts, n_components)
+    check_options("pca_trajectories", locals())
+    seed = int_seed(seed)
+    n_components = k
     names = None if parts is None else ((parts,) if isinstance(parts, str) else tuple(parts))
     try:
         cols = trace.columns(names)  # (D,)
@@ -321,6 +342,47 @@ def pca_trajectories(
 
 
 # ---------------------------------------------------------------------- computing
+def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: Any,
+               n_components: Any) -> tuple[Trace, Any, Any]:
+    """The trace, k and parts of any accepted call form (the 0.1 forms with a warning)."""
+    if isinstance(system, Trace):
+        given, positional = system, ((trace,) if trace is not None else ()) + tuple(legacy)
+    else:
+        given, positional = trace, tuple(legacy)
+        if given is None:
+            raise TypeError(f"the trace must be a hiddenlens Trace, got {type(system).__name__}; "
+                            "call pca_trajectories(system, trace) or pca_trajectories(trace) "
+                            "with trace = hiddenlens.record(model, inputs)")
+        if not isinstance(given, Trace):
+            from ._record import record
+
+            if not isinstance(given, (np.ndarray, torch.Tensor)):
+                raise TypeError(f"trace must be a hiddenlens Trace, got {type(given).__name__}; "
+                                "record one with hiddenlens.record(model, inputs)")
+            warnings.warn("pca_trajectories(system, inputs) is deprecated; record first: "
+                          "pca_trajectories(system, hiddenlens.record(system, inputs))",
+                          DeprecationWarning, stacklevel=4)
+            given = record(system, given)
+        elif isinstance(system, RecurrentSystem):
+            check_trace_fits(system, given, "pca_trajectories")
+    if len(positional) > 2:
+        raise TypeError(f"pca_trajectories takes at most (system, trace) positionally, got "
+                        f"{len(positional)} more; pass k= and parts= by keyword")
+    if positional:
+        warnings.warn("pca_trajectories(trace, n_components, parts) with positional options is "
+                      "deprecated; pass them by keyword: pca_trajectories(system, trace, k=..., "
+                      "parts=...)", DeprecationWarning, stacklevel=4)
+        if k is not None or n_components is not None:
+            raise TypeError("pca_trajectories got the number of components twice; pass only k=")
+        k = positional[0]
+        if len(positional) == 2:
+            if parts is not None:
+                raise TypeError("pca_trajectories got parts twice; pass only parts=")
+            parts = positional[1]
+    k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
+    return given, (3 if k is None else k), parts
+
+
 def _has_covariance_eigh() -> bool:
     """scikit-learn >= 1.5 offers the "covariance_eigh" PCA solver."""
     import sklearn
@@ -340,8 +402,9 @@ def _check_data(X: np.ndarray, n_components: Any) -> None:
         )
     if isinstance(n_components, bool) or not isinstance(n_components, (int, np.integer)) \
             or not 1 <= n_components <= min(N, D):
-        raise ValueError(f"n_components must be an integer from 1 to {min(N, D)} (the number of "
-                         f"selected units or states), got {n_components!r}")
+        raise ValueError(f"k (the number of components) must be an integer from 1 to "
+                         f"{min(N, D)} (the number of selected units or states), got "
+                         f"{n_components!r}")
 
 
 def _covariance_spectrum(X: np.ndarray) -> np.ndarray:
@@ -372,7 +435,7 @@ def _check_dims(dims: Any, k: int) -> int:
         raise ValueError(f"dims must be 2 or 3, got {dims!r}")
     if k < dims:
         raise ValueError(f"a {dims}-D plot needs at least {dims} components but only {k} were "
-                         f"kept; refit with n_components={dims}")
+                         f"kept; refit with k={dims}")
     return int(dims)
 
 

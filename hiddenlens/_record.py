@@ -188,8 +188,6 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
 
 def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
     """The recurrent part's inputs (B, T, I) from the model's raw inputs (token ids included)."""
-    from ._guard import preserved
-
     raw = inputs
     if isinstance(raw, np.ndarray):
         if raw.dtype == object or not np.issubdtype(raw.dtype, np.number):
@@ -204,7 +202,7 @@ def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
         if p is not None:
             raw = raw.to(p.dtype)
     try:
-        with preserved(None), torch.no_grad():
+        with torch.no_grad():
             out = system.front(raw)
     except Exception as err:  # noqa: BLE001 - the front end's own error, with the context
         raise ValueError(f"the front end {system.front_name!r} failed on inputs of shape "

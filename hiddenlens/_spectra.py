@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -18,7 +18,8 @@ from ._jacobians import (
     linearize,
     system_for_trace,
 )
-from ._results import frozen_mapping, readonly
+from ._options import analysis, check_options, int_seed, progress_bar
+from ._results import Result, frozen_mapping, readonly
 from ._threads import single_thread
 from ._validation import as_dtype
 
@@ -48,7 +49,7 @@ _EPS = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
 @dataclass(frozen=True, eq=False)
-class JacobianSpectra:
+class JacobianSpectra(Result):
     """Top singular values (and spectral radius) of every step Jacobian J_t = d s_t / d s_{t-1}.
 
     Attributes
@@ -101,7 +102,6 @@ class JacobianSpectra:
     method: str
     state_size: int
     tol: float
-    metadata: Mapping[str, Any]
     radius_bounds: np.ndarray | None = None
     excluded: np.ndarray = field(default_factory=lambda: readonly(np.zeros((0, 2), np.int64)))
 
@@ -176,6 +176,7 @@ class JacobianSpectra:
                 f"method={self.method!r}, median sigma_1={self.median[0]:.4g}{gone})")
 
 
+@analysis("jacobian_spectra")
 def jacobian_spectra(
     system: Any,
     trace: Any,
@@ -188,7 +189,8 @@ def jacobian_spectra(
     dtype: Any = torch.float64,
     chunk: int | None = None,
     seed: int = 0,
-    progress: bool | None = None,
+    progress: bool | Callable[[int, int, str], Any] | None = None,
+    threads: int | None = None,
 ) -> JacobianSpectra:
     """Singular values of the step Jacobians J_t = d s_t / d s_{t-1} along a recorded trace.
 
@@ -246,6 +248,8 @@ def jacobian_spectra(
     (sigma_S) a perturbation of the state; their logarithms over many steps relate to the
     Lyapunov exponents (Oseledets). See ``docs/jacobians.md``.
     """
+    check_options("jacobian_spectra", locals())
+    seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = system_for_trace(system, trace)
     prev, x = _trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B, T, S = prev.shape
@@ -274,11 +278,11 @@ def jacobian_spectra(
     finite = np.ones((B, T), dtype=bool)
     starts = range(0, T, chunk)
     show = progress if progress is not None else (len(starts) > 10 and B * T * S * S > 1 << 28)
-    from tqdm.auto import tqdm
 
     # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
     with torch.no_grad(), single_thread(S < _THREADS_FROM_STATE):
-        for t0 in tqdm(starts, disable=not show, desc="spectra", leave=False, unit="chunk"):
+        for t0 in progress_bar(progress, iterable=starts, total=len(starts),
+                               label="spectra", auto=bool(show)):
             t1 = min(T, t0 + chunk)
             n = t1 - t0
             lin = linearize(system, prev[:, t0:t1].reshape(B * n, S),

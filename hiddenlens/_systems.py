@@ -8,7 +8,6 @@ change the user's model; it is a snapshot of the weights at the time of wrapping
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import hashlib
 import inspect
@@ -22,7 +21,6 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ._guard import preserved
 from ._results import frozen_mapping
 from ._validation import as_dtype
 
@@ -191,10 +189,7 @@ class RecurrentSystem:
     def step(self, state: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
         """Advance flat states (B, S) by one step with inputs (B, I); differentiable, vmap-able."""
         if self._step_fn is not None:
-            if isinstance(self.model, nn.Module) and self.model.training:
-                with _eval_mode(self.model):
-                    return self._step_fn(state, x)
-            return self._step_fn(state, x)
+            return self._step_fn(state, x)  # a module step function is a private eval copy
         new = []
         inp = x
         for layer in self.layers:
@@ -237,18 +232,6 @@ class RecurrentSystem:
 
 
 # ---------------------------------------------------------------------- running
-@contextlib.contextmanager
-def _eval_mode(model: nn.Module):
-    """Dropout off for a step function that is an nn.Module; training flags restored after."""
-    flags = [(m, m.training) for m in model.modules()]
-    try:
-        model.eval()
-        yield
-    finally:
-        for m, flag in flags:
-            m.training = flag
-
-
 def _run_layers(layers, inputs, h0, state_size):
     B, T, _ = inputs.shape
     out = torch.empty(B, T, state_size, dtype=inputs.dtype)  # (B, T, S)
@@ -353,17 +336,14 @@ def _run_callable(system: RecurrentSystem, inputs, h0, progress):
     xs = inputs.transpose(0, 1).contiguous()  # (T, B, I): contiguous per-step inputs
     s = h0
     show = progress if progress is not None else T >= 20_000
-    model = system.model if isinstance(system.model, nn.Module) else None
-    # a step function may be a module in training mode or draw random numbers: run it in eval
-    # mode and give torch's global RNG back as it was
-    with preserved(model):
-        for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
-            s = system._step_fn(s, xs[t])
-            # every step, cheaply: a step function may change its output shape later on
-            if not isinstance(s, torch.Tensor) or s.shape != (B, system.state_size):
-                _check_step_output(s, B, system.state_size, t)
-            s = s.to(system.dtype)  # keep the promised dtype if the function promotes
-            out[:, t] = s
+    # a module step function is already a private copy in eval mode (see _snapshot)
+    for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
+        s = system._step_fn(s, xs[t])
+        # every step, cheaply: a step function may change its output shape later on
+        if not isinstance(s, torch.Tensor) or s.shape != (B, system.state_size):
+            _check_step_output(s, B, system.state_size, t)
+        s = s.to(system.dtype)  # keep the promised dtype if the function promotes
+        out[:, t] = s
     return out
 
 
@@ -816,7 +796,7 @@ def _order_from_probe(fn: Any, S: int, I: int) -> str | None:
     s, x = torch.zeros(2, S), torch.zeros(2, I)
     for order, args in (("state_first", (s, x)), ("input_first", (x, s))):
         try:
-            with preserved(None), torch.no_grad(), warnings.catch_warnings():
+            with torch.no_grad(), warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 out = fn(*args)
         except Exception:  # noqa: BLE001 - a wrong order fails with whatever the code raises

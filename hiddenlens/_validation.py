@@ -10,7 +10,8 @@ from typing import Any
 import numpy as np
 import torch
 
-__all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "describe"]
+__all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "check_trace_fits",
+           "describe"]
 
 _DTYPES = {
     "float32": torch.float32,
@@ -119,3 +120,14 @@ def as_sequences(inputs: Any, input_size: int, dtype: torch.dtype, *, name: str 
         )
     check_finite(t, name)
     return t
+
+
+def check_trace_fits(system: Any, trace: Any, analysis: str) -> None:
+    """Refuse a trace whose state or input size differs from the system's."""
+    if trace.state_size != system.state_size or trace.input_size != system.input_size:
+        raise ValueError(
+            f"{analysis}: the trace has states of size {trace.state_size} and "
+            f"{trace.input_size} input features but the {system.source} system has "
+            f"S={system.state_size}, I={system.input_size}; record the trace with this system "
+            "or model: hiddenlens.record(system, inputs)"
+        )

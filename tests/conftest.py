@@ -88,18 +88,6 @@ def make():
     return build
 
 
-@pytest.fixture
-def one_thread():
-    """Run a test on one torch thread: tiny tensors gain nothing from more, and on a busy machine
-    thread hand-offs cost more than the work. The previous count is given back afterwards."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
-
-
 def gaussian_module(cls: type, n_in: int, hidden: int, *, seed: int = 0, std: float = 0.5,
                     **kwargs):
     """A batch-first recurrent module with N(0, std^2) weights from a private generator.

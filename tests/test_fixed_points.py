@@ -314,10 +314,10 @@ def test_keyboard_interrupt_propagates_and_leaves_nothing_changed():
     ("kwargs", "match"),
     [
         ({"x": np.zeros(2)}, r"x is the constant input x\* and must have shape \(1,\)"),
-        ({"n_starts": 0}, "n_starts must be an integer >= 1"),
-        ({"tol": -1.0}, "tol must be a number >= 0"),
-        ({"noise": "big"}, "noise must be a number >= 0"),
-        ({"max_iter": 1.5}, "max_iter must be an integer"),
+        ({"n_starts": 0}, "'n_starts' option of find_fixed_points must be an int >= 1"),
+        ({"fixed_tol": -1.0}, "'fixed_tol' option of find_fixed_points must be None or a float"),
+        ({"noise": "big"}, "'noise' option of find_fixed_points must be a float >= 0"),
+        ({"max_iter": 1.5}, "'max_iter' option of find_fixed_points must be an int >= 0"),
         ({"starts": np.zeros((3, 2))}, r"starts must have shape \(n_starts, 1\)"),
     ],
 )
@@ -349,7 +349,7 @@ def test_plot_on_pca_axes_with_unstable_directions(agg, saddle_case):
     assert ax.get_xlabel().startswith("PC1")
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
     assert any(t.startswith("saddle") for t in labels) and "unstable direction" in labels
-    pca = hl.pca_trajectories(tr, n_components=2)
+    pca = hl.pca_trajectories(tr, k=2)
     fig, axes = agg.subplots(1, 2)
     assert fp.plot(axes[0], pca=pca) is axes[0]
     assert fp.plot(axes[1]) is axes[1]  # S = 2: raw state axes

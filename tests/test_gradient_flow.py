@@ -121,8 +121,11 @@ def test_result_frozen_plot_frame(make, gen):
 def test_bad_options(make, gen):
     model = make(nn.GRU, 2, 3, gen=gen)
     trace = hl.record(model, np.ones((2, 6, 2), dtype=np.float32))
-    with pytest.raises(ValueError, match=r"max_lag must be an integer in \[1, 6\]"):
+    with pytest.raises(ValueError, match=r"The 'max_lag' option of gradient_flow must be None "
+                                         r"or an int >= 1; got 0\."):
         hl.gradient_flow(model, trace, max_lag=0)
+    with pytest.raises(ValueError, match=r"max_lag must be an integer in \[1, 6\]"):
+        hl.gradient_flow(model, trace, max_lag=7)
     with pytest.raises(ValueError, match=r"end must be an integer in \[0, 5\]"):
         hl.gradient_flow(model, trace, end=6)
     with pytest.raises(ValueError, match="threshold must be a number >= 0"):
@@ -133,7 +136,7 @@ def test_bad_options(make, gen):
         hl.gradient_flow(model, trace, samples=[5])
     with pytest.raises(ValueError, match="no part named 'layer3.h'"):
         hl.gradient_flow(model, trace, parts="layer3.h")
-    with pytest.raises(ValueError, match="max_iter must be a positive integer"):
+    with pytest.raises(ValueError, match="'max_iter' option of gradient_flow must be an int >= 1"):
         hl.gradient_flow(model, trace, max_iter=0)
 
 

@@ -13,10 +13,29 @@ from scipy import integrate, optimize
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._lyapunov import LyapunovSpectrum, kaplan_yorke_dimension, lyapunov_spectrum
+from hiddenlens._lyapunov import (
+    LyapunovSpectrum,
+    _with_dtype,
+    kaplan_yorke_dimension,
+    lyapunov_spectrum,
+)
+from hiddenlens._record import as_system
 from hiddenlens._summary import key_figures, summary_sentence
+from hiddenlens._systems import RecurrentSystem
+from hiddenlens._validation import as_dtype
 
 F64 = torch.float64
+
+
+def lyap(system, x, *, h0=None, dtype=None, **kw):
+    """Record ``x`` in the analysis' precision, then run lyapunov_spectrum on the trace."""
+    wrap_options = {n: kw.pop(n) for n in ("direction", "submodule") if n in kw}
+    if dtype is not None and not isinstance(system, RecurrentSystem):
+        wrap_options["dtype"] = dtype
+    system = as_system(system, **wrap_options)
+    if dtype is not None:
+        system = _with_dtype(system, as_dtype(dtype))
+    return lyapunov_spectrum(system, hl.record(system, x, h0), **kw)
 
 
 def autonomous(B: int, T: int) -> torch.Tensor:
@@ -32,7 +51,7 @@ def henon_step(s, x, a=1.4, b=0.3):
 def henon():
     system = hl.wrap(henon_step, state_size=2, input_size=0, dtype=F64)
     h0 = 0.1 + 0.01 * torch.arange(8, dtype=F64)[:, None].repeat(1, 2)
-    return system, lyapunov_spectrum(system, autonomous(8, 20_000), h0=h0, warmup=500)
+    return system, lyap(system, autonomous(8, 20_000), h0=h0, warmup=500)
 
 
 def test_henon_map_published_exponents(henon):
@@ -51,13 +70,13 @@ def test_henon_methods_and_qr_cadence_agree(henon):
     system, res = henon
     h0 = 0.1 + 0.01 * torch.arange(8, dtype=F64)[:, None].repeat(1, 2)
     x = autonomous(8, 1000)
-    a = lyapunov_spectrum(system, x, h0=h0, method="jacobian")
-    b = lyapunov_spectrum(system, x, h0=h0, method="jvp")
+    a = lyap(system, x, h0=h0, method="jacobian")
+    b = lyap(system, x, h0=h0, method="jvp")
     # reference: the two routes compute the same products J_t Q (torch autograd both ways)
     np.testing.assert_allclose(b.per_sample, a.per_sample, rtol=0, atol=1e-12)
     # QR of a product of Jacobians has R = product of the per-step R factors, so fewer
     # re-orthonormalisations give the same sums of logs (common practice)
-    c = lyapunov_spectrum(system, x, h0=h0, qr_every=3)
+    c = lyap(system, x, h0=h0, qr_every=3)
     np.testing.assert_allclose(c.per_sample, a.per_sample, rtol=0, atol=1e-9)
 
 
@@ -81,7 +100,7 @@ def lorenz_rk4(s, x):
 def test_lorenz_flow_published_exponents():
     system = hl.wrap(lorenz_rk4, state_size=3, input_size=0, dtype=F64)
     h0 = torch.tensor([[1.0, 1.0, 20.0]], dtype=F64) + torch.arange(4, dtype=F64)[:, None]
-    res = lyapunov_spectrum(system, autonomous(4, 20_000), h0=h0, warmup=1000)
+    res = lyap(system, autonomous(4, 20_000), h0=h0, warmup=1000)
     assert res.method == "jacobian"  # one batched vmap(jacrev) per chunk of steps
     per_time = res.exponents / DT
     # Sprott, Chaos and Time-Series Analysis (2003), Lorenz sigma=10, rho=28, beta=8/3:
@@ -97,7 +116,7 @@ def test_lorenz_flow_published_exponents():
 def test_logistic_map_ln2():
     system = hl.wrap(lambda s, x: 4.0 * s * (1 - s), state_size=1, input_size=0, dtype=F64)
     h0 = torch.linspace(0.1, 0.4, 4, dtype=F64)[:, None]
-    res = lyapunov_spectrum(system, autonomous(4, 10_000), h0=h0)
+    res = lyap(system, autonomous(4, 10_000), h0=h0)
     # Sprott (2003), logistic map at r=4: ln 2 = 0.6931 (exact via the tent-map conjugacy)
     assert abs(res.exponents[0] - math.log(2)) < 1e-3
 
@@ -109,7 +128,7 @@ def test_linear_map_log_moduli_of_eigenvalues():
     system = hl.wrap(lambda s, x: s @ Wt.T, state_size=6, input_size=0, dtype=F64)
     # h0 = 0 is a fixed point (and says so); J_t = W at every step, wherever the state is
     with pytest.warns(hl.StationaryTrajectoryWarning):
-        res = lyapunov_spectrum(system, autonomous(1, 3000))
+        res = lyap(system, autonomous(1, 3000))
     # reference: numpy.linalg.eigvals; exponents of h' = W h are log |eigenvalues| (common
     # practice); complex pairs share a modulus, and a finite run splits them by O(1/T)
     ref = np.sort(np.log(np.abs(np.linalg.eigvals(W))))[::-1]
@@ -117,7 +136,7 @@ def test_linear_map_log_moduli_of_eigenvalues():
     assert abs(res.exponents.sum() - ref.sum()) < 1e-10  # log |det W| exactly
     # k < S: the first k columns of the frame and of R do not depend on the rest (Gram-Schmidt)
     with pytest.warns(hl.StationaryTrajectoryWarning):
-        top = lyapunov_spectrum(system, autonomous(1, 3000), k=3)
+        top = lyap(system, autonomous(1, 3000), k=3)
     np.testing.assert_allclose(top.exponents, res.exponents[:3], rtol=0, atol=1e-12)
 
 
@@ -153,8 +172,7 @@ def random_tanh_network(g: float, N: int = 200, seed: int = 1):
 def test_random_tanh_network_subcritical_decays(g):
     rnn, W, h0 = random_tanh_network(g)
     with pytest.warns(hl.StationaryTrajectoryWarning, match="settled on a fixed point"):
-        res = lyapunov_spectrum(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=700,
-                                dtype=F64)
+        res = lyap(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=700, dtype=F64)
     # the state decays to the fixed point 0, where J = W: the largest exponent is ln rho(W)
     # (common practice; reference numpy.linalg.eigvals), negative for g < 1 (circular law)
     ln_rho = math.log(np.abs(np.linalg.eigvals(W)).max())
@@ -165,7 +183,7 @@ def test_random_tanh_network_subcritical_decays(g):
 @pytest.mark.parametrize("g", [2.0, 3.0])
 def test_random_tanh_network_chaotic_near_mean_field(g):
     rnn, W, h0 = random_tanh_network(g)
-    res = lyapunov_spectrum(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=300, dtype=F64)
+    res = lyap(rnn, torch.zeros(2, 1500, 1), k=1, h0=h0, warmup=300, dtype=F64)
     # chaos for g > 1 (Sompolinsky, Crisanti & Sommers 1988); the largest exponent is near the
     # discrete-time mean-field value (Molgedey, Schuchhardt & Schuster 1992); N=200 is finite,
     # so allow a few hundredths
@@ -179,8 +197,8 @@ def test_random_tanh_network_chaotic_near_mean_field(g):
 def test_jacobian_and_jvp_routes_agree_on_modules(make, gen, cls):
     m = make(cls, 3, 6, 2, batch_first=True, gen=gen, scale=0.8)
     x = torch.randn(3, 200, 3, generator=gen)
-    a = lyapunov_spectrum(m, x, dtype=F64, method="jacobian")
-    b = lyapunov_spectrum(m, x, dtype=F64, method="jvp")
+    a = lyap(m, x, dtype=F64, method="jacobian")
+    b = lyap(m, x, dtype=F64, method="jvp")
     # reference: torch autograd (jvp route) against the explicit step Jacobians; the two agree
     # to rounding, which steps with a nearly singular J amplify in the smallest exponents
     np.testing.assert_allclose(b.per_sample, a.per_sample, rtol=1e-5, atol=1e-8)
@@ -190,8 +208,8 @@ def test_jacobian_and_jvp_routes_agree_on_modules(make, gen, cls):
 def test_float32_roughly_matches_float64(make, gen):
     m = make(nn.GRU, 3, 16, batch_first=True, gen=gen, scale=0.6)
     x = torch.randn(2, 400, 3, generator=gen)
-    r64 = lyapunov_spectrum(m, x, dtype="float64")
-    r32 = lyapunov_spectrum(m, x)
+    r64 = lyap(m, x, dtype="float64")
+    r32 = lyap(m, x)
     assert r32.dtype == "float32" and r64.dtype == "float64"
     np.testing.assert_allclose(r32.exponents, r64.exponents, rtol=0, atol=2e-3)
 
@@ -199,8 +217,8 @@ def test_float32_roughly_matches_float64(make, gen):
 def test_k_below_state_size_is_the_top_of_the_spectrum(make, gen):
     m = make(nn.GRU, 3, 12, batch_first=True, gen=gen, scale=0.7)
     x = torch.randn(2, 300, 3, generator=gen)
-    full = lyapunov_spectrum(m, x, dtype=F64)
-    top = lyapunov_spectrum(m, x, k=4, dtype=F64)
+    full = lyap(m, x, dtype=F64)
+    top = lyap(m, x, k=4, dtype=F64)
     np.testing.assert_allclose(top.per_sample, full.per_sample[:, :4], rtol=0, atol=1e-10)
     assert np.all(np.diff(full.exponents) <= 1e-9)  # descending
 
@@ -212,8 +230,8 @@ def test_time_reversed_direction_runs_backwards(make, gen):
         for name in ("weight_ih", "weight_hh", "bias_ih", "bias_hh"):
             getattr(fw, f"{name}_l0").copy_(getattr(bi, f"{name}_l0_reverse"))
     x = torch.randn(2, 120, 3, generator=gen)
-    back = lyapunov_spectrum(bi, x, direction="backward", dtype=F64)
-    ref = lyapunov_spectrum(fw, x.flip(1), dtype=F64)
+    back = lyap(bi, x, direction="backward", dtype=F64)
+    ref = lyap(fw, x.flip(1), dtype=F64)
     np.testing.assert_allclose(back.per_sample, ref.per_sample, rtol=0, atol=1e-12)
 
 
@@ -225,7 +243,7 @@ def test_result_is_frozen_repeatable_and_leaves_the_model_alone(make, gen, snaps
     np_state = np.random.get_state()[1].copy()  # noqa: NPY002 (checks the global RNG)
     threads = torch.get_num_threads()
     x = torch.randn(3, 80, 3, generator=gen)
-    res = lyapunov_spectrum(m, x, warmup=10, dtype="float64")
+    res = lyap(m, x, warmup=10, dtype="float64")
     snap.assert_unchanged()
     assert np.array_equal(np.random.get_state()[1], np_state)  # noqa: NPY002
     assert torch.get_num_threads() == threads
@@ -238,9 +256,9 @@ def test_result_is_frozen_repeatable_and_leaves_the_model_alone(make, gen, snaps
     assert res.n_steps == 70 and res.warmup == 10 and res.running_steps[-1] == 70
     np.testing.assert_allclose(res.running[-1], res.exponents, rtol=1e-12)
     np.testing.assert_allclose(res.std, res.per_sample.std(axis=0, ddof=1))
-    again = lyapunov_spectrum(m, x, warmup=10, dtype="float64")
+    again = lyap(m, x, warmup=10, dtype="float64")
     np.testing.assert_array_equal(again.per_sample, res.per_sample)
-    other = lyapunov_spectrum(m, x, warmup=10, dtype="float64", seed=5)
+    other = lyap(m, x, warmup=10, dtype="float64", seed=5)
     np.testing.assert_allclose(other.exponents, res.exponents, atol=0.1)
     assert "LyapunovSpectrum(" in repr(res)
 
@@ -291,7 +309,7 @@ def test_interrupt_restores_threads_and_propagates():
     system = hl.wrap(step, state_size=2, input_size=0, dtype=F64)
     threads = torch.get_num_threads()
     with pytest.raises(KeyboardInterrupt):
-        lyapunov_spectrum(system, autonomous(1, 200), method="jvp")
+        lyap(system, autonomous(1, 200), method="jvp")
     assert torch.get_num_threads() == threads
 
 
@@ -300,29 +318,31 @@ def test_bad_options_fail_clearly(make, gen):
     m = make(nn.GRU, 3, 4, batch_first=True, gen=gen)
     x = torch.randn(2, 30, 3, generator=gen)
     with pytest.raises(ValueError, match="k must be an integer between 1 and the state size 4"):
-        lyapunov_spectrum(m, x, k=5)
-    with pytest.raises(ValueError, match="k must be an integer"):
-        lyapunov_spectrum(m, x, k=0)
+        lyap(m, x, k=5)
+    with pytest.raises(ValueError, match=r"The 'k' option of lyapunov_spectrum must be None or "
+                                         r"an int >= 1; got 0\."):
+        lyap(m, x, k=0)
     with pytest.raises(ValueError, match="warmup must be an integer with 0 <= warmup < T = 30"):
-        lyapunov_spectrum(m, x, warmup=30)
-    with pytest.raises(ValueError, match="method must be one of"):
-        lyapunov_spectrum(m, x, method="svd")
-    with pytest.raises(ValueError, match="qr_every must be a positive integer"):
-        lyapunov_spectrum(m, x, qr_every=0)
-    with pytest.raises(ValueError, match="seed must be a non-negative integer"):
-        lyapunov_spectrum(m, x, seed=-1)
+        lyap(m, x, warmup=30)
+    with pytest.raises(ValueError, match="The 'method' option of lyapunov_spectrum must be one of"):
+        lyap(m, x, method="svd")
+    with pytest.raises(ValueError, match="'qr_every' option of lyapunov_spectrum must be an int"):
+        lyap(m, x, qr_every=0)
+    with pytest.raises(ValueError, match="The 'seed' option of lyapunov_spectrum must be an int"):
+        lyap(m, x, seed=-1)
     with pytest.raises(ValueError, match="dtype must be float32 or float64"):
-        lyapunov_spectrum(m, x, dtype="float16")
+        lyap(m, x, dtype="float16")
     with pytest.raises(ValueError, match="inputs has 5 features but"):
-        lyapunov_spectrum(m, torch.zeros(2, 30, 5))
+        lyap(m, torch.zeros(2, 30, 5))
     with pytest.raises(TypeError, match="already a RecurrentSystem"):
-        lyapunov_spectrum(hl.wrap(m), x, direction="forward")
+        lyap(hl.wrap(m), x, direction="forward")
 
 
 def test_exploding_trajectory_is_refused():
     system = hl.wrap(lambda s, x: 3.0 * s + 1.0, state_size=2, input_size=0)
-    with pytest.raises(ValueError, match="became NaN/Inf at step t=8[0-9]"):
-        lyapunov_spectrum(system, torch.zeros(1, 200, 0))
+    with pytest.raises(ValueError, match="became NaN/Inf at step t=8[0-9]"), \
+            pytest.warns(DeprecationWarning):
+        lyapunov_spectrum(system, torch.zeros(1, 200, 0))  # the inputs form runs the map itself
 
 
 def test_step_function_in_the_wrong_precision_is_refused():
@@ -331,7 +351,7 @@ def test_step_function_in_the_wrong_precision_is_refused():
     system = hl.wrap(lambda s, x: torch.tanh(s.float() @ W), state_size=2, input_size=0,
                      dtype=F64)
     with pytest.raises(TypeError, match="returned torch.float32 states for float64 inputs"):
-        lyapunov_spectrum(system, autonomous(1, 20))
+        lyap(system, autonomous(1, 20))
 
 
 def _lorenz(s, dt=0.01):
@@ -415,3 +435,39 @@ def test_lyapunov_step_function_errors_say_what_to_avoid(name, step, message):
     with pytest.raises(TypeError, match=message):
         hl.lyapunov_spectrum(step, 50, state_size=2, h0=np.ones((1, 2), np.float32))
     assert torch.equal(state, torch.get_rng_state())  # the global RNG is untouched
+
+
+# ---------------------------------------------------------------------------- call forms
+def test_the_inputs_form_warns_and_gives_the_same_numbers(make, gen):
+    # 0.1 form lyapunov_spectrum(system, inputs): recorded first, so the numbers are the same
+    m = make(nn.GRU, 3, 5, batch_first=True, gen=gen)
+    x = torch.randn(2, 40, 3, generator=gen)
+    system = hl.wrap(m, dtype=F64)
+    new = lyapunov_spectrum(system, hl.record(system, x), k=3, warmup=5)
+    with pytest.warns(DeprecationWarning, match=r"lyapunov_spectrum\(system, hiddenlens.record"):
+        old = lyapunov_spectrum(system, x, k=3, warmup=5)
+    with pytest.warns(DeprecationWarning):
+        kw = lyapunov_spectrum(system, inputs=x, k=3, warmup=5)
+    np.testing.assert_array_equal(old.exponents, new.exponents)
+    np.testing.assert_array_equal(kw.per_sample, new.per_sample)
+
+
+def test_the_recorded_trajectory_is_reused_not_rerun():
+    # For a 1-D map the exponent is the time average of log|f'(s_{t-1})| along the trajectory
+    # (common practice; Ott, Chaos in Dynamical Systems, 2nd ed., section 4.4). Give a trace
+    # whose states are NOT the map's own trajectory: the analysis must average along them.
+    def step(s, x):
+        return torch.tanh(1.5 * s + x)
+
+    system = hl.wrap(step, state_size=1, input_size=1, dtype=F64)
+    rng = np.random.default_rng(0)
+    x = rng.uniform(-0.2, 0.2, size=(1, 50, 1))
+    states = rng.uniform(-0.9, 0.9, size=(1, 50, 1))  # not a trajectory of the map
+    trace = hl.Trace(states=states, initial=np.zeros((1, 1)), inputs=x,
+                     parts={"state": slice(0, 1)}, metadata={})
+    res = lyapunov_spectrum(system, trace, warmup=0)
+    prev = np.concatenate([trace.initial[:, None], states[:, :-1]], axis=1)[0, :, 0]
+    expected = np.mean(np.log(np.abs(1.5 * (1 - np.tanh(1.5 * prev + x[0, :, 0]) ** 2))))
+    np.testing.assert_allclose(res.exponents[0], expected, rtol=1e-10)
+    with pytest.raises(ValueError, match="h0 was given with a trace"):
+        lyapunov_spectrum(system, trace, h0=torch.zeros(1, 1))

@@ -18,8 +18,16 @@ from sklearn.preprocessing import StandardScaler
 
 import hiddenlens
 from hiddenlens._memory import MemoryCurve, _folds, memory_curve
+from hiddenlens._record import as_system
 
 F64 = torch.float64
+
+
+def mem(system, x, **kw):
+    """memory_curve on a recording of ``x`` (the analysis takes the trace)."""
+    wrap_options = {n: kw.pop(n) for n in ("dtype", "direction", "submodule") if n in kw}
+    system = as_system(system, **wrap_options)
+    return memory_curve(system, None if x is None else hiddenlens.record(system, x), **kw)
 
 
 def reservoir(W, w, nonlin=None, dtype=F64):
@@ -130,7 +138,7 @@ def test_decoding_scores_match_sklearn_cross_val_score(alphas):
     # leave-one-out choice per fold), one held-out sequence per fold, on lags 0, 2 and 5
     W, w, x, states = _tanh_data(I=2)
     K, B, T = 6, *x.shape[:2]
-    curve = memory_curve(reservoir(W, w, torch.tanh), x, max_lag=K, alphas=alphas,
+    curve = mem(reservoir(W, w, torch.tanh), x, max_lag=K, alphas=alphas,
                          n_folds=B)
     assert curve.mode == "data" and not curve.categorical
     X = states[:, K:].reshape(-1, states.shape[2])
@@ -164,7 +172,7 @@ def test_categorical_tokens_match_sklearn_ridge_classifier():
     w = rng.standard_normal((N, C))
     states = run_numpy(W, w, x, np.tanh)
     alphas = (0.1, 10.0, 1000.0)
-    curve = memory_curve(reservoir(W, w, torch.tanh), x, max_lag=K, alphas=alphas)
+    curve = mem(reservoir(W, w, torch.tanh), x, max_lag=K, alphas=alphas)
     assert curve.categorical and curve.chance == pytest.approx(1 / C)
     assert curve.score_name == "balanced accuracy"
     X = states[:, K:].reshape(-1, N)
@@ -189,7 +197,7 @@ def test_autocorrelated_inputs_are_matched_by_the_baseline():
     x[:, 0] = rng.standard_normal((B, 1))
     for t in range(1, T):
         x[:, t] = rho * x[:, t - 1] + np.sqrt(1 - rho**2) * rng.standard_normal((B, 1))
-    curve = memory_curve(reservoir(np.zeros((3, 3)), np.ones(3)), x, max_lag=K)
+    curve = mem(reservoir(np.zeros((3, 3)), np.ones(3)), x, max_lag=K)
     np.testing.assert_allclose(curve.scores, rho ** (2 * np.arange(K + 1)), atol=0.04)
     # equal up to the ridge penalty acting on 3 copies of x_t instead of 1
     np.testing.assert_allclose(curve.scores, curve.baseline, atol=1e-4)
@@ -221,7 +229,7 @@ def test_perturbation_of_linear_map_decays_as_a_to_the_k(mode):
     # analytic: for s_t = a s_{t-1} + x_t an impulse's effect after k steps is a^k times it
     a, K = 0.8, 12
     x = np.random.default_rng(8).standard_normal((3, 100, 1)) if mode == "data" else None
-    curve = memory_curve(reservoir([[a]], [1.0]), x, max_lag=K, method="perturbation")
+    curve = mem(reservoir([[a]], [1.0]), x, max_lag=K, method="perturbation")
     np.testing.assert_allclose(curve.scores, a ** np.arange(K + 1), rtol=1e-10)
     np.testing.assert_allclose(curve.spread, 0, atol=1e-10)
     assert curve.time_constant == pytest.approx(-1 / np.log(a), rel=1e-8)
@@ -280,7 +288,7 @@ def test_sensitivity_matches_autograd():
     before = copy.deepcopy(rnn.state_dict())
     x = np.random.default_rng(9).standard_normal((2, 14, 2))
     K, washout = 4, 3
-    curve = memory_curve(rnn, x, max_lag=K, method="sensitivity", washout=washout,
+    curve = mem(rnn, x, max_lag=K, method="sensitivity", washout=washout,
                          dtype=F64)
     jac = _full_jacobian(rnn, x).numpy()
     sigma = x.reshape(-1, 2).std(axis=0)
@@ -297,7 +305,7 @@ def test_small_impulse_follows_autograd_jacobian():
     rnn = _reference_rnn(1, seed=1)
     x = np.random.default_rng(10).standard_normal((3, 40, 1))
     K, washout = 5, 4
-    curve = memory_curve(rnn, x, max_lag=K, method="perturbation", washout=washout,
+    curve = mem(rnn, x, max_lag=K, method="perturbation", washout=washout,
                          impulse=1e-7, dtype=F64)
     jac = _full_jacobian(rnn, x).numpy()
     t0s = curve.metadata["impulse_times"]
@@ -365,7 +373,7 @@ def test_data_mode_frame_and_plot_show_baseline_and_parts(gru):
     import matplotlib.pyplot as plt
 
     x = np.random.default_rng(11).standard_normal((2, 300, 3)).astype(np.float32)
-    curve = memory_curve(gru, x, max_lag=5, parts="layer0.h", n_folds=3)
+    curve = mem(gru, x, max_lag=5, parts="layer0.h", n_folds=3)
     assert curve.metadata["split"] == "time blocks"
     assert list(curve.to_frame().columns) == ["score", "spread", "baseline", "baseline_spread"]
     fig, ax = plt.subplots()
@@ -396,12 +404,12 @@ def test_span_conventions():
 
 
 @pytest.mark.parametrize(("kwargs", "match"), [
-    (dict(method="decode"), "method must be one of"),
+    (dict(method="decode"), "'method' option of memory_curve must be one of"),
     (dict(mode="data"), "needs inputs"),
-    (dict(max_lag=-1), "max_lag must be an integer"),
+    (dict(max_lag=-1), "'max_lag' option of memory_curve must be an int >= 0"),
     (dict(alphas=0.0), "alphas must be"),
     (dict(alphas=[]), "alphas must be"),
-    (dict(n_folds=1), "n_folds must be"),
+    (dict(n_folds=1), "'n_folds' option of memory_curve must be an int >= 2"),
     (dict(normalize="lag0"), "normalize applies"),
     (dict(method="sensitivity", normalize="spread"), "normalize must be one of"),
     (dict(parts="nope"), "not found"),
@@ -421,13 +429,13 @@ def test_bad_data_options_fail_clearly():
     sys1 = reservoir([[0.5]], [1.0])
     x = np.zeros((1, 50, 1))
     with pytest.raises(ValueError, match="mode='probe'"):
-        memory_curve(sys1, x, mode="probe")
+        mem(sys1, x, mode="probe")
     with pytest.raises(ValueError, match="probe mode only"):
-        memory_curve(sys1, x, n_steps=10)
+        mem(sys1, x, n_steps=10)
     with pytest.raises(ValueError, match="constant"):
-        memory_curve(sys1, x, max_lag=3, method="perturbation")
+        mem(sys1, x, max_lag=3, method="perturbation")
     with pytest.raises(ValueError, match="not one-hot"):
-        memory_curve(reservoir(np.eye(2), np.eye(2)), np.ones((1, 50, 2)), categorical=True)
+        mem(reservoir(np.eye(2), np.eye(2)), np.ones((1, 50, 2)), categorical=True)
     auto = hiddenlens.wrap(lambda s, x: s, state_size=2, input_size=0)
     with pytest.raises(ValueError, match="takes no inputs"):
         memory_curve(auto)
@@ -455,9 +463,11 @@ class _LinearStep(torch.nn.Module):
 def test_sensitivity_on_module_step_function_with_trainable_parameters(dtype, mode):
     step = _LinearStep(0.5, dtype)
     system = hiddenlens.wrap(step, state_size=1, input_size=1, dtype=dtype)
-    kw = {"n_sequences": 1, "n_steps": 60} if mode == "probe" else {
-        "inputs": np.random.default_rng(0).standard_normal((1, 60, 1))}
-    curve = memory_curve(system, max_lag=8, method="sensitivity", **kw)
+    if mode == "probe":
+        curve = memory_curve(system, max_lag=8, method="sensitivity", n_sequences=1, n_steps=60)
+    else:
+        data = hiddenlens.record(system, np.random.default_rng(0).standard_normal((1, 60, 1)))
+        curve = memory_curve(system, data, max_lag=8, method="sensitivity")
     # analytic: d s_t / d x_{t-k} = a^k
     np.testing.assert_allclose(curve.scores, 0.5 ** np.arange(9), rtol=1e-5)
     assert step.a.requires_grad and step.a.grad is None
@@ -469,7 +479,7 @@ def test_memory_data_mode_refuses_overflowing_states_with_step_and_sample():
     for method in ("decoding", "sensitivity", "perturbation"):
         with pytest.warns(hiddenlens.NonFiniteStateWarning), pytest.raises(
                 ValueError, match=r"states overflowed to inf at step t=\d+ of sample \d.*bounded"):
-            memory_curve(system, inputs=x, max_lag=5, method=method)
+            memory_curve(system, hiddenlens.record(system, x), max_lag=5, method=method)
 
 
 def test_memory_data_mode_refuses_constant_inputs():
@@ -477,4 +487,18 @@ def test_memory_data_mode_refuses_constant_inputs():
     system = reservoir([[0.5]], [1.0])
     for x in (np.zeros((2, 100, 1)), np.ones((2, 100, 1))):
         with pytest.raises(ValueError, match="the inputs are constant"):
-            memory_curve(system, inputs=x, max_lag=5)
+            memory_curve(system, hiddenlens.record(system, x), max_lag=5)
+
+
+def test_the_inputs_form_warns_and_gives_the_same_curve():
+    # 0.1 form memory_curve(system, inputs): recorded first, so the numbers are the same
+    rng = np.random.default_rng(0)
+    system = as_system(reservoir(0.5 * np.eye(3), np.ones(3)))
+    x = rng.standard_normal((2, 300, 1))
+    new = memory_curve(system, hiddenlens.record(system, x), max_lag=4)
+    with pytest.warns(DeprecationWarning, match=r"memory_curve\(system, hiddenlens.record"):
+        old = memory_curve(system, x, max_lag=4)
+    with pytest.warns(DeprecationWarning):
+        kw = memory_curve(system, inputs=x, max_lag=4)
+    np.testing.assert_array_equal(old.scores, new.scores)
+    np.testing.assert_array_equal(kw.scores, new.scores)

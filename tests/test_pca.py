@@ -51,7 +51,7 @@ def gru_run():
 @pytest.mark.parametrize("solver", ["full", "covariance_eigh", "arpack", "randomized"])
 def test_explained_variance_matches_numpy_eigh_of_the_covariance(solver):
     tr = _correlated()
-    res = pca_trajectories(tr, n_components=3, svd_solver=solver)
+    res = pca_trajectories(tr, k=3, svd_solver=solver)
     X = tr.states.reshape(-1, tr.state_size)
     # reference library: numpy.linalg.eigh of numpy.cov (unbiased, like scikit-learn)
     lam, vec = np.linalg.eigh(np.cov(X, rowvar=False))
@@ -76,7 +76,7 @@ def test_participation_ratio_of_isotropic_gaussian_is_its_dimension():
     d = 8
     gen = np.random.default_rng(3)
     tr = _trace(gen.normal(size=(40, 500, d)))
-    res = pca_trajectories(tr, n_components=2)
+    res = pca_trajectories(tr, k=2)
     # common practice (Gao et al. 2017): isotropic variance in d dimensions gives PR = d;
     # with 20 000 samples the estimate is within a few percent
     assert res.participation_ratio == pytest.approx(d, rel=0.03)
@@ -89,7 +89,7 @@ def test_participation_ratio_on_a_k_dimensional_subspace_is_at_most_k(k):
     basis = np.linalg.qr(gen.normal(size=(12, k)))[0]  # (S, k) orthonormal
     scales = np.array([3.0, 1.0, 0.5, 0.2])[:k]
     Z = gen.normal(size=(4, 300, k)) * scales
-    res = pca_trajectories(_trace(Z @ basis.T), n_components=k)
+    res = pca_trajectories(_trace(Z @ basis.T), k=k)
     # analytic: only k covariance eigenvalues are non-zero, so (Σλ)²/Σλ² <= k (Cauchy-Schwarz)
     assert res.participation_ratio <= k + 1e-9
     np.testing.assert_allclose(res.spectrum[k:], 0.0, atol=1e-10)
@@ -101,7 +101,7 @@ def test_participation_ratio_on_a_k_dimensional_subspace_is_at_most_k(k):
 def test_wide_states_with_few_samples_use_the_small_gram_matrix():
     gen = np.random.default_rng(0)
     tr = _trace(gen.normal(size=(2, 5, 30)))  # 10 states of 30 units
-    res = pca_trajectories(tr, n_components=4)
+    res = pca_trajectories(tr, k=4)
     X = tr.states.reshape(10, 30)
     # reference library: numpy.linalg.eigvalsh of numpy.cov
     lam = np.linalg.eigvalsh(np.cov(X, rowvar=False))[::-1]
@@ -116,7 +116,7 @@ def test_parts_and_projection_of_another_trace_into_the_same_basis():
     gen = np.random.default_rng(0)
     tr = hl.record(module, torch.tensor(gen.normal(size=(3, 30, 2)), dtype=torch.float32))
     other = hl.record(module, torch.tensor(gen.normal(size=(2, 12, 2)), dtype=torch.float32))
-    res = pca_trajectories(tr, n_components=2, parts="layer0.h")
+    res = pca_trajectories(tr, k=2, parts="layer0.h")
     np.testing.assert_array_equal(res.columns, np.arange(4))
     assert res.parts == ("layer0.h",)
     np.testing.assert_allclose(res.project(tr), res.projected, atol=1e-10)
@@ -126,7 +126,7 @@ def test_parts_and_projection_of_another_trace_into_the_same_basis():
     # flat states (e.g. fixed points) project by their full length S
     flat = other.states[0]  # (12, 8)
     np.testing.assert_allclose(res.project(flat), ref[:12], atol=1e-10)
-    both = pca_trajectories(tr, n_components=2, parts=["layer0.h", "layer0.c"])
+    both = pca_trajectories(tr, k=2, parts=["layer0.h", "layer0.c"])
     np.testing.assert_array_equal(both.columns, np.arange(8))
 
 
@@ -161,7 +161,7 @@ def test_result_is_frozen_read_only_and_leaves_the_trace_alone(dtype):
 
 
 def test_to_frame():
-    res = pca_trajectories(_correlated(B=2, T=5), n_components=2)
+    res = pca_trajectories(_correlated(B=2, T=5), k=2)
     df = res.to_frame()
     assert list(df.columns) == ["PC1", "PC2"] and df.shape == (10, 2)
     assert df.index.names == ["sample", "step"]
@@ -172,9 +172,10 @@ def test_to_frame():
 @pytest.mark.parametrize(
     ("kwargs", "match", "exc"),
     [
-        ({"n_components": 0}, "n_components must be an integer from 1 to 7", ValueError),
-        ({"n_components": 8}, "n_components must be an integer from 1 to 7", ValueError),
-        ({"n_components": 2.0}, "n_components must be an integer", ValueError),
+        ({"k": 0}, r"The 'k' option of pca_trajectories must be an int >= 1; got 0\.",
+         ValueError),
+        ({"k": 8}, r"k \(the number of components\) must be an integer from 1 to 7", ValueError),
+        ({"k": 2.0}, "The 'k' option of pca_trajectories must be an int >= 1; got 2.0", TypeError),
         ({"parts": "layer9"}, "no part named 'layer9'", ValueError),  # as elsewhere
         ({"parts": []}, "parts is empty", ValueError),
     ],
@@ -194,7 +195,7 @@ def test_bad_data_fails_clearly():
     with pytest.raises(ValueError, match="NaN or Inf"):
         pca_trajectories(_trace(states))
     with pytest.raises(ValueError, match="at least two states"):
-        pca_trajectories(_trace(np.ones((1, 1, 3))), n_components=1)
+        pca_trajectories(_trace(np.ones((1, 1, 3))), k=1)
 
 
 # ---------------------------------------------------------------------- plots
@@ -227,8 +228,8 @@ def test_plot_3d_with_other_traces_and_a_selection(agg, gru_run):
 
 def test_plot_options_fail_clearly(agg, gru_run):
     _, tr = gru_run
-    res = pca_trajectories(tr, n_components=2)
-    with pytest.raises(ValueError, match="refit with n_components=3"):
+    res = pca_trajectories(tr, k=2)
+    with pytest.raises(ValueError, match="refit with k=3"):
         res.plot(dims=3)
     with pytest.raises(ValueError, match="dims must be 2 or 3"):
         res.plot(dims=1)
@@ -246,3 +247,19 @@ def test_plot_options_fail_clearly(agg, gru_run):
 
 def test_public_name():
     assert hl.pca_trajectories is pca_trajectories
+
+
+# ---------------------------------------------------------------------- call forms
+def test_call_forms_agree_and_the_old_ones_warn():
+    tr = _correlated()
+    new = pca_trajectories(tr, k=2)
+    np.testing.assert_array_equal(pca_trajectories(None, tr, k=2).projected, new.projected)
+    with pytest.warns(DeprecationWarning, match="'n_components' option of pca_trajectories is "
+                                                "now called 'k'"):
+        old = pca_trajectories(tr, n_components=2)
+    with pytest.warns(DeprecationWarning, match="pass them by keyword"):
+        positional = pca_trajectories(tr, 2)
+    np.testing.assert_array_equal(old.projected, new.projected)
+    np.testing.assert_array_equal(positional.projected, new.projected)
+    with pytest.raises(TypeError, match="both 'n_components'"):
+        pca_trajectories(tr, k=2, n_components=2)

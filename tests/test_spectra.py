@@ -202,15 +202,16 @@ def test_model_left_unchanged(make, gen, snapshot):
 
 def test_bad_options(gru_trace):
     model, trace = gru_trace
-    with pytest.raises(ValueError, match=r"k must be an integer in \[1, 48\]"):
+    with pytest.raises(ValueError, match=r"The 'k' option of jacobian_spectra must be None or an "
+                                         r"int >= 1; got 0\."):
         hl.jacobian_spectra(model, trace, k=0)
     with pytest.raises(ValueError, match=r"k must be an integer in \[1, 48\]"):
         hl.jacobian_spectra(model, trace, k=49)
-    with pytest.raises(ValueError, match="method must be one of"):
+    with pytest.raises(ValueError, match="'method' option of jacobian_spectra must be one of"):
         hl.jacobian_spectra(model, trace, method="lanczos")
     with pytest.raises(ValueError, match=r"quantiles must be levels in \[0, 1\]"):
         hl.jacobian_spectra(model, trace, quantiles=[1.5])
-    with pytest.raises(ValueError, match=r"tol must be a number in \(0, 1\)"):
+    with pytest.raises(ValueError, match=r"'tol' option of jacobian_spectra must be a float in"):
         hl.jacobian_spectra(model, trace, k=2, tol=0)
     with pytest.raises(ValueError, match="sample must be in"):
         hl.jacobian_spectra(model, trace, k=2).plot(sample=7)

@@ -49,7 +49,7 @@ def test_run_analyses_pca_matches_direct_call(inputs):
     assert list(out) == ["pca"]
     trace = hiddenlens.record(model, inputs)
     np.testing.assert_array_equal(out.trace.states, trace.states)
-    direct = hiddenlens.pca_trajectories(trace, n_components=3)
+    direct = hiddenlens.pca_trajectories(trace, k=3)
     assert_allclose(out["pca"].explained_variance_ratio, direct.explained_variance_ratio)
     assert out.options["pca"] == {"n_components": 3}
     assert out.seconds["pca"] >= 0 and out.skipped == {}
@@ -62,7 +62,7 @@ def test_run_analyses_reuses_a_given_trace(inputs):
 
 
 def test_run_analyses_options_override_defaults(inputs):
-    out = run_analyses(_rnn(), inputs, which=["pca"], options={"pca": {"n_components": 2}})
+    out = run_analyses(_rnn(), inputs, which=["pca"], options={"pca": {"k": 2}})
     assert out["pca"].projected.shape == (3, 40, 2)
 
 
@@ -70,10 +70,11 @@ def test_memory_in_data_mode_drops_the_probe_budget(inputs):
     if "memory" not in available_analyses():
         pytest.skip("memory_curve is not available")
     model = _rnn()
+    trace = hiddenlens.record(model, inputs)
     out = run_analyses(model, inputs, which=["memory"],
-                       options={"memory": {"inputs": inputs, "max_lag": 3}})
+                       options={"memory": {"trace": trace, "max_lag": 3}})
     assert "n_steps" not in out.options["memory"]
-    direct = hiddenlens.memory_curve(model, inputs, max_lag=3, seed=0)
+    direct = hiddenlens.memory_curve(model, trace, max_lag=3, seed=0)
     assert out["memory"].mode == "data"
     assert_allclose(out["memory"].scores, direct.scores)
 

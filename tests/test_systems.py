@@ -12,8 +12,6 @@ from torch import nn
 import hiddenlens as hl
 from hiddenlens._systems import fingerprint
 
-pytestmark = pytest.mark.usefixtures("one_thread")
-
 KINDS = {
     "rnn_tanh": (nn.RNN, {"nonlinearity": "tanh"}),
     "rnn_relu": (nn.RNN, {"nonlinearity": "relu"}),

@@ -14,8 +14,6 @@ from torch import nn
 import hiddenlens as hl
 from hiddenlens._trace import Trace, load_trace
 
-pytestmark = pytest.mark.usefixtures("one_thread")
-
 
 @pytest.fixture
 def system(make, gen):

@@ -8,8 +8,6 @@ import torch
 
 from hiddenlens._validation import as_dtype, as_float_tensor, as_sequences, check_finite, describe
 
-pytestmark = pytest.mark.usefixtures("one_thread")
-
 
 @pytest.mark.parametrize("given, expected", [
     ("float32", torch.float32), ("float64", torch.float64), (torch.float64, torch.float64),

@@ -25,7 +25,7 @@ from hiddenlens._summary import analysis_function, key_figures, summary_sentence
 from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
 from hiddenlens.widgets._jobs import Cache, Runner, Step  # noqa: E402
 
-pytestmark = pytest.mark.usefixtures("one_thread", "one_blas_thread")
+pytestmark = pytest.mark.usefixtures("one_blas_thread")
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
 _MODULES = {"pca": "_pca", "lyapunov": "_lyapunov", "fixed_points": "_fixed_points",
