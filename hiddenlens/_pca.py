@@ -245,8 +245,10 @@ def pca_trajectories(
         k, the number of components to keep (the participation ratio and the 90%/95% counts use
         the whole spectrum regardless).
     parts : str or sequence of str, optional
-        Parts of the state to analyse (e.g. ``"layer1.h"``); the whole flat state by default.
-        Parts with different scales (an LSTM's h and c) are best analysed one at a time.
+        Parts of the state to analyse (e.g. ``"layer1.h"``). Default: the whole flat state,
+        except for an LSTM (parts ``"layer<k>.h"`` and ``"layer<k>.c"``), where the h parts
+        only: h and c have different scales, and mixing them lets the larger c dominate the
+        axes. Pass both parts by name to fit them together.
     svd_solver : str, optional
         Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
         D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
@@ -278,6 +280,8 @@ def pca_trajectories(
         raise TypeError(f"trace must be a hiddenlens Trace, got {type(trace).__name__}; record "
                         "one with hiddenlens.record(model, inputs)")
     names = None if parts is None else ((parts,) if isinstance(parts, str) else tuple(parts))
+    if names is None:
+        names = _default_parts(trace)
     cols = trace.columns(names)  # (D,)
     B, T, _ = trace.states.shape
     X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
@@ -313,6 +317,16 @@ def pca_trajectories(
 
 
 # ---------------------------------------------------------------------- computing
+def _default_parts(trace: Trace) -> tuple[str, ...] | None:
+    """The h parts of an LSTM trace (which also holds c parts); None (all) otherwise."""
+    names = list(trace.parts)
+    cells = [n for n in names if n.endswith(".c")]
+    hidden = [n for n in names if n.endswith(".h")]
+    if cells and hidden and len(cells) + len(hidden) == len(names):
+        return tuple(hidden)
+    return None
+
+
 def _has_covariance_eigh() -> bool:
     """scikit-learn >= 1.5 offers the "covariance_eigh" PCA solver."""
     import sklearn
