@@ -376,3 +376,16 @@ def test_plot_needs_axes_for_wide_states(agg):
 def test_result_type_is_exported():
     assert hl.find_fixed_points is find_fixed_points
     assert FixedPoints.__dataclass_params__.frozen
+
+
+def test_points_report_their_distance_to_the_recorded_states():
+    # a linear contraction s -> 0.5 s + x with x = 3: the fixed point 6 lies far outside the
+    # recorded states of inputs near 0 (common practice: s* = x / (1 - a))
+    step = hl.wrap(lambda s, x: 0.5 * s + x, state_size=1, input_size=1,
+                           dtype=torch.float64)
+    x = 0.1 * np.random.default_rng(0).standard_normal((2, 20, 1))
+    tr = hl.record(step, x)
+    fp = hl.find_fixed_points(step, tr, np.array([3.0]), n_starts=8)
+    assert len(fp) == 1 and fp.outside.tolist() == [True]
+    np.testing.assert_allclose(fp.points[0, 0], 6.0, atol=1e-6)
+    np.testing.assert_allclose(fp.distance_to_states[0], 6.0 - tr.states.max(), atol=1e-6)
