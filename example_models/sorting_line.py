@@ -24,13 +24,16 @@ __all__ = [
     "BINS",
     "IGNORE",
     "N_INPUTS",
+    "CueTrials",
     "SortingLineData",
     "SortingLineNet",
     "accuracy",
+    "cue_events",
     "make_dataset",
     "make_gru",
     "make_inputs",
     "make_tanh_rnn",
+    "make_trials",
 ]
 
 BINS: tuple[str, ...] = ("red", "green", "yellow")
@@ -139,6 +142,90 @@ def make_dataset(
     inputs[:, :, _VIBRATION] += vibration
     inputs += _SENSOR_NOISE_STD * rng.standard_normal(inputs.shape)
     return SortingLineData(inputs.astype(np.float32), targets, delays)
+
+
+class CueTrials(NamedTuple):
+    """Sorting-line trials with one crate each, and the task variables to decode.
+
+    Attributes
+    ----------
+    inputs : ndarray of shape (B, T, 5), float32
+    colour : ndarray of shape (B,), int64
+        The tag colour (bin index) of the sequence's crate.
+    onset : ndarray of shape (B,), int64
+        The step of the tag flash.
+    cue : ndarray of shape (B,), int64
+        The step of the gate cue, -1 when the trial has none.
+    """
+
+    inputs: np.ndarray
+    colour: np.ndarray
+    onset: np.ndarray
+    cue: np.ndarray
+
+
+def make_trials(
+    n_sequences: int = 96,
+    n_steps: int = 80,
+    *,
+    seed: int = 0,
+    first_onset: int = 5,
+    last_onset: int = 15,
+    delay: int | None = None,
+) -> CueTrials:
+    """One crate per sequence: a tag flash at a random onset, then (optionally) its gate cue.
+
+    The belt vibration and sensor noise are those of :func:`make_dataset`. Decode ``colour``
+    from the states at each step after ``onset`` (``hiddenlens.task_memory``) to see how long a
+    network keeps the tag.
+
+    Parameters
+    ----------
+    n_sequences, n_steps : int
+    seed : int
+        Seed of the private ``np.random.default_rng``.
+    first_onset, last_onset : int
+        Range (inclusive) of the tag-flash step.
+    delay : int, optional
+        Steps from flash to gate cue; None: no cue, the tag must be kept to the end.
+    """
+    n_seq = _check_count("n_sequences", n_sequences, 1, 96)
+    n_t = _check_count("n_steps", n_steps, 2, 80)
+    lo = _check_count("first_onset", first_onset, 0, 5)
+    hi = _check_count("last_onset", last_onset, lo, 15)
+    if hi >= n_t:
+        raise ValueError(f"last_onset={hi} is not inside the {n_t} steps; pass a smaller "
+                         "last_onset or a larger n_steps")
+    if delay is not None:
+        delay = _check_count("delay", delay, 1, 30)
+    base = make_dataset(n_seq, n_t, seed=seed, min_delay=n_t, max_delay=n_t)
+    inputs = base.inputs.copy()  # vibration and noise, no crate (every delay is too long)
+    rng = np.random.default_rng(_check_seed(seed) + 1)
+    colour = rng.integers(len(BINS), size=n_seq)
+    onset = rng.integers(lo, hi + 1, size=n_seq)
+    rows = np.arange(n_seq)
+    inputs[rows, onset, colour] += 1.0
+    cue = np.full(n_seq, -1, dtype=np.int64)
+    if delay is not None:
+        cue = onset + delay
+        inside = cue < n_t
+        inputs[rows[inside], cue[inside], _CUE] += 1.0
+        cue = np.where(inside, cue, -1)
+    return CueTrials(inputs, colour.astype(np.int64), onset.astype(np.int64), cue)
+
+
+def cue_events(data: SortingLineData) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The crates of a :func:`make_dataset` batch as events.
+
+    Returns
+    -------
+    sequence, onset, colour, delay : ndarrays of shape (n_events,), int64
+        For each crate: its sequence, the step of its tag flash, its colour and the steps to
+        its gate cue.
+    """
+    seq, cue_step = np.nonzero(np.asarray(data.targets) != IGNORE)
+    delay = np.asarray(data.delays)[seq, cue_step]
+    return seq, cue_step - delay, np.asarray(data.targets)[seq, cue_step], delay
 
 
 def make_inputs(n_sequences: int = 16, n_steps: int = 200, *, seed: int = 0) -> np.ndarray:

@@ -88,6 +88,11 @@ class FixedPoints(Result):
         What the system was made from.
     trace : Trace or None
         The trace the starts were sampled from; ``.plot()`` draws on its PCA axes by default.
+    distance_to_states : ndarray of shape (n,) or None
+        With a trace: each point's Euclidean distance to the nearest recorded state.
+    outside : ndarray of shape (n,), bool, or None
+        With a trace: the point lies outside the box of the recorded states (widened by 10% of
+        each unit's range), a region the network's own trajectories do not reach.
 
     Notes
     -----
@@ -118,6 +123,8 @@ class FixedPoints(Result):
     parts: Mapping[str, slice]
     source: str
     trace: Any = None
+    distance_to_states: np.ndarray | None = None
+    outside: np.ndarray | None = None
 
     # ------------------------------------------------------------------ summaries
     def __len__(self) -> int:
@@ -411,7 +418,29 @@ def find_fixed_points(
         parts=frozen_mapping(system.parts),
         source=system.source,
         trace=trace,
+        **_reach(P, trace),
     )
+
+
+def _reach(P: torch.Tensor, trace: Any) -> dict[str, Any]:
+    """Each point's Euclidean distance to the nearest recorded state, and whether it lies
+    outside the box of the recorded states (widened by 10% of each unit's range): a point the
+    network's own trajectories cannot reach says little about them."""
+    if trace is None or not hasattr(trace, "states"):
+        return {}
+    X = np.asarray(trace.states, dtype=np.float64).reshape(-1, trace.state_size)  # (B*T, S)
+    pts = np.asarray(P.detach().cpu().numpy(), dtype=np.float64)  # (m, S)
+    if pts.shape[0] == 0 or X.shape[1] != pts.shape[1]:
+        return {}
+    lo, hi = X.min(axis=0), X.max(axis=0)
+    pad = 0.1 * (hi - lo)
+    outside = np.any((pts < lo - pad) | (pts > hi + pad), axis=1)
+    dist = np.empty(pts.shape[0])
+    for i in range(0, pts.shape[0], 256):  # chunks of (256, B*T) distances
+        chunk = pts[i:i + 256]
+        d2 = (chunk**2).sum(1)[:, None] - 2 * chunk @ X.T + (X**2).sum(1)[None, :]
+        dist[i:i + 256] = np.sqrt(np.clip(d2.min(axis=1), 0.0, None))
+    return {"distance_to_states": readonly(dist), "outside": readonly(outside)}
 
 
 # ---------------------------------------------------------------------- inputs

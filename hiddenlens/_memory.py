@@ -88,6 +88,10 @@ class MemoryCurve(Result):
     categorical : bool
     metadata : Mapping[str, Any]
         Sizes, model class, split of the folds, impulse times and the like.
+    weighted_scores : ndarray of shape (K + 1,) or None
+        Decoding with real-valued inputs: the variance-weighted R^2 (features weighted by their
+        variance over the decoded rows, as scikit-learn's ``multioutput="variance_weighted"``),
+        beside the per-feature mean in ``scores``.
 
     Notes
     -----
@@ -117,10 +121,11 @@ class MemoryCurve(Result):
     feature_scores: np.ndarray | None = None
     alphas: np.ndarray | None = None
     categorical: bool = False
+    weighted_scores: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         for name in ("lags", "scores", "spread", "samples", "baseline", "baseline_spread",
-                     "feature_scores", "alphas"):
+                     "feature_scores", "alphas", "weighted_scores"):
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, readonly(value))
@@ -564,6 +569,20 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
                                                     progress)
     scores = fold_scores.mean(axis=0)
     adjusted = scores if chance is None else (scores - chance) / (1.0 - chance)
+    weighted = None
+    if not categorical:
+        var = inputs[:, t_start - K:].reshape(-1, inputs.shape[2]).var(axis=0)  # (I,)
+        if var.sum() > 0:
+            weighted = feature_scores @ var / var.sum()  # (K + 1,)
+        if np.nanmin(scores) < -1:
+            import warnings
+
+            warnings.warn(
+                f"the decoders score test R^2 down to {np.nanmin(scores):.3g} (below -1: "
+                "worse than predicting the mean); the states may lie far outside what the "
+                "readout saw in training (probe inputs pushing the state out of its usual "
+                "range, or too few rows): decode the model's own inputs (mode='data') or "
+                "lower scale", RuntimeWarning, stacklevel=3)
     base = base_spread = base_cap = None
     if opts["mode"] == "data":
         w = opts["baseline_window"]
@@ -587,7 +606,7 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
         score_name="balanced accuracy" if categorical else "test R²",
         baseline=base, baseline_spread=base_spread, baseline_capacity=base_cap, chance=chance,
         feature_scores=None if categorical else feature_scores, alphas=chosen,
-        categorical=categorical, metadata=meta,
+        categorical=categorical, metadata=meta, weighted_scores=weighted,
     )
 
 

@@ -213,8 +213,9 @@ CONSTRAINTS: dict[str, dict[str, tuple[Constraint, ...]]] = {
         "seed": SEED, "k": (Interval("int", 1, None),), "threads": THREADS,
     },
     "find_fixed_points": {
-        **_COMMON, "threads": THREADS, "n_starts": POSITIVE_INT,
-        "max_iter": (Interval("int", 0, None),), "noise": NON_NEGATIVE,
+        # n_starts and max_iter default to None: sized from the state (see find_fixed_points)
+        **_COMMON, "threads": THREADS, "n_starts": (NONE, *POSITIVE_INT),
+        "max_iter": (NONE, Interval("int", 0, None)), "noise": NON_NEGATIVE,
         "fixed_tol": (NONE, *NON_NEGATIVE), "tol": (NONE, *NON_NEGATIVE),
         "slow_tol": NON_NEGATIVE, "distance_tol": NON_NEGATIVE, "marginal_tol": NON_NEGATIVE,
     },

@@ -264,8 +264,10 @@ def pca_trajectories(
         positional ``pca_trajectories(trace, 3, parts)`` still work for one release with a
         DeprecationWarning.
     parts : str or sequence of str, optional
-        Parts of the state to analyse (e.g. ``"layer1.h"``); the whole flat state by default.
-        Parts with different scales (an LSTM's h and c) are best analysed one at a time.
+        Parts of the state to analyse (e.g. ``"layer1.h"``). Default: the whole flat state,
+        except for an LSTM (parts ``"layer<k>.h"`` and ``"layer<k>.c"``), where the h parts
+        only: h and c have different scales, and mixing them lets the larger c dominate the
+        axes. Pass both parts by name to fit them together.
     svd_solver : str, optional
         Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
         D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
@@ -300,6 +302,8 @@ def pca_trajectories(
     seed = int_seed(seed)
     n_components = k
     names = None if parts is None else ((parts,) if isinstance(parts, str) else tuple(parts))
+    if names is None:
+        names = _default_parts(trace)
     try:
         cols = trace.columns(names)  # (D,)
     except KeyError as err:  # an unknown part is a bad option value, as elsewhere
@@ -381,6 +385,14 @@ def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: 
             parts = positional[1]
     k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
     return given, (3 if k is None else k), parts
+def _default_parts(trace: Trace) -> tuple[str, ...] | None:
+    """The h parts of an LSTM trace (which also holds c parts); None (all) otherwise."""
+    names = list(trace.parts)
+    cells = [n for n in names if n.endswith(".c")]
+    hidden = [n for n in names if n.endswith(".h")]
+    if cells and hidden and len(cells) + len(hidden) == len(names):
+        return tuple(hidden)
+    return None
 
 
 def _has_covariance_eigh() -> bool:

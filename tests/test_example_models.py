@@ -337,3 +337,25 @@ def test_package_docstring_describes_the_scenario():
     for word in ("Sorting line", "Greenhouse", "rnn-gain2.0",
                  "python -m hiddenlens.examples.train"):
         assert word in doc
+
+
+def test_cue_trials_ship_their_task_variables():
+    trials = sl.make_trials(12, 50, seed=3, delay=20)
+    B = 12
+    assert trials.inputs.shape == (B, 50, sl.N_INPUTS) and trials.colour.shape == (B,)
+    flash = trials.inputs[np.arange(B), trials.onset, :3]  # (B, 3)
+    assert np.all(flash.argmax(axis=1) == trials.colour)
+    assert np.all(trials.inputs[np.arange(B), trials.cue, 3] > 0.5)
+    assert np.all(trials.cue == trials.onset + 20)
+    again = sl.make_trials(12, 50, seed=3, delay=20)
+    np.testing.assert_array_equal(again.inputs, trials.inputs)
+    with pytest.raises(ValueError, match="last_onset"):
+        sl.make_trials(4, 10, last_onset=12)
+
+
+def test_cue_events_match_the_dataset():
+    data = sl.make_dataset(4, 120, seed=2)
+    seq, onset, colour, delay = sl.cue_events(data)
+    assert seq.size == int((data.targets != sl.IGNORE).sum())
+    assert np.all(data.inputs[seq, onset, colour] > 0.5)  # the tag flash of each crate
+    assert np.all(data.inputs[seq, onset + delay, 3] > 0.5)  # its gate cue

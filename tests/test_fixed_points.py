@@ -409,10 +409,21 @@ def test_find_fixed_points_on_module_step_function_with_trainable_parameters(dty
 def test_find_fixed_points_accepts_numpy_scalar_tolerances_and_refuses_negative_ones():
     system = _map(lambda s, x: 0.5 * s, 2)
     trace = _trace(system, np.ones((1, 2)))
-    fp = find_fixed_points(system, trace, tol=np.float64(1e-10), slow_tol=np.float32(1e-5),
+    fp = find_fixed_points(system, trace, fixed_tol=np.float64(1e-10), slow_tol=np.float32(1e-5),
                            distance_tol=np.float64(1e-3), n_starts=3)
     assert fp.n_fixed == 1
-    for bad in ({"tol": -1e-9}, {"slow_tol": np.float64(-1.0)}, {"tol": float("nan")},
-                {"marginal_tol": np.inf}):
-        with pytest.raises(ValueError, match="must be a number >= 0"):
+    for bad in ({"fixed_tol": -1e-9}, {"slow_tol": np.float64(-1.0)},
+                {"fixed_tol": float("nan")}, {"marginal_tol": np.inf}):
+        with pytest.raises(ValueError, match="must be a number >= 0|option of find_fixed_points"):
             find_fixed_points(system, trace, n_starts=3, **bad)
+def test_points_report_their_distance_to_the_recorded_states():
+    # a linear contraction s -> 0.5 s + x with x = 3: the fixed point 6 lies far outside the
+    # recorded states of inputs near 0 (common practice: s* = x / (1 - a))
+    step = hl.wrap(lambda s, x: 0.5 * s + x, state_size=1, input_size=1,
+                           dtype=torch.float64)
+    x = 0.1 * np.random.default_rng(0).standard_normal((2, 20, 1))
+    tr = hl.record(step, x)
+    fp = hl.find_fixed_points(step, tr, np.array([3.0]), n_starts=8)
+    assert len(fp) == 1 and fp.outside.tolist() == [True]
+    np.testing.assert_allclose(fp.points[0, 0], 6.0, atol=1e-6)
+    np.testing.assert_allclose(fp.distance_to_states[0], 6.0 - tr.states.max(), atol=1e-6)

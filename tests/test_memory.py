@@ -502,3 +502,15 @@ def test_the_inputs_form_warns_and_gives_the_same_curve():
         kw = memory_curve(system, inputs=x, max_lag=4)
     np.testing.assert_array_equal(old.scores, new.scores)
     np.testing.assert_array_equal(kw.scores, new.scores)
+def test_variance_weighted_r2_beside_the_mean():
+    # one feature: the variance-weighted R^2 (scikit-learn's multioutput="variance_weighted")
+    # equals the plain R^2; with a feature of zero memory it weights by variance
+    W = 0.5 * orthogonal(8, 1)
+    curve = memory_curve(reservoir(W, np.ones(8)), max_lag=4, n_sequences=5, n_steps=300)
+    np.testing.assert_allclose(curve.weighted_scores, curve.scores)
+    x = np.random.default_rng(0).standard_normal((6, 300, 2)) * np.array([1.0, 3.0])
+    system = as_system(reservoir(W, np.ones((8, 2))))
+    two = memory_curve(system, hiddenlens.record(system, x), max_lag=4)
+    assert two.weighted_scores.shape == (5,)
+    w = np.array([1.0, 9.0])
+    np.testing.assert_allclose(two.weighted_scores, two.feature_scores @ w / w.sum(), rtol=0.05)

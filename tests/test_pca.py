@@ -263,3 +263,12 @@ def test_call_forms_agree_and_the_old_ones_warn():
     np.testing.assert_array_equal(positional.projected, new.projected)
     with pytest.raises(TypeError, match="both 'n_components'"):
         pca_trajectories(tr, k=2, n_components=2)
+def test_lstm_default_fits_h_only():
+    # h and c have different scales; the default keeps to h (common practice: analyse one
+    # kind of state at a time)
+    lstm = torch.nn.LSTM(3, 6, batch_first=True)
+    x = np.random.default_rng(0).standard_normal((4, 30, 3)).astype(np.float32)
+    tr = hl.record(lstm, x)
+    res = pca_trajectories(tr, k=2)
+    assert res.parts == ("layer0.h",)
+    np.testing.assert_array_equal(res.columns, tr.columns("layer0.h"))

@@ -1,0 +1,59 @@
+"""Benchmark: task_memory against the time of recording the states it decodes.
+
+Targets: H=256, T=500, B=256, max_lag=100 within 20x the recording time; with the 100x100
+cross-temporal matrix within 60x. Prints the ratios measured in this run and the load average.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+
+import numpy as np
+import torch
+
+import hiddenlens
+
+H, T, B, I, MAX_LAG = 256, 500, 256, 4, 100
+
+
+def main() -> None:
+    gen = torch.Generator().manual_seed(0)
+    gru = torch.nn.GRU(I, H, batch_first=True)
+    with torch.no_grad():
+        for p in gru.parameters():
+            p.copy_(torch.randn(p.shape, generator=gen) / np.sqrt(H))
+    rng = np.random.default_rng(0)
+    cues = rng.integers(3, size=B)
+    onsets = rng.integers(0, T - MAX_LAG - 1, size=B)
+    x = 0.1 * rng.standard_normal((B, T, I)).astype(np.float32)
+    x[np.arange(B), onsets, cues] += 2.0
+
+    t0 = time.perf_counter()
+    trace = hiddenlens.record(gru, x)
+    t_record = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    r = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG, cross_temporal=False)
+    t_curve = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    rc = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG)
+    t_cross = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    hiddenlens.task_memory(trace, cues.astype(float), onsets=onsets, max_lag=MAX_LAG)
+    t_ridge = time.perf_counter() - t0
+
+    print(f"load average {os.getloadavg()}, torch threads {torch.get_num_threads()}")
+    print(f"record H={H} T={T} B={B}: {t_record:.2f} s")
+    print(f"task_memory logistic, max_lag={MAX_LAG}: {t_curve:.2f} s = "
+          f"{t_curve / t_record:.1f}x recording (target 20x); span {r.span}")
+    print(f"task_memory logistic + cross-temporal {MAX_LAG + 1}x{MAX_LAG + 1}: {t_cross:.2f} s "
+          f"= {t_cross / t_record:.1f}x recording (target 60x); span {rc.span}")
+    print(f"task_memory ridge + cross-temporal: {t_ridge:.2f} s = "
+          f"{t_ridge / t_record:.1f}x recording")
+
+
+if __name__ == "__main__":
+    main()
