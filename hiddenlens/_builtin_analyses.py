@@ -30,28 +30,22 @@ Runs = Sequence[tuple[str, Any]]
 
 
 # ---------------------------------------------------------------------- call adapters
-def _call_lyapunov(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
-    # lyapunov_spectrum(system, inputs): driven by the recorded inputs
-    import torch
-
-    x = torch.tensor(trace.inputs, dtype=system.dtype)  # (B, T, I), a private copy
-    return fn(system, x, **opts)
-
-
-def _call_pca(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
-    return fn(trace, **opts)  # pca_trajectories(trace)
-
-
 def _call_memory(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
     # probe mode unless the caller gives the data: i.i.d. probes keep the inputs' own
-    # autocorrelation out of the curve
-    return fn(system, **opts)  # memory_curve(system, inputs=None)
+    # autocorrelation out of the curve. Data mode: the recorded trace, or sequences given as
+    # options={"memory": {"inputs": x}} (recorded here, once)
+    data = opts.pop("inputs", None)
+    if data is not None:
+        from ._record import record
+
+        return fn(system, record(system, data), **opts)
+    if opts.get("mode") == "data":
+        return fn(system, trace, **opts)
+    return fn(system, **opts)  # memory_curve(system): probe mode
 
 
 #: analysis -> adapter(function, system, trace, **options); absent: function(system, trace, ...)
 ADAPTERS: dict[str, Callable[..., Any]] = {
-    "lyapunov": _call_lyapunov,
-    "pca": _call_pca,
     "memory": _call_memory,
 }
 
@@ -78,7 +72,7 @@ def _budget_lyapunov(system: Any, trace: Any, seed: int) -> dict[str, Any]:
 
 
 def _budget_pca(system: Any, trace: Any, seed: int) -> dict[str, Any]:
-    return {"n_components": min(3, trace.state_size, trace.batch_size * trace.n_steps)}
+    return {"k": min(3, trace.state_size, trace.batch_size * trace.n_steps)}
 
 
 def _budget_fixed_points(system: Any, trace: Any, seed: int) -> dict[str, Any]:

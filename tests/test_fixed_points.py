@@ -314,10 +314,10 @@ def test_keyboard_interrupt_propagates_and_leaves_nothing_changed():
     ("kwargs", "match"),
     [
         ({"x": np.zeros(2)}, r"x is the constant input x\* and must have shape \(1,\)"),
-        ({"n_starts": 0}, "'n_starts' option of find_fixed_points must be an int >= 1"),
+        ({"n_starts": 0}, "'n_starts' option of find_fixed_points must be None or an int >= 1"),
         ({"fixed_tol": -1.0}, "'fixed_tol' option of find_fixed_points must be None or a float"),
         ({"noise": "big"}, "'noise' option of find_fixed_points must be a float >= 0"),
-        ({"max_iter": 1.5}, "'max_iter' option of find_fixed_points must be an int >= 0"),
+        ({"max_iter": 1.5}, "'max_iter' option of find_fixed_points must be None or an int >= 0"),
         ({"starts": np.zeros((3, 2))}, r"starts must have shape \(n_starts, 1\)"),
     ],
 )
