@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from ._compare import RunComparison, plot_cka, plot_overlay
+from ._diagnosis import Diagnosis, describe_figure, diagnose
 from ._figures import (
     array_summaries,
     describe_inputs,
@@ -70,6 +71,9 @@ th{background:#f3f3f3}td.text,th.text{text-align:left}
 figure{display:inline-block;margin:.4em;vertical-align:top}
 figure img{max-width:100%;height:auto;border:1px solid #eee}
 figcaption{font-size:.85em;color:#555;text-align:center}
+nav.toc{background:#f7f7f7;padding:.4em 1em;font-size:.92em}nav.toc ul{margin:.2em 0}
+.level-ok{color:#0072B2}.level-marginal{color:#E69F00}.level-failing{color:#D55E00}
+.level-unknown{color:#555}
 code{background:#f4f4f4;padding:0 .2em}
 """
 
@@ -112,10 +116,28 @@ def _setting(spec: AnalysisSpec, results: Mapping[str, Any]) -> str:
         return ""
 
 
-def _img(b64: str, caption: str) -> str:
-    alt = html.escape(caption, quote=True)
+def _img(b64: str, caption: str, alt: str | None = None) -> str:
+    alt = html.escape(alt or caption, quote=True)
     return (f'<figure><img src="data:image/png;base64,{b64}" alt="{alt}">'
             f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+def _result_alt(spec: AnalysisSpec, result: Any, label: str) -> str:
+    """Alt text for a figure of one result: its label and the result's key figures in words."""
+    try:
+        figs = key_figures({spec.name: result})
+    except (AttributeError, TypeError, ValueError, KeyError):
+        figs = {}
+    limit = figs.get("memory_max_lag")
+    said = []
+    for k, v in figs.items():
+        if k == "memory_max_lag":
+            continue
+        try:
+            said.append(describe_figure(k, v, limit=limit))
+        except (TypeError, ValueError):
+            said.append(f"{k.replace('_', ' ')} {format_figure(k, v)}")
+    return f"Figure: {label}" + (" \u2014 " + "; ".join(said) if said else "")
 
 
 def _close_stray_pyplot_figures(before: set[int]) -> None:
@@ -271,6 +293,18 @@ def _cka_table(comp: RunComparison) -> str:
     return f"<table>{head}{rows}</table>"
 
 
+def _option_words(v: Any) -> str:
+    if v is None:
+        return "automatic"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, str):
+        return v
+    if isinstance(v, (list, tuple)):
+        return ", ".join(_option_words(x) for x in v) or "none"
+    return repr(v) if not isinstance(v, (int, float, np.integer, np.floating)) else f"{v:g}"
+
+
 def _options_block(runs: Mapping[str, Any]) -> str:
     items = []
     for n, res in runs.items():
@@ -279,10 +313,78 @@ def _options_block(runs: Mapping[str, Any]) -> str:
         if not opts:
             continue
         for a, o in opts.items():
-            kw = ", ".join(f"{k}={v!r}" for k, v in o.items()) or "defaults"
+            kw = ", ".join(f"{str(k).replace('_', ' ')} {_option_words(v)}"
+                           for k, v in o.items()) or "defaults"
             t = f" ({secs[a]:.2f} s)" if a in secs else ""
-            items.append(f"<li>{_esc(n)} \u00b7 {_esc(a)}: <code>{_esc(kw)}</code>{_esc(t)}</li>")
+            items.append(f"<li>{_esc(n)} \u00b7 {_esc(a)}: {_esc(kw)}{_esc(t)}</li>")
     return f"<ul>{''.join(items)}</ul>" if items else "<p>Defaults.</p>"
+
+
+def _run_anchor(i: int) -> str:
+    # by position: run names come from users and need not make valid ids
+    return f"run-{i + 1}"
+
+
+def _check_task_map(task: Any, runs: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
+    """``task`` as run name -> metrics; one metrics dict is taken for a single run."""
+    if task is None:
+        return {}
+    if not isinstance(task, Mapping):
+        raise TypeError("task must be a mapping run name -> task metrics (accuracy, chance, "
+                        f"loss, horizon...), got {type(task).__name__}")
+    names = list(runs)
+    if len(names) == 1 and task and not any(k in runs for k in task) \
+            and not all(isinstance(v, Mapping) for v in task.values()):
+        return {names[0]: task}
+    unknown = [str(k) for k in task if k not in runs]
+    if unknown:
+        raise ValueError(f"task names runs that are not in the report: {', '.join(unknown)}; "
+                         f"the runs are {', '.join(names)}")
+    bad = [str(k) for k, v in task.items() if v is not None and not isinstance(v, Mapping)]
+    if bad:
+        raise TypeError(f"task metrics must be mappings (e.g. {{'accuracy': 0.97}}); not so "
+                        f"for {', '.join(bad)}")
+    return {str(k): v for k, v in task.items() if v is not None}
+
+
+def _diagnoses(runs: Mapping[str, Mapping[str, Any]], task: Mapping[str, Mapping[str, Any]]
+               ) -> dict[str, Diagnosis]:
+    """One diagnosis per run, from its key figures, options and task metrics."""
+    out = {}
+    for n, res in runs.items():
+        settings = {a: dict(o) for a, o in (getattr(res, "options", None) or {}).items()
+                    if isinstance(o, Mapping)}
+        out[n] = diagnose(key_figures(res), task=task.get(n), name=n, settings=settings)
+    return out
+
+
+def _diagnosis_section(diags: Mapping[str, Diagnosis], runs: Mapping[str, Any],
+                       has_task: bool) -> str:
+    items = []
+    for i, (n, d) in enumerate(diags.items()):
+        extra = "".join(f'<li class="caution">{_esc(w)}</li>' for w in d.warnings)
+        extra += "".join(f"<li>Worth trying: {_esc(t)}</li>" for t in d.suggestions)
+        body = d.text[len(f"{n}: "):] if d.text.startswith(f"{n}: ") else d.text
+        items.append(
+            f'<li id="{_run_anchor(i)}" class="diagnosis"><b>{_esc(n)}</b>: '
+            f'<span class="level-{_esc(d.level)}">{_esc(body)}</span>'
+            + (f"<ul>{extra}</ul>" if extra else "") + "</li>")
+    note = "" if has_task else (
+        '<p class="meta">No task metrics were given: the lines read the analyses alone. Pass '
+        "the measured accuracy or loss (and the task's horizon) to read them against the "
+        "task.</p>")
+    return (f'<section id="diagnosis"><h2>Diagnosis</h2><ul>{"".join(items)}</ul>{note}'
+            "</section>")
+
+
+def _toc(entries: Iterable[tuple[str, str]], runs: Iterable[str]) -> str:
+    run_links = "".join(f'<li><a href="#{_run_anchor(i)}">{_esc(n)}</a></li>'
+                        for i, n in enumerate(runs))
+    links = "".join(
+        f'<li><a href="#{_esc(anchor)}">{_esc(text)}</a>'
+        + (f"<ul>{run_links}</ul>" if anchor == "diagnosis" else "") + "</li>"
+        for anchor, text in entries)
+    return f'<nav class="toc" aria-label="Contents"><b>Contents</b><ul>{links}</ul></nav>'
 
 
 def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
@@ -307,7 +409,9 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
         if progress:
             progress(f"figure: {a} (overlay)")
         out.append(_img(_png(lambda ax: plot_overlay(a, present, ax=ax)),
-                        f"{spec.title}: all runs"))
+                        f"{spec.title}: all runs",
+                        f"Figure: {spec.title} of the runs {', '.join(present)} drawn "
+                        "together, one line style and marker per run"))
         n_img += 1
     for n, res in present.items():
         if progress:
@@ -315,7 +419,7 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
         for caption, b64 in _result_pngs(spec, res, runs[n], extras=not multi):
             n_img += 1
             label = " \u00b7 ".join(c for c in ((n if multi else spec.title), caption) if c)
-            out.append(_img(b64, label))
+            out.append(_img(b64, label, _result_alt(spec, res, label)))
     out += [f'<p class="note">{_esc(n)}: skipped \u2014 {_esc(r)}</p>' for n, r in why.items()]
     out.append("</section>")
     return out, n_img
@@ -323,7 +427,8 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
 
 def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None, *,
                 title: str, inputs_description: str | None, notes: Iterable[str],
-                progress: Any) -> tuple[str, int]:
+                progress: Any, task: Mapping[str, Mapping[str, Any]] | None = None
+                ) -> tuple[str, int]:
     names = list(runs)
     multi = len(names) > 1
     skipped = {n: dict(getattr(r, "skipped", {}) or {}) for n, r in runs.items()}
@@ -337,6 +442,11 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
         f'<p class="meta">hiddenlens {_esc(__version__)} \u00b7 written '
         f"{_esc(_dt.datetime.now().astimezone().isoformat(timespec='seconds'))}</p>",
     ]
+    task = task or {}
+    diags = _diagnoses(runs, task)
+    toc_at = len(out)
+    # diagnosis first
+    out.append(_diagnosis_section(diags, runs, bool(task)))
     # summary
     out.append('<section id="summary"><h2>Summary</h2><ul>')
     for n, res in runs.items():
@@ -377,7 +487,11 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
             "inputs, one example per (sequence, step): 1 means equal up to rotation and "
             "scale.</p>"
             f'<p class="caution">{_esc(GENERAL_CAUTIONS[-1])}</p>'
-            f"{_cka_table(comp)}{_img(b64, 'linear CKA between runs')}</section>"
+            f"{_cka_table(comp)}"
+            + _img(b64, "linear CKA between runs",
+                   "Figure: heatmap of linear CKA between the runs " + ", ".join(comp.names)
+                   + "; the values are in the table above")
+            + "</section>"
         )
     # analyses
     for spec in registered():
@@ -390,6 +504,14 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                                                                           else None])
                + "</ul></section>")
     out.append(f'<section id="options"><h2>Options used</h2>{_options_block(runs)}</section>')
+    entries = [("diagnosis", "Diagnosis"), ("summary", "Summary"), ("inputs", "Inputs"),
+               ("key-figures", "Key figures")]
+    if comp is not None and multi:
+        entries.append(("similarity", "Representational similarity"))
+    entries += [(f"analysis-{spec.name}", spec.title) for spec in registered()
+                if any(f'<section id="analysis-{_esc(spec.name)}">' in o for o in out)]
+    entries += [("cautions", "Reading these numbers with care"), ("options", "Options used")]
+    out.insert(toc_at, _toc(entries, names))
     out.append("</body></html>")
     return "\n".join(out), n_img
 
@@ -404,6 +526,7 @@ def write_report(
     notes: Iterable[str] = (),
     json_path: str | os.PathLike | bool = True,
     progress: Any = None,
+    task: Mapping[str, Mapping[str, Any]] | None = None,
 ) -> Path:
     """Write a self-contained HTML report and (by default) a JSON file of its figures.
 
@@ -429,6 +552,11 @@ def write_report(
         the suffix ``.json``, False for none.
     progress : callable, optional
         Called with a short message before each figure is drawn.
+    task : Mapping[str, Mapping], optional
+        Run name -> task metrics the user measured (``accuracy``, ``chance``, ``loss``,
+        ``r2``, ``n_eval``, ``horizon``: see :func:`hiddenlens._diagnosis.diagnose`); for a
+        single run one metrics mapping may be given directly. The diagnosis at the top of the
+        page reads each run's figures against them.
 
     Returns
     -------
@@ -441,6 +569,7 @@ def write_report(
     the page loads nothing from the network. Every text shown is HTML-escaped.
     """
     runs, comp = _as_runs(results_or_runs, name)
+    task_map = _check_task_map(task, runs)
     path = Path(path)
     title = title or _default_title(runs)
     plt = sys.modules.get("matplotlib.pyplot")
@@ -448,7 +577,7 @@ def write_report(
     try:
         page, _ = _build_html(runs, comp, title=title, inputs_description=inputs_description,
                               notes=[notes] if isinstance(notes, str) else list(notes),
-                              progress=progress)
+                              progress=progress, task=task_map)
     finally:
         _close_stray_pyplot_figures(before)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -457,6 +586,8 @@ def write_report(
         jp = path.with_suffix(".json") if json_path is True else Path(json_path)
         doc = report_data(results_or_runs, name=name, title=title,
                           inputs_description=inputs_description)
+        for n, d in _diagnoses(runs, task_map).items():
+            doc["runs"][n]["diagnosis"] = _jsonable(d.to_dict())
         _atomic_write(jp, json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
     return path
 

@@ -455,7 +455,7 @@ def _user_options(args: argparse.Namespace, runs: dict[str, Any], inputs: Any
 def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str] | None,
                 seed: int, keep_going: bool, quiet: bool, title: str | None,
                 source: str, options: dict[str, dict[str, Any]] | None = None,
-                trace: Any = None) -> Path:
+                trace: Any = None, task: dict[str, dict[str, Any]] | None = None) -> Path:
     from ._compare import compare_runs
     from ._figures import describe_inputs
     from ._registry import analyses, available_analyses
@@ -481,6 +481,8 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
         results = compare_runs(runs, inputs, which=which, options=options, seed=seed,
                                on_error=on_error, progress=say)
         kwargs = {}
+    if task:
+        kwargs["task"] = task
     say("writing the report")
     path = write_report(results, out, title=title, inputs_description=description,
                         notes=notes, progress=say, **kwargs)
@@ -546,6 +548,19 @@ def demo_runs() -> dict[str, Any]:
     return runs
 
 
+def _demo_task(runs: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    """The shipped runs' task metrics (from their training record), for the diagnosis."""
+    from . import examples
+
+    task = {}
+    for name in runs:
+        try:
+            task[name] = examples.task_metrics(name)
+        except (KeyError, OSError, ValueError):
+            continue  # a run without a record is diagnosed from its figures alone
+    return task
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .examples import sorting_line
 
@@ -556,9 +571,11 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     inputs = sorting_line.make_inputs(n, t, seed=args.seed)
     source = (f"sorting-line task inputs (tag flashes, gate cues, belt vibration), "
               f"{n} x {t} steps, seed {args.seed}")
+    task = _demo_task(runs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet,
-                       title="hiddenlens demo: sorting-line runs compared", source=source)
+                       title="hiddenlens demo: sorting-line runs compared", source=source,
+                       task=task)
     print(path)
     return 0
 

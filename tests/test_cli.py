@@ -229,6 +229,10 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     assert page.count(IMG) == 1 + len(present) * (1 + len(names))
     for n in names:
         assert f"<b>{n}</b>" in page
+        # the diagnosis reads the shipped training record (example_models/weights)
+        assert doc["runs"][n]["diagnosis"]["task"]["loss"] == \
+            example_models.task_metrics(n)["loss"]
+    assert page.index('id="diagnosis"') < page.index('id="summary"')
     # the JSON equals the library's results: recompute one run with the public functions
     n = "gru" if "gru" in names else names[-1]
     run = doc["runs"][n]

@@ -212,3 +212,86 @@ def test_report_temporary_file_never_follows_a_planted_symlink(results, tmp_path
     os.symlink(victim, tmp_path / ".r.html.partial")  # the name an older version used
     write_report(results, tmp_path / "r.html", json_path=False)
     assert victim.read_text() == "keep me" and (tmp_path / "r.html").stat().st_size > 1000
+
+
+# ---------------------------------------------------------------------- diagnosis, contents, alt
+class _Page(__import__("html.parser").parser.HTMLParser):
+    """Ids, links, images and the order of sections, read with the standard library's parser
+    (html.parser) rather than with the report's own code."""
+
+    def __init__(self):
+        super().__init__()
+        self.ids, self.hrefs, self.imgs, self.sections = [], [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if "id" in a:
+            self.ids.append(a["id"])
+        if tag == "section":
+            self.sections.append(a.get("id"))
+        if tag == "a" and a.get("href", "").startswith("#"):
+            self.hrefs.append(a["href"][1:])
+        if tag == "img":
+            self.imgs.append(a)
+
+
+TASK = {"rnn": {"accuracy": 0.99, "chance": 1 / 3, "n_eval": 500, "horizon": 10},
+        "lstm": {"accuracy": 0.40, "chance": 1 / 3, "n_eval": 500}}
+
+
+@pytest.fixture(scope="module")
+def diagnosed(inputs, tmp_path_factory):
+    runs = {"rnn": _module(torch.nn.RNN, 5, 1), "lstm": _module(torch.nn.LSTM, 4, 2)}
+    comp = compare_runs(runs, inputs, which=["pca", "gradient_flow"])
+    path = write_report(comp, tmp_path_factory.mktemp("diag") / "d.html", task=TASK)
+    page = path.read_text(encoding="utf-8")
+    parsed = _Page()
+    parsed.feed(page)
+    return page, parsed, json.loads(path.with_suffix(".json").read_text())
+
+
+def test_diagnosis_comes_first_with_one_line_per_run(diagnosed):
+    page, parsed, doc = diagnosed
+    assert parsed.sections[0] == "diagnosis"
+    section = re.search(r'<section id="diagnosis">(.*?)</section>', page, flags=re.S).group(1)
+    lines = re.findall(r'<li id="run-\d+" class="diagnosis">(.*?)</li>', section, flags=re.S)
+    assert len(lines) == 2
+    # the accuracies given are quoted; 0.40 against chance 1/3 is far from solved
+    assert "99.0%" in lines[0] and "40.0%" in lines[1]
+    assert "failing" in lines[1]
+    assert doc["runs"]["lstm"]["diagnosis"]["level"] == "failing"
+    assert doc["runs"]["rnn"]["diagnosis"]["task"]["accuracy"] == 0.99
+
+
+def test_contents_links_reach_every_anchor(diagnosed):
+    _, parsed, _ = diagnosed
+    assert {"diagnosis", "summary", "key-figures", "analysis-pca", "run-1", "run-2"} \
+        <= set(parsed.hrefs)
+    assert set(parsed.hrefs) <= set(parsed.ids)
+    assert len(parsed.ids) == len(set(parsed.ids))  # ids are unique (HTML standard)
+
+
+def test_every_image_has_alt_text(diagnosed, single):
+    _, parsed, _ = diagnosed
+    one = _Page()
+    one.feed(single[1])
+    for p in (parsed, one):
+        assert p.imgs
+        assert all(len(img.get("alt", "").strip()) > 10 for img in p.imgs)
+    # per-run figures carry their key figures in words
+    alts = [img["alt"] for img in parsed.imgs]
+    assert any(a.startswith("Figure: rnn") and "effective dimension" in a for a in alts)
+
+
+def test_report_without_task_still_diagnoses_and_rejects_bad_task(results, tmp_path):
+    page = write_report(results, tmp_path / "n.html", json_path=False).read_text()
+    assert page.index('id="diagnosis"') < page.index('id="summary"')
+    assert "No task metrics were given" in page
+    # one metrics mapping is taken for the single run
+    page = write_report(results, tmp_path / "o.html", json_path=False,
+                        task={"accuracy": 0.95, "chance": 0.5}).read_text()
+    assert "95.0%" in page
+    with pytest.raises(ValueError, match="not in the report"):
+        write_report(results, tmp_path / "x.html", task={"other": {"accuracy": 0.5}})
+    with pytest.raises(TypeError, match="task must be a mapping"):
+        write_report(results, tmp_path / "x.html", task=[0.5])
