@@ -68,6 +68,7 @@ class Panel:
     png: bytes = b""
     errors: dict[Hashable, BaseException] = field(default_factory=dict)
     draws: int = 0
+    export: widgets.Box | None = None  # downloads (PNG, SVG) and the figure's description
 
 
 @dataclass(frozen=True)
@@ -144,6 +145,11 @@ class Board(widgets.VBox):
 
         self._title = widgets.HTML(title)
         self._summary = widgets.HTML(layout=widgets.Layout(margin="0 0 4px 0"))
+        self._task: dict[str, Mapping[str, Any]] = dict(getattr(self, "_task", {}) or {})
+        self._diagnosis = widgets.HTML(layout=widgets.Layout(margin="0 0 4px 0"))
+        self._diagnosis.add_class("hiddenlens-diagnosis")
+        self._table_export = widgets.HBox(layout=widgets.Layout(flex_flow="row wrap"))
+        self._table_export.add_class("hiddenlens-table-export")
         self._panels: dict[str, Panel] = {}
         for name in analyses:
             self._panels[name] = self._make_panel(tab(name), first)
@@ -170,7 +176,9 @@ class Board(widgets.VBox):
                                   layout=widgets.Layout(align_items="center", width="100%"))
         controls = row(self._shared)
 
-        self.children = [self._title, self._summary, controls, self._tabs, status_row]
+        # status above the tabs, so it stays in view under tall figures
+        self.children = [self._title, self._diagnosis, self._summary, self._table_export,
+                         controls, status_row, self._tabs]
         self.layout = widgets.Layout(width="100%", max_width="980px", padding="2px 6px")
         self.add_class("hiddenlens-board")
 
@@ -190,9 +198,12 @@ class Board(widgets.VBox):
         message = widgets.HTML()
         caution = widgets.HTML(_render.note_box(analysis.caution) if analysis.caution else "")
         controls = row([*options.values(), *views.values()])
-        box = widgets.VBox([controls, message, image, caution])
+        export = widgets.HBox(layout=widgets.Layout(flex_flow="row wrap",
+                                                    align_items="center"))
+        export.add_class("hiddenlens-export")
+        box = widgets.VBox([controls, message, image, export, caution])
         box.add_class(f"hiddenlens-panel-{analysis.name}")
-        panel = Panel(analysis, options, views, image, message, box)
+        panel = Panel(analysis, options, views, image, message, box, export=export)
         for w in options.values():
             w.observe(lambda _, p=panel: self._guard(self._show, p), names="value")
         for w in views.values():
@@ -348,7 +359,51 @@ class Board(widgets.VBox):
             panel.image.value = png
             panel.image.layout.display = None
             panel.message.value = ""
+            self._set_export(panel, png, view)
             self.last_draw_seconds = time.perf_counter() - t0
+
+    # ------------------------------------------------------------------ export, alt text
+    def _alt(self, panel: Panel) -> str:
+        """What the figure of ``panel`` shows, in words (its runs' key figures)."""
+        from ._export import alt_text
+
+        runs = self._runs_for(panel)
+        parts = []
+        for r in runs:
+            res = self._results(panel.analysis.name, r)
+            try:
+                parts.append(alt_text(res, name=r.name if len(self._runs) > 1 else None))
+            except TypeError:
+                parts.append(r.name)
+        return f"Figure: {panel.analysis.label}. " + " | ".join(parts)
+
+    def _set_export(self, panel: Panel, png: bytes, view: View) -> None:
+        """The PNG download of what is shown, an SVG button (drawn on demand) and the alt text."""
+        if panel.export is None:
+            return
+        from ._export import download_link, figure_svg, safe_filename
+
+        stem = f"{panel.analysis.name}"
+        alt = self._alt(panel)
+        panel.image.tooltip = alt  # the accessible name of the image (title attribute)
+        svg = widgets.Button(description="SVG", tooltip="draw this figure as SVG to download",
+                             layout=widgets.Layout(width="70px"))
+        svg.add_class("hiddenlens-svg")
+        holder = widgets.HBox([svg])
+
+        def make_svg(_: Any) -> None:
+            with self._draw_lock:
+                fig = self._draw_panel(panel, view, "constrained")
+                holder.children = [download_link(*figure_svg(fig, stem), "SVG")]
+
+        svg.on_click(lambda b: self._guard(make_svg, b))
+        words = widgets.HTML(f"<details><summary style='font-size:12px;color:#4a5568'>Figure "
+                             f"description</summary><div style='font-size:12px'>"
+                             f"{_render.esc(alt)}</div></details>")
+        words.add_class("hiddenlens-alt")
+        panel.export.children = [widgets.Label("download:"),
+                                 download_link(png, safe_filename(stem, "png"), "PNG"),
+                                 holder, words]
 
     def _view(self, panel: Panel) -> View:
         return View(extra={k: w.value for k, w in panel.views.items()})
@@ -383,6 +438,50 @@ class Board(widgets.VBox):
             self._summary.value = self._summary_html()
         except Exception as exc:  # a summary failure must be visible, not fatal
             self._summary.value = _render.error_box(exc, what="summary")
+        try:
+            self._update_diagnosis()
+        except Exception as exc:
+            self._diagnosis.value = _render.error_box(exc, what="diagnosis")
+
+    def _run_figures(self) -> dict[str, dict[str, Any]]:
+        """Run name -> the key figures of the analyses computed so far."""
+        from .._summary import key_figures
+
+        out = {}
+        for r in self._runs_for(None):  # the runs shown (a comparison's ticked runs)
+            n = r.name
+            present = {a: res for a in self._panels
+                       if (res := self._results(a, r)) is not None}
+            out[n] = key_figures(present) if present else {}
+        return out
+
+    def _update_diagnosis(self) -> None:
+        """The diagnosis line of each run (when task metrics were given) and the CSV export."""
+        from .._diagnosis import diagnose
+        from ._export import download_link, table_csv
+
+        figures = self._run_figures()
+        if any(figures.values()):
+            data = figures if len(figures) > 1 else next(iter(figures.values()))
+            self._table_export.children = [download_link(*table_csv(data), "key figures (CSV)")]
+        else:
+            self._table_export.children = []
+        if not self._task:
+            self._diagnosis.value = ""
+            return
+        lines = []
+        for n, figs in figures.items():
+            d = diagnose(figs, task=self._task.get(n), name=n)
+            colour = {"ok": "#0072B2", "marginal": "#E69F00", "failing": "#D55E00"}.get(
+                d.level, "#4a5568")
+            warn = "".join(f"<div style='color:#8a5a00;font-size:12px'>\u26a0 {_render.esc(w)}"
+                           "</div>" for w in d.warnings)
+            lines.append(f"<div><span style='color:{colour};font-weight:600'>\u25cf</span> "
+                         f"{_render.esc(d.text)}{warn}</div>")
+        self._diagnosis.value = (
+            "<div class='hiddenlens-diagnosis-lines' style='background:#fbfbf4;border-left:4px "
+            f"solid #E69F00;padding:6px 10px;font-size:13.5px'><b>Diagnosis</b>{''.join(lines)}"
+            "</div>")
 
     # ------------------------------------------------------------------ status row
     def _on_progress(self, runner: Runner) -> None:

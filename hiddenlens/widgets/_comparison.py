@@ -8,11 +8,11 @@ from typing import Any
 
 import ipywidgets as widgets
 from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 
 from .._compare import RunComparison, check_runs, comparison_of, plot_cka, plot_overlay
 from .._figures import figure_rows, format_delta, format_figure, key_figures, summary_sentence
+from .._plotting import RUN_COLORS
 from .._record import record
 from .._runner import AnalysisResults, ModelLike, Sequences
 from .._validation import as_sequences
@@ -41,9 +41,20 @@ class Comparison(Board):
     def __init__(self, runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
+                 task: Mapping[str, Mapping[str, Any]] | None = None,
                  **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
+        if task is not None:
+            if not isinstance(task, Mapping) or not all(
+                    v is None or isinstance(v, Mapping) for v in task.values()):
+                raise TypeError("task must map run names to task metrics (e.g. {'gru': "
+                                "{'accuracy': 0.97}}), got "
+                                f"{type(task).__name__}")
+            unknown = [str(k) for k in task if k not in systems]
+            if unknown:
+                raise ValueError(f"task names runs that are not compared: {', '.join(unknown)};"
+                                 f" the runs are {', '.join(names)}")
         tabs = check_analyses(analyses)
         recorded = {}
         for n, system in systems.items():
@@ -52,9 +63,11 @@ class Comparison(Board):
             recorded[n] = Run(n, system, record(system, x, h0), x, None, seed)
         super().__init__()  # only once the arguments are known to be good
         self._runs = recorded
+        self._task = {str(k): dict(v) for k, v in (task or {}).items() if v}
         self.traces = {n: r.trace for n, r in self._runs.items()}
         self.comparison: RunComparison | None = None
-        self._colors = {n: to_hex(f"C{i % 10}") for i, n in enumerate(names)}
+        # colour-blind-safe (Okabe-Ito); a run keeps its colour when others are unticked
+        self._colors = {n: RUN_COLORS[i % len(RUN_COLORS)] for i, n in enumerate(names)}
         first = self._runs[names[0]].trace
         B, T = first.batch_size, first.n_steps
 
@@ -251,6 +264,7 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
 def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
+            task: Mapping[str, Mapping[str, Any]] | None = None,
             **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
@@ -269,6 +283,9 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         The same sequences for every run.
     h0, analyses, background, executor, seed, **wrap_options
         As in :func:`hiddenlens.explore`.
+    task : Mapping[str, Mapping], optional
+        Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
+        diagnosis line per run at the top.
 
     Returns
     -------
@@ -277,4 +294,4 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         ``.comparison`` holds the :class:`~hiddenlens.RunComparison` once the table is shown.
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
-                      executor=executor, seed=seed, **wrap_options)
+                      executor=executor, seed=seed, task=task, **wrap_options)

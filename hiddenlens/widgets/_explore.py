@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from concurrent.futures import Executor
 from typing import Any
 
@@ -46,8 +46,11 @@ class Explorer(Board):
     def __init__(self, model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
-                 **wrap_options: Any) -> None:
+                 task: Mapping[str, Any] | None = None, **wrap_options: Any) -> None:
         names = check_analyses(analyses)
+        if task is not None and not isinstance(task, Mapping):
+            raise TypeError("task must be a mapping of the model's task metrics (e.g. "
+                            f"{{'accuracy': 0.97, 'chance': 0.5}}), got {type(task).__name__}")
         system = as_system(model_or_system, **wrap_options)
         x = as_sequences(inputs, system.input_size, system.dtype,
                          what=f"the {system.source} system")  # (B, T, I)
@@ -56,6 +59,7 @@ class Explorer(Board):
                   seed)
         super().__init__()  # only once the arguments are known to be good
         self._runs = {run.name: run}
+        self._task = {run.name: dict(task)} if task else {}
         self.trace = trace
         B, T, S = trace.states.shape
 
@@ -130,7 +134,7 @@ class Explorer(Board):
 def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
-            **wrap_options: Any) -> Explorer:
+            task: Mapping[str, Any] | None = None, **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
     The model is recorded once on ``inputs``; each tab shows one analysis and is computed only
@@ -160,6 +164,10 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         Seed of the analyses that draw random numbers, so the figures repeat.
     name : str, optional
         Title of the widget (default: the model's class name).
+    task : Mapping, optional
+        Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
+        ``n_eval``, ``horizon``; see :func:`hiddenlens._diagnosis.diagnose`): a diagnosis line
+        at the top reads the key figures against them.
 
     Returns
     -------
@@ -175,4 +183,4 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    **wrap_options)
+                    task=task, **wrap_options)
