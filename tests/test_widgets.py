@@ -389,3 +389,73 @@ def test_every_available_analysis_draws(model, inputs):
         assert view.images[name].startswith(PNG_MAGIC), view._panels[name].message.value
     assert set(view.computed) == set(view._panels)
     assert all(callable(analysis_function(n)) for n in view._panels)
+
+
+# ---------------------------------------------------------------------- export, diagnosis, style
+def _download(html_value):
+    """(mime, bytes, filename) of a download link's data: URI (RFC 2397)."""
+    import base64
+    import re
+
+    m = re.search(r'download="([^"]+)" href="data:([^;]+);base64,([^"]+)"', html_value)
+    assert m, html_value[:200]
+    return m.group(2), base64.b64decode(m.group(3)), m.group(1)
+
+
+def test_export_row_gives_png_svg_and_csv_bytes(model, inputs):
+    import csv
+    import xml.etree.ElementTree as ET
+
+    view = explore(model, inputs, analyses=["lyapunov"], background=False)
+    panel = view._panels["lyapunov"]
+    label, png_link, holder, words = panel.export.children
+    mime, data, filename = _download(png_link.value)
+    assert mime == "image/png" and filename.endswith(".png")
+    assert data == view.images["lyapunov"] and data.startswith(PNG_MAGIC)
+    holder.children[0].click()  # the SVG is drawn on demand
+    mime, data, filename = _download(holder.children[0].value)
+    assert mime == "image/svg+xml" and filename.endswith(".svg")
+    # an SVG document: root element <svg> in the SVG namespace (W3C SVG 1.1, section 5.1),
+    # parsed with the standard library's XML parser
+    assert ET.fromstring(data).tag == "{http://www.w3.org/2000/svg}svg"
+    mime, data, filename = _download(view._table_export.children[0].value)
+    assert mime == "text/csv" and filename.endswith(".csv")
+    rows = list(csv.DictReader(io.StringIO(data.decode("utf-8"))))
+    lam = key_figures({"lyapunov": view._results("lyapunov", view.run)})["lyapunov_max"]
+    value = next(r["value"] for r in rows if r["figure"] == "lyapunov_max")
+    assert float(value) == lam  # full precision in the file
+    # the figure's words: on the image (its title attribute) and in a fold below it
+    assert "Lyapunov" in panel.image.tooltip and "Lyapunov" in words.value
+
+
+def test_diagnosis_line_shown_only_when_task_given(runs, inputs):
+    view = explore(runs["gated"], inputs, analyses=["gradient_flow"], background=False)
+    assert view._diagnosis.value == ""
+    # status and progress sit above the tabs
+    status_row = next(c for c in view.children if view._bar in getattr(c, "children", ()))
+    assert view.children.index(status_row) < view.children.index(view._tabs)
+    task = {"gated": {"accuracy": 0.99, "chance": 1 / 3, "n_eval": 500, "horizon": 40},
+            "large gain": {"accuracy": 0.40, "chance": 1 / 3, "n_eval": 500}}
+    view = compare(runs, inputs, analyses=["gradient_flow"], background=False, task=task)
+    text = view._diagnosis.value
+    assert "Diagnosis" in text and "99.0%" in text and "40.0%" in text
+    assert "gated" in text and "small gain" in text  # a run without metrics is read too
+    view._shown["small gain"].value = False
+    view._update_summary()
+    assert "small gain" not in view._diagnosis.value  # unticked runs leave the line
+    with pytest.raises(ValueError, match="not compared"):
+        compare(runs, inputs, analyses=["pca"], background=False, task={"other": {}})
+
+
+def test_compare_overlay_uses_the_colour_blind_safe_palette(runs, inputs):
+    from hiddenlens._plotting import RUN_COLORS
+
+    view = compare(runs, inputs, analyses=["lyapunov"], background=False)
+    panel = view._panels["lyapunov"]
+    fig = view._draw_panel(panel, view._view(panel))
+    lines = [ln for ln in fig.axes[0].get_lines() if ln.get_label() in runs]
+    assert len(lines) == 3
+    # Okabe & Ito (2008) colours, and a line style and marker per run besides colour
+    assert [ln.get_color() for ln in lines] == list(RUN_COLORS[:3])
+    assert len({ln.get_linestyle() for ln in lines}) == 3
+    assert len({ln.get_marker() for ln in lines}) == 3
