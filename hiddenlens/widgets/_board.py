@@ -69,6 +69,7 @@ class Panel:
     errors: dict[Hashable, BaseException] = field(default_factory=dict)
     draws: int = 0
     export: widgets.Box | None = None  # downloads (PNG, SVG) and the figure's description
+    export_parts: dict[str, Any] | None = None
 
 
 @dataclass(frozen=True)
@@ -378,32 +379,47 @@ class Board(widgets.VBox):
         return f"Figure: {panel.analysis.label}. " + " | ".join(parts)
 
     def _set_export(self, panel: Panel, png: bytes, view: View) -> None:
-        """The PNG download of what is shown, an SVG button (drawn on demand) and the alt text."""
+        """The PNG download of what is shown, an SVG button (drawn on demand) and the alt text.
+
+        The widgets are made once per tab and updated, so redraws leave no widgets behind."""
         if panel.export is None:
             return
-        from ._export import download_link, figure_svg, safe_filename
+        from ._export import download_link, figure_svg, link_html, safe_filename
 
-        stem = f"{panel.analysis.name}"
+        stem = panel.analysis.name
         alt = self._alt(panel)
         panel.image.tooltip = alt  # the accessible name of the image (title attribute)
-        svg = widgets.Button(description="SVG", tooltip="draw this figure as SVG to download",
-                             layout=widgets.Layout(width="70px"))
-        svg.add_class("hiddenlens-svg")
-        holder = widgets.HBox([svg])
+        parts = panel.export_parts
+        if parts is None:
+            svg = widgets.Button(description="SVG", tooltip="draw this figure as SVG to "
+                                 "download", layout=widgets.Layout(width="70px"))
+            svg.add_class("hiddenlens-svg")
+            holder = widgets.HBox([svg])
+            png_link = widgets.HTML()
+            words = widgets.HTML()
+            words.add_class("hiddenlens-alt")
+            parts = {"svg": svg, "holder": holder, "png": png_link, "words": words,
+                     "view": view, "link": None}
 
-        def make_svg(_: Any) -> None:
-            with self._draw_lock:
-                fig = self._draw_panel(panel, view, "constrained")
-                holder.children = [download_link(*figure_svg(fig, stem), "SVG")]
+            def make_svg(_: Any) -> None:
+                with self._draw_lock:
+                    fig = self._draw_panel(panel, parts["view"], "constrained")
+                    data, filename = figure_svg(fig, stem)
+                    if parts["link"] is None:
+                        parts["link"] = download_link(data, filename, "SVG")
+                    else:
+                        parts["link"].value = link_html(data, filename, "SVG")
+                    holder.children = [parts["link"]]
 
-        svg.on_click(lambda b: self._guard(make_svg, b))
-        words = widgets.HTML(f"<details><summary style='font-size:12px;color:#4a5568'>Figure "
-                             f"description</summary><div style='font-size:12px'>"
-                             f"{_render.esc(alt)}</div></details>")
-        words.add_class("hiddenlens-alt")
-        panel.export.children = [widgets.Label("download:"),
-                                 download_link(png, safe_filename(stem, "png"), "PNG"),
-                                 holder, words]
+            svg.on_click(lambda b: self._guard(make_svg, b))
+            panel.export_parts = parts
+            panel.export.children = [widgets.Label("download:"), png_link, holder, words]
+        parts["view"] = view
+        parts["holder"].children = [parts["svg"]]
+        parts["png"].value = link_html(png, safe_filename(stem, "png"), "PNG")
+        parts["words"].value = (
+            "<details><summary style='font-size:12px;color:#4a5568'>Figure description"
+            f"</summary><div style='font-size:12px'>{_render.esc(alt)}</div></details>")
 
     def _view(self, panel: Panel) -> View:
         return View(extra={k: w.value for k, w in panel.views.items()})
