@@ -505,3 +505,51 @@ def test_speed_rule_keeps_an_approximate_line_attractor_spread():
     # turning the speed rule off slides every start to (near) the origin
     collapsed = find_fixed_points(system, tr, slow_margin=0)
     assert np.ptp(collapsed.points @ v) < 0.5 * np.ptp(along)
+
+
+# ---------------------------------------------------------------------- reach and key figures
+def test_points_outside_the_recorded_states_are_flagged_and_not_counted():
+    from hiddenlens._builtin_analyses import _figures_fixed_points, _fixed_point_words
+
+    # s -> 0.5 s + x, x = 3: the only fixed point s* = x / (1 − 0.5) = 6 (common practice)
+    # lies far beyond states recorded under inputs near 0
+    step = hl.wrap(lambda s, x: 0.5 * s + x, state_size=1, input_size=1, dtype=F64)
+    tr = hl.record(step, 0.1 * np.random.default_rng(0).standard_normal((2, 20, 1)))
+    fp = hl.find_fixed_points(step, tr, np.array([3.0]), n_starts=8)
+    assert len(fp) == 1 and fp.outside[0] and fp.stability[0] == "stable"
+    f = _figures_fixed_points(fp)
+    assert f["fixed_points_stable"] == 0 and f["fixed_points_outside"] == 1
+    assert f["slow_set_dimension"] == 0
+    assert _fixed_point_words(f) == [
+        "no fixed point inside the recorded states (1 outside, not counted)"]
+    assert "1 outside the recorded states (not counted)" in fp.summary
+    assert fp.to_frame()["outside"].tolist() == [True]
+    inside = hl.find_fixed_points(step, tr, n_starts=8)  # x = 0: s* = 0, within the states
+    assert _figures_fixed_points(inside)["fixed_points_stable"] == 1
+
+
+# ---------------------------------------------------------------------- mean constant input
+def test_constant_input_may_be_the_mean_input_over_a_window():
+    # s -> 0.5 s + x1 − x2 has the one fixed point s* = 2 (x1 − x2) (common practice:
+    # x / (1 − 0.5)); the
+    # mean input is checked against numpy's mean of the recorded inputs
+    step = hl.wrap(lambda s, x: 0.5 * s + x[:, :1] - x[:, 1:], state_size=1, input_size=2,
+                   dtype=F64)
+    x = np.zeros((3, 30, 2))
+    x[:, :10, 0] = 1.0
+    x[:, 10:, 1] = np.random.default_rng(0).uniform(0, 0.2, (3, 20))
+    tr = hl.record(step, x)
+    whole = hl.find_fixed_points(step, tr, "mean", n_starts=8)
+    m = x.reshape(-1, 2).mean(axis=0)
+    np.testing.assert_allclose(whole.x, m, atol=1e-15)
+    np.testing.assert_allclose(whole.points[:, 0], [2 * (m[0] - m[1])], atol=1e-8)
+    cue = hl.find_fixed_points(step, tr, ("mean", 0, 10), n_starts=8)
+    np.testing.assert_allclose(cue.x, [1.0, 0.0])
+    np.testing.assert_allclose(cue.points[:, 0], [2.0], atol=1e-8)
+    for bad, err in (("median", ValueError), (("mean", 5, 5), ValueError),
+                     (("mean", 0, 31), ValueError), (("mean", 0.0, 10), ValueError),
+                     (("mean", 0), ValueError)):
+        with pytest.raises(err, match="mean"):
+            hl.find_fixed_points(step, tr, bad, n_starts=8)
+    with pytest.raises(TypeError, match="averages the inputs of a trace"):
+        hl.find_fixed_points(step, None, "mean", starts=[[0.0]])
