@@ -553,3 +553,33 @@ def test_constant_input_may_be_the_mean_input_over_a_window():
             hl.find_fixed_points(step, tr, bad, n_starts=8)
     with pytest.raises(TypeError, match="averages the inputs of a trace"):
         hl.find_fixed_points(step, None, "mean", starts=[[0.0]])
+
+
+# ---------------------------------------------------------------------- an integrator net
+def test_line_attractor_of_a_pulse_integrating_rnn_is_found_with_default_settings():
+    # a tanh nn.RNN built to integrate ±pulses: W_hh = v vᵀ + 0.5 P⊥ M P⊥, W_ih = 0.3 v, so
+    # the state adds each pulse along v and keeps it (an approximate line attractor, Mante
+    # et al. 2013; slow points after Sussillo & Barak 2013)
+    S = 10
+    Wt, v = _tanh_line(S, seed=3)
+    rnn = nn.RNN(1, S, batch_first=True)
+    with torch.no_grad():
+        rnn.weight_hh_l0.copy_(Wt.float())
+        rnn.weight_ih_l0.copy_(0.3 * torch.tensor(v, dtype=torch.float32)[:, None])
+        rnn.bias_hh_l0.zero_()
+        rnn.bias_ih_l0.zero_()
+    gen = torch.Generator().manual_seed(0)
+    B, T = 48, 60
+    pulses = (torch.rand(B, T, 1, generator=gen) < 0.15).float() * torch.where(
+        torch.rand(B, T, 1, generator=gen) < 0.5, -1.0, 1.0)
+    tr = hl.record(rnn, pulses)
+    # the integrator works: the state along v follows the running pulse sum (numpy corrcoef)
+    run = pulses.cumsum(1)[..., 0].numpy().ravel()
+    assert np.corrcoef((tr.states @ v).ravel(), run)[0, 1] > 0.95
+    fp = hl.find_fixed_points(rnn, tr)
+    assert fp.slow_set_dimension == 1 and fp.in_slow_set.sum() >= 20
+    along = fp.points @ v
+    assert np.ptp(along[fp.in_slow_set]) > 0.5
+    assert np.abs(fp.points - np.outer(along, v)).max() < 0.05
+    assert fp.summary.startswith("approximate line attractor:")
+    assert "|λ| 0.9" in fp.summary or "|λ| 1.0" in fp.summary
