@@ -419,7 +419,8 @@ def test_find_fixed_points_accepts_numpy_scalar_tolerances_and_refuses_negative_
                            distance_tol=np.float64(1e-3), n_starts=3)
     assert fp.n_fixed == 1
     for bad in ({"fixed_tol": -1e-9}, {"slow_tol": np.float64(-1.0)},
-                {"fixed_tol": float("nan")}, {"marginal_tol": np.inf}):
+                {"fixed_tol": float("nan")}, {"marginal_tol": np.inf},
+                {"slow_margin": -0.1}, {"slow_margin": "0.05"}):
         with pytest.raises(ValueError, match="must be a number >= 0|option of find_fixed_points"):
             find_fixed_points(system, trace, n_starts=3, **bad)
 def test_points_report_their_distance_to_the_recorded_states():
