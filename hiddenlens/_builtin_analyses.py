@@ -136,7 +136,14 @@ def _figures_pca(r: Any) -> dict[str, Any]:
 
 def _figures_fixed_points(r: Any) -> dict[str, Any]:
     stab = [str(s) for s in np.asarray(r.stability, dtype=object).ravel()]
-    return {f"fixed_points_{c}": int(sum(s == c for s in stab)) for c in STABILITY_CLASSES}
+    out = getattr(r, "outside", None)  # points the recorded states do not reach: not counted
+    out = np.zeros(len(stab), bool) if out is None else np.asarray(out, bool).ravel()
+    kinds = np.array(stab, dtype=object)
+    figures = {f"fixed_points_{c}": int(np.sum((kinds == c) & ~out)) for c in STABILITY_CLASSES}
+    figures["fixed_points_outside"] = int(out.sum())
+    if getattr(r, "slow_set_dimension", None) is not None:
+        figures["slow_set_dimension"] = int(r.slow_set_dimension)
+    return figures
 
 
 def _figures_memory(r: Any) -> dict[str, Any]:
@@ -213,10 +220,16 @@ def _fixed_point_words(f: Mapping[str, Any]) -> list[str]:
     if all(n is None for _, n in counts):
         return []
     found = [f"{n} {c}" for c, n in counts if n]
+    n_out = f.get("fixed_points_outside") or 0
     if not found:
-        return ["no fixed point found"]
+        return [f"no fixed point inside the recorded states ({n_out:.0f} outside, not counted)"
+                if n_out else "no fixed point found"]
     noun = "fixed point" if sum(n for _, n in counts if n) == 1 else "fixed points"
-    return [", ".join(found) + f" {noun}"]
+    words = [", ".join(found) + f" {noun}"
+             + (f" ({n_out:.0f} outside the recorded states, not counted)" if n_out else "")]
+    if finite(f.get("slow_set_dimension")) and f["slow_set_dimension"] > 0:
+        words.append(f"slow set of dimension {f['slow_set_dimension']:.0f}")
+    return words
 
 
 def _memory_words(f: Mapping[str, Any]) -> list[str]:
@@ -437,8 +450,10 @@ _spec(
     "fixed_points", "hiddenlens._fixed_points:find_fixed_points",
     title="Fixed points and their stability",
     key_figures=_figures_fixed_points,
-    figures={f"fixed_points_{c}": Figure(f"{c} {'points' if c == 'saddle' else 'fixed points'}")
-             for c in STABILITY_CLASSES},
+    figures={**{f"fixed_points_{c}": Figure(f"{c} {'points' if c == 'saddle' else 'fixed points'}")
+                for c in STABILITY_CLASSES},
+             "fixed_points_outside": Figure("points outside the recorded states"),
+             "slow_set_dimension": Figure("slow-set dimension")},
     caution="Fixed points depend on the constant input chosen (zero unless stated); slow "
             "points are not fixed points, and the search finds only what its starting states "
             "lead to.",

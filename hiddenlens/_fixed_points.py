@@ -92,7 +92,30 @@ class FixedPoints(Result):
         With a trace: each point's Euclidean distance to the nearest recorded state.
     outside : ndarray of shape (n,), bool, or None
         With a trace: the point lies outside the box of the recorded states (widened by 10% of
-        each unit's range), a region the network's own trajectories do not reach.
+        each unit's range), a region the network's own trajectories do not reach. Such points
+        stay in the result but are left out of the slow set and of the registry's counts.
+    settled : ndarray of shape (n,), bool
+        The start stopped on the speed rule (``slow_margin``): a slow point on a slow direction.
+    slow_margin : float
+    in_slow_set : ndarray of shape (n,), bool
+        Points of the slow set: inside the recorded region, with an eigenvalue modulus within
+        ``max(marginal_tol, slow_margin)`` of 1.
+    slow_set_dimension : int
+        Components of the slow set's PCA needed for 95% of its spread (0: isolated points; fewer
+        than 3 members, or a spread along no slow direction, also give 0).
+    slow_set_explained : ndarray of shape (k,)
+        Fraction of the slow set's spread on each principal component.
+    slow_set_coordinate : ndarray of shape (n,)
+        Each point's coordinate along the first principal component of the slow set (NaN
+        when the slow set has dimension 0).
+    slow_set_order : ndarray of shape (m,), int
+        Indices of the slow set's members ordered along that coordinate.
+    tangent_eigenvalue : float
+        Median over members of ``|λ|`` closest to 1 among the eigenvalues of the Jacobian
+        restricted to the slow set's tangent (``Tᵀ J T``, T its top principal directions).
+    summary : str
+        One plain-words line, e.g. "approximate line attractor: 150 slow points along one
+        direction, |λ| 0.999".
 
     Notes
     -----
@@ -125,6 +148,15 @@ class FixedPoints(Result):
     trace: Any = None
     distance_to_states: np.ndarray | None = None
     outside: np.ndarray | None = None
+    settled: np.ndarray | None = None
+    slow_margin: float = 0.0
+    in_slow_set: np.ndarray | None = None
+    slow_set_dimension: int = 0
+    slow_set_explained: np.ndarray | None = None
+    slow_set_coordinate: np.ndarray | None = None
+    slow_set_order: np.ndarray | None = None
+    tangent_eigenvalue: float = math.nan
+    summary: str = ""
 
     # ------------------------------------------------------------------ summaries
     def __len__(self) -> int:
@@ -153,7 +185,11 @@ class FixedPoints(Result):
         return np.abs(self.eigenvalues[:, 0])
 
     def to_frame(self):
-        """One row per point: q, kind, stability, expanding directions, support and coordinates."""
+        """One row per point: q, kind, stability, expanding directions, support and coordinates.
+
+        Also whether each point lies outside the recorded states, belongs to the slow set and
+        its coordinate along it; ``frame.attrs["summary"]`` holds :attr:`summary`.
+        """
         import pandas as pd
 
         names = _unit_names(self.parts, self.points.shape[1])
@@ -167,16 +203,25 @@ class FixedPoints(Result):
             "spectral_radius": self.spectral_radius,
             "support": self.support,
         })
+        m = len(self)
+        frame["outside"] = self.outside if self.outside is not None else np.zeros(m, bool)
+        frame["in_slow_set"] = (self.in_slow_set if self.in_slow_set is not None
+                                else np.zeros(m, bool))
+        frame["along_slow_set"] = (self.slow_set_coordinate if self.slow_set_coordinate
+                                   is not None else np.full(m, np.nan))
         coords = pd.DataFrame(self.points, columns=names)
         out = pd.concat([frame, coords], axis=1)
         out.index.name = "point"
+        out.attrs["summary"] = self.summary
+        out.attrs["slow_set_dimension"] = self.slow_set_dimension
         return out
 
     def __repr__(self) -> str:
         counts = ", ".join(f"{k}={v}" for k, v in self.counts.items())
         return (f"FixedPoints(n={len(self)}, fixed={self.n_fixed}, slow={self.n_slow}, {counts}, "
                 f"starts={self.n_starts}, discarded={self.n_discarded}, "
-                f"unconverged={self.n_unconverged})")
+                f"unconverged={self.n_unconverged}, slow_set_dimension="
+                f"{self.slow_set_dimension}; {self.summary})")
 
     # ------------------------------------------------------------------ plot
     def plot(self, ax: Any = None, *, pca: Any = None, dims: int = 2,
@@ -287,6 +332,7 @@ def find_fixed_points(
     max_iter: int | None = None,
     distance_tol: float = 1e-3,
     marginal_tol: float = 1e-3,
+    slow_margin: float = 0.05,
     dtype: Any = None,
     seed: int = 0,
     progress: bool | Callable[[int, int, str], Any] | None = None,
@@ -311,8 +357,10 @@ def find_fixed_points(
     trace : Trace or None
         Recorded states of this system; starts are sampled from its states (all samples and
         steps). None only when ``starts`` is given.
-    x : array_like of shape (I,), optional
-        The constant input x*; zeros by default.
+    x : array_like of shape (I,), "mean" or ("mean", t0, t1), optional
+        The constant input x*; zeros by default. "mean": the trace's inputs averaged over all
+        samples and steps; ``("mean", t0, t1)``: averaged over steps ``t0 <= t < t1`` (a task
+        period, e.g. a delay), all samples.
     n_starts : int, optional
         Number of starting states sampled from the trace (without replacement when it has as
         many states). Default 256 up to S = 128 states, then 256 * 128 / S (at least 16): one
@@ -336,6 +384,14 @@ def find_fixed_points(
         Points closer than this (Euclidean, state units) are merged.
     marginal_tol : float, default 1e-3
         Eigenvalues with ``| |λ| − 1 | <= marginal_tol`` make a point "marginal".
+    slow_margin : float, default 0.05
+        Stopping on speed, per start: a start that is already a slow point (``q <= slow_tol``)
+        stops where it is once its next step would be longer than ``speed / slow_margin``,
+        i.e. once it moves along a direction where ``|1 − λ| < slow_margin``. This keeps the
+        points of a slow manifold (a line attractor) spread along it instead of sliding them
+        all to one end. 0 turns it off: every start is followed to a fixed point or a minimum
+        of q (an isolated but very slow fixed point is then polished, a slow manifold
+        collapses).
     dtype : torch dtype, optional
         Precision of the search. Default float64 for systems made from nn modules (a float64
         copy of the weights) and the system's own dtype for step functions.
@@ -373,17 +429,18 @@ def find_fixed_points(
         n_starts = 256 if S <= 128 else max(16, 256 * 128 // S)
     if max_iter is None:
         max_iter = 100 if S < 512 else 50
-    x_star = _constant_input(x, I, dt)  # (I,)
+    x_star = _constant_input(_mean_input(x, trace, I), I, dt)  # (I,)
     s0 = _starts(trace, starts, system, n_starts, noise, seed, dt)  # (n_starts, S)
     n = s0.shape[0]
     _check_options(max_iter=max_iter, slow_tol=slow_tol, distance_tol=distance_tol,
-                   marginal_tol=marginal_tol, tol=tol)
+                   marginal_tol=marginal_tol, tol=tol, slow_margin=slow_margin)
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
     # batched S x S solves of small states: one torch thread (two were 5.4x slower on a
     # shared 2-core machine at S = 128; benchmarks/bench_fixed_points.py)
     with grad_restored(), step_errors(system), single_thread(S <= _ONE_THREAD_UP_TO):
-        s, q, converged = _minimise(work, s0, x_star.expand(n, I), tol=tol,
-                                    max_iter=max_iter, progress=progress)
+        s, q, converged, settled = _minimise(
+            work, s0, x_star.expand(n, I), tol=tol, max_iter=max_iter, progress=progress,
+            slow_tol=float(slow_tol), slow_margin=float(slow_margin))
         kept = ((q < tol) | (q <= slow_tol)).nonzero().squeeze(1)
         reps, support = _merge(s[kept], q[kept], distance_tol)
         P = s[kept][reps]  # (m, S)
@@ -397,11 +454,16 @@ def find_fixed_points(
             J = torch.zeros(0, S, S, dtype=torch.float64)
     eig, directions, stability = _linearise(J, marginal_tol)
     q_kept = q[kept][reps]
+    reach = _reach(P, trace)
+    slow_set = _slow_set(P.numpy(), J.numpy(), q_kept.numpy() < tol, reach.get("outside"),
+                         float(distance_tol), n, int(n - kept.numel()), float(slow_tol),
+                         float(marginal_tol), float(slow_margin))
     return FixedPoints(
         points=readonly(P, np.float64),
         q=readonly(q_kept, np.float64),
         is_fixed=readonly(q_kept < tol),
         converged=readonly(converged[kept][reps] | (q_kept < tol)),
+        settled=readonly(settled[kept][reps] & (q_kept >= tol)),
         eigenvalues=readonly(eig),
         stability=readonly(np.array(stability, dtype="<U8")),
         unstable_directions=tuple(readonly(d) for d in directions),
@@ -418,8 +480,103 @@ def find_fixed_points(
         parts=frozen_mapping(system.parts),
         source=system.source,
         trace=trace,
-        **_reach(P, trace),
+        slow_margin=float(slow_margin),
+        **reach,
+        **slow_set,
+        metadata={"summary": slow_set["summary"],
+                  "slow_set_dimension": slow_set["slow_set_dimension"]},
     )
+
+
+_NUMBER_WORDS = {1: "one direction", 2: "two directions", 3: "three directions"}
+_SHAPES = {1: "line attractor", 2: "plane attractor"}
+
+
+def _slow_set(P: np.ndarray, J: np.ndarray, fixed: np.ndarray, outside: Any,
+              distance_tol: float, n_starts: int, n_discarded: int, slow_tol: float,
+              marginal_tol: float, slow_margin: float) -> dict[str, Any]:
+    """The slow set's PCA dimension, ordering, tangent eigenvalue and its plain-words line.
+
+    Members: points inside the recorded region with some ``|λ|`` within
+    ``max(marginal_tol, slow_margin)`` of 1. Dimension: principal components for 95% of the
+    members' spread (0 with fewer than 3 members, a spread under 3 distance_tol, or a tangent
+    whose eigenvalue is not within that margin of 1: isolated points then)."""
+    m, S = P.shape
+    out_mask = np.zeros(m, bool) if outside is None else np.asarray(outside, bool)
+    margin = max(marginal_tol, slow_margin)
+    if m:
+        mod = np.abs(np.linalg.eigvals(J)) if S else np.zeros((m, 0))
+        near = np.any(np.abs(mod - 1) <= margin, axis=1) if S else np.zeros(m, bool)
+    else:
+        near = np.zeros(0, bool)
+    member = near & ~out_mask
+    k = int(member.sum())
+    dim, explained, coord, order, lam = 0, np.zeros(0), np.full(m, np.nan), np.zeros(0, int), \
+        math.nan
+    if k >= 3:
+        X = P[member]
+        mean = X.mean(axis=0)
+        _, sv, Vt = np.linalg.svd(X - mean, full_matrices=False)
+        var = sv**2
+        total = float(var.sum())
+        if total > 0 and math.sqrt(total / k) > 3 * distance_tol:
+            explained = var / total
+            d = int(np.searchsorted(np.cumsum(explained), 0.95) + 1)
+            T = Vt[:d].T  # (S, d)
+            restricted = np.einsum("sd,msr,re->mde", T, J[member], T)  # (k, d, d)
+            ev = np.abs(np.linalg.eigvals(restricted))  # (k, d)
+            closest = np.take_along_axis(ev, np.argmin(np.abs(ev - 1), axis=1)[:, None], 1)
+            lam_t = float(np.median(closest))
+            if abs(lam_t - 1) <= margin:
+                dim, lam = d, lam_t
+                coord = (P - mean) @ Vt[0]
+                idx = np.nonzero(member)[0]
+                order = idx[np.argsort(coord[idx], kind="stable")]
+    n_out = int(out_mask.sum())
+    if m == 0:
+        words = (f"no point found: all {n_starts} starts ended with q above slow_tol="
+                 f"{slow_tol:g} (raise slow_tol or max_iter, or start elsewhere)"
+                 if n_discarded == n_starts else "no point found")
+    elif dim == 0:
+        inside = m - n_out
+        nf = int((fixed & ~out_mask).sum())
+        words = (f"{inside} isolated point{'s' if inside != 1 else ''} ({nf} fixed, "
+                 f"{inside - nf} slow)")
+    else:
+        all_fixed = bool(fixed[member].all())
+        shape = _SHAPES.get(dim, f"slow manifold of dimension {dim}")
+        noun = "fixed points" if all_fixed else "slow points"
+        words = (f"{'' if all_fixed else 'approximate '}{shape}: {k} {noun} along "
+                 f"{_NUMBER_WORDS.get(dim, f'{dim} directions')}, |λ| {lam:.3f}")
+    if n_out:
+        words += f"; {n_out} outside the recorded states (not counted)"
+    return {"in_slow_set": readonly(member), "slow_set_dimension": dim,
+            "slow_set_explained": readonly(explained, np.float64),
+            "slow_set_coordinate": readonly(coord, np.float64),
+            "slow_set_order": readonly(order, np.int64), "tangent_eigenvalue": lam,
+            "summary": words}
+
+
+def _mean_input(x: Any, trace: Any, I: int) -> Any:
+    """``x`` itself, or the trace's mean input for "mean" / ("mean", t0, t1)."""
+    is_mean = isinstance(x, str) or (isinstance(x, tuple) and len(x) > 0
+                                     and isinstance(x[0], str))
+    if not is_mean:
+        return x
+    how = "x must be an input vector of shape (I,), \"mean\" or (\"mean\", t0, t1)"
+    if (x if isinstance(x, str) else x[0]) != "mean" or (isinstance(x, tuple) and len(x) != 3):
+        raise ValueError(f"{how}, got {x!r}")
+    if not isinstance(trace, Trace):
+        raise TypeError(f"x={x!r} averages the inputs of a trace; pass the Trace the inputs "
+                        f"were recorded in, got {type(trace).__name__}")
+    T = trace.inputs.shape[1]
+    t0, t1 = (0, T) if isinstance(x, str) else x[1:]
+    if any(isinstance(t, bool) or not isinstance(t, (int, np.integer)) for t in (t0, t1)) \
+            or not 0 <= t0 < t1 <= T:
+        raise ValueError(f"{how} with integer steps 0 <= t0 < t1 <= {T} (the trace's length), "
+                         f"got {x!r}")
+    window = np.asarray(trace.inputs[:, t0:t1], dtype=np.float64)  # (B, t1-t0, I)
+    return window.reshape(-1, window.shape[2]).mean(axis=0)
 
 
 def _reach(P: torch.Tensor, trace: Any) -> dict[str, Any]:
@@ -527,7 +684,7 @@ def _check_options(**opts: Any) -> None:
     it = opts["max_iter"]
     if isinstance(it, bool) or not isinstance(it, (int, np.integer)) or it < 0:
         raise ValueError(f"max_iter must be an integer >= 0, got {it!r}")
-    for name in ("slow_tol", "distance_tol", "marginal_tol", "tol"):
+    for name in ("slow_tol", "distance_tol", "marginal_tol", "tol", "slow_margin"):
         v = opts[name]
         if v is None and name == "tol":
             continue
@@ -552,11 +709,21 @@ def _gauss_newton(system, s, X, r) -> tuple[torch.Tensor, torch.Tensor]:
     return A.mT @ A, (A.mT @ r.unsqueeze(-1)).squeeze(-1)
 
 
-def _minimise(system, s0, X, *, tol, max_iter, progress):
+def _minimise(system, s0, X, *, tol, max_iter, progress, slow_tol=0.0, slow_margin=0.0):
     """Levenberg–Marquardt on q for every start at once.
 
-    Returns the final states (n, S) and q (n,) in float64, and whether each start converged
-    (reached a fixed point or a minimum of q) rather than running out of iterations.
+    Returns the final states (n, S) and q (n,) in float64, whether each start converged
+    (reached a fixed point or a minimum of q, or settled on the speed rule) rather than running
+    out of iterations, and whether it settled on the speed rule.
+
+    NOTE: [Stopping on speed]
+    A start with ``q <= slow_tol`` whose next step would be longer than ``speed / slow_margin``
+    (speed ``sqrt(2 q)``) stops where it is: a step that much longer than the distance the map
+    moves the state means ``|1 − λ| < slow_margin`` along the step, a slow direction, and
+    following it would slide the start along a slow valley (a line attractor's) to wherever the
+    valley ends, merging a whole manifold of slow points into one. Near an isolated fixed point
+    whose eigenvalues stay away from 1 the step is about as long as the speed, and the start
+    is polished to a fixed point as before.
 
     NOTE: [Batched damped Gauss–Newton]
     The starts do not interact, so q summed over starts has a block-diagonal Hessian and each
@@ -577,14 +744,15 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
     r = _residual(system, s, X).to(torch.float64)
     q = 0.5 * (r * r).sum(dim=1)  # (n,)
     converged = torch.ones(q.shape, dtype=torch.bool)
+    settled = torch.zeros(q.shape, dtype=torch.bool)
     # below tol a point counts as fixed; a few more (quadratically convergent) steps pin it down
     polish = tol * 1e-8
     active = (q > polish).nonzero().squeeze(1)
     if active.numel() == 0:
-        return s.to(torch.float64), q, converged
+        return s.to(torch.float64), q, converged, settled
     if max_iter == 0:
         converged[active] = False
-        return s.to(torch.float64), q, converged
+        return s.to(torch.float64), q, converged, settled
     H, g = _gauss_newton(system, s[active], X[active], r[active])
     mu = torch.full((active.numel(),), 1e-3, dtype=torch.float64)
     nu = torch.full_like(mu, 2.0)
@@ -594,11 +762,16 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
                       delay=show["delay"]) as bar:
         for _ in range(max_iter):
             delta, info = _damped_solve(H, g, mu)  # (a, S)
+            q_a = q[active]
+            # see NOTE: [Stopping on speed]
+            slow = (info == 0) & (q_a <= slow_tol) & (
+                slow_margin * torch.linalg.vector_norm(delta, dim=1) > torch.sqrt(2 * q_a))
+            if slow_margin > 0 and bool(slow.any()):
+                settled[active[slow]] = True
             trial = s[active] + delta.to(s.dtype)
             r_t = _residual(system, trial, X[active]).to(torch.float64)
             q_t = 0.5 * (r_t * r_t).sum(dim=1)
-            q_a = q[active]
-            accept = (info == 0) & torch.isfinite(q_t) & (q_t < q_a)
+            accept = (info == 0) & torch.isfinite(q_t) & (q_t < q_a) & ~slow
             tiny = accept & (q_a - q_t <= 1e-10 * q_a)
             stall = torch.where(accept, torch.where(tiny, stall + 1, 0), stall)
             mu = torch.where(accept, (mu / 3).clamp_min(1e-15), mu * nu)
@@ -607,7 +780,7 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
             s[moved] = trial[accept]
             q[moved] = q_t[accept]
             r[moved] = r_t[accept]
-            done = (q[active] <= polish) | (stall >= 3) | (mu > 1e12)
+            done = (q[active] <= polish) | (stall >= 3) | (mu > 1e12) | slow
             left = ~done
             refresh = (accept & left)[left]  # among those left, who needs a new Jacobian
             if not bool(left.all()):  # (copying H is not free: only when starts finished)
@@ -622,7 +795,7 @@ def _minimise(system, s0, X, *, tol, max_iter, progress):
             if active.numel() == 0:
                 break
     converged[active] = False
-    return s.to(torch.float64), q, converged
+    return s.to(torch.float64), q, converged, settled
 
 
 def _scaling(H: torch.Tensor) -> torch.Tensor:

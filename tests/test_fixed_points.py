@@ -151,7 +151,9 @@ def test_two_unit_tanh_map_has_a_saddle_with_the_right_unstable_direction():
 def test_slow_point_of_a_map_without_fixed_points():
     a, b = 0.1, 0.01
     system = _map(lambda s, x: s + a * (s * s + b), 1)
-    fp = find_fixed_points(system, None, starts=[[-0.4], [0.3], [0.05]])
+    # slow_margin=0: follow every start to the minimum of q (the default stops on the slow
+    # stretch around it, see test_speed_rule_*)
+    fp = find_fixed_points(system, None, starts=[[-0.4], [0.3], [0.05]], slow_margin=0)
     # analytic: F(h) - h = a (h² + b) > 0 has no root; q = ½ a² (h² + b)² is smallest at h = 0
     # with q = ½ a² b², where F'(0) = 1 (the ghost of a saddle-node pair)
     assert len(fp) == 1 and not fp.is_fixed[0]
@@ -169,7 +171,7 @@ def test_degenerate_fixed_point_converges_slowly_and_is_marginal():
     assert early.n_unconverged == 1 and len(early) == 1
     assert not early.converged[0] and not early.is_fixed[0]
     assert early.q[0] == pytest.approx(0.5 * c**2 * early.points[0, 0] ** 6, rel=1e-12)
-    done = find_fixed_points(system, None, starts=[[0.5]])
+    done = find_fixed_points(system, None, starts=[[0.5]], slow_margin=0)
     assert done.n_unconverged == 0 and done.is_fixed[0] and done.converged[0]
     assert abs(done.points[0, 0]) < 1e-3 and done.stability[0] == "marginal"
 
@@ -179,6 +181,8 @@ def test_starts_above_slow_tol_are_discarded():
     system = _map(lambda s, x: s + a * (s * s + b), 1)
     fp = find_fixed_points(system, None, starts=[[0.3], [0.05]], slow_tol=1e-9)
     assert len(fp) == 0 and fp.n_discarded == 2 and fp.final_q.shape == (2,)
+    assert fp.summary.startswith("no point found: all 2 starts ended with q above slow_tol")
+    assert fp.slow_set_dimension == 0 and "no point found" in repr(fp)
     assert fp.eigenvalues.shape == (0, 1) and fp.to_frame().shape[0] == 0
 
 
@@ -288,7 +292,9 @@ def test_to_frame_and_counts(saddle_case):
     df = fp.to_frame()
     assert list(df.columns[:8]) == ["q", "speed", "kind", "converged", "stability",
                                     "n_unstable", "spectral_radius", "support"]
-    assert list(df.columns[8:]) == ["state[0]", "state[1]"]
+    assert list(df.columns[8:11]) == ["outside", "in_slow_set", "along_slow_set"]
+    assert list(df.columns[11:]) == ["state[0]", "state[1]"]
+    assert df.attrs["summary"] == fp.summary and fp.summary
     assert df.shape[0] == len(fp) and sum(fp.counts.values()) == len(fp)
     np.testing.assert_allclose(df["spectral_radius"], np.abs(fp.eigenvalues).max(axis=1))
     assert "FixedPoints(" in repr(fp)
@@ -413,7 +419,8 @@ def test_find_fixed_points_accepts_numpy_scalar_tolerances_and_refuses_negative_
                            distance_tol=np.float64(1e-3), n_starts=3)
     assert fp.n_fixed == 1
     for bad in ({"fixed_tol": -1e-9}, {"slow_tol": np.float64(-1.0)},
-                {"fixed_tol": float("nan")}, {"marginal_tol": np.inf}):
+                {"fixed_tol": float("nan")}, {"marginal_tol": np.inf},
+                {"slow_margin": -0.1}, {"slow_margin": "0.05"}):
         with pytest.raises(ValueError, match="must be a number >= 0|option of find_fixed_points"):
             find_fixed_points(system, trace, n_starts=3, **bad)
 def test_points_report_their_distance_to_the_recorded_states():
@@ -427,3 +434,153 @@ def test_points_report_their_distance_to_the_recorded_states():
     assert len(fp) == 1 and fp.outside.tolist() == [True]
     np.testing.assert_allclose(fp.points[0, 0], 6.0, atol=1e-6)
     np.testing.assert_allclose(fp.distance_to_states[0], 6.0 - tr.states.max(), atol=1e-6)
+
+
+# ---------------------------------------------------------------------- continuous attractors
+def _linear_with_unit_eigenvalues(S, n_one, seed=0):
+    """W = V diag(1, .., 1, 0.5, ..) V⁻¹ with n_one eigenvalues 1: a flat of fixed points."""
+    gen = np.random.default_rng(seed)
+    V = gen.normal(size=(S, S)) + 2 * np.eye(S)
+    lam = np.r_[np.ones(n_one), np.full(S - n_one, 0.5)]
+    return V @ np.diag(lam) @ np.linalg.inv(V), V
+
+
+@pytest.mark.parametrize("n_one", [1, 2])
+def test_linear_map_with_unit_eigenvalues_gives_a_slow_set_of_that_dimension(n_one):
+    S = 6
+    W, V = _linear_with_unit_eigenvalues(S, n_one)
+    Wt = torch.tensor(W)
+    system = _map(lambda s, x: s @ Wt.T, S)
+    h0 = np.random.default_rng(1).normal(size=(40, S))
+    fp = find_fixed_points(system, _trace(system, h0, T=10))
+    # common practice (Sussillo & Barak 2013 for slow points): the fixed points of s -> W s
+    # with n_one eigenvalues 1 fill the span of their eigenvectors; every one is marginal
+    assert len(fp) > 20 and set(fp.stability) == {"marginal"}
+    Q, _ = np.linalg.qr(V[:, :n_one])
+    np.testing.assert_allclose(fp.points - fp.points @ Q @ Q.T, 0.0, atol=1e-8)
+    assert fp.slow_set_dimension == n_one
+    assert fp.tangent_eigenvalue == pytest.approx(1.0, abs=1e-9)
+    shape = {1: "line attractor", 2: "plane attractor"}[n_one]
+    assert fp.summary.startswith(f"{shape}: {len(fp)} fixed points along")
+    assert fp.metadata["slow_set_dimension"] == n_one and fp.metadata["summary"] == fp.summary
+    if n_one == 1:  # ordered along the line: the coordinates increase along the order
+        c = fp.slow_set_coordinate[fp.slow_set_order]
+        assert np.all(np.diff(c) > 0) and fp.slow_set_order.size == len(fp)
+
+
+def _tanh_line(S=8, seed=0):
+    """tanh(W s), W = v vᵀ + 0.5 P⊥ M P⊥ with v = 1/√S: the line s = a v maps to
+    tanh(a/√S)·√S·v, slower than a only by ~a³/(3S): an approximate line attractor."""
+    gen = np.random.default_rng(seed)
+    v = np.ones(S) / np.sqrt(S)
+    P = np.eye(S) - np.outer(v, v)
+    M = np.linalg.qr(gen.normal(size=(S, S)))[0]
+    W = np.outer(v, v) + 0.5 * P @ M @ P
+    return torch.tensor(W), v
+
+
+def test_speed_rule_keeps_an_approximate_line_attractor_spread():
+    Wt, v = _tanh_line()
+    system = _map(lambda s, x: torch.tanh(s @ Wt.T), v.size)
+    gen = np.random.default_rng(2)
+    h0 = np.outer(gen.uniform(-2, 2, 60), v) + 0.3 * gen.normal(size=(60, v.size))
+    tr = _trace(system, h0, T=15)
+    fp = find_fixed_points(system, tr)
+    # common practice: on s -> tanh(W s) with a unit eigenvalue along v the line a·v is
+    # only slowly drifting (speed ~ |a|³ / (3 S)); its slow points lie along v and the whole
+    # search must not end at the one true fixed point 0 (Sussillo & Barak 2013)
+    assert len(fp) >= 20 and fp.slow_set_dimension == 1
+    along = fp.points @ v
+    # the slow stretch ends where the speed a − √S tanh(a/√S) reaches sqrt(2 slow_tol)
+    # (scipy brentq on the analytic speed along the line)
+    rt = np.sqrt(v.size)
+    edge = scipy.optimize.brentq(lambda a: a - rt * np.tanh(a / rt) - np.sqrt(2e-5), 0.01, 5)
+    assert 0.8 * edge < along.max() <= edge + 1e-6 and -edge - 1e-6 <= along.min() < -0.8 * edge
+    off = fp.points - np.outer(along, v)
+    assert np.abs(off).max() < 0.05
+    assert fp.tangent_eigenvalue == pytest.approx(1.0, abs=0.05)
+    assert fp.summary.startswith(f"approximate line attractor: {int(fp.in_slow_set.sum())} "
+                                 "slow points along one direction, |λ| 0.9")
+    assert fp.settled.sum() > 10 and set(fp.stability[fp.in_slow_set]) <= {"marginal",
+                                                                            "stable"}
+    # turning the speed rule off slides every start to (near) the origin
+    collapsed = find_fixed_points(system, tr, slow_margin=0)
+    assert np.ptp(collapsed.points @ v) < 0.5 * np.ptp(along)
+
+
+# ---------------------------------------------------------------------- reach and key figures
+def test_points_outside_the_recorded_states_are_flagged_and_not_counted():
+    from hiddenlens._builtin_analyses import _figures_fixed_points, _fixed_point_words
+
+    # s -> 0.5 s + x, x = 3: the only fixed point s* = x / (1 − 0.5) = 6 (common practice)
+    # lies far beyond states recorded under inputs near 0
+    step = hl.wrap(lambda s, x: 0.5 * s + x, state_size=1, input_size=1, dtype=F64)
+    tr = hl.record(step, 0.1 * np.random.default_rng(0).standard_normal((2, 20, 1)))
+    fp = hl.find_fixed_points(step, tr, np.array([3.0]), n_starts=8)
+    assert len(fp) == 1 and fp.outside[0] and fp.stability[0] == "stable"
+    f = _figures_fixed_points(fp)
+    assert f["fixed_points_stable"] == 0 and f["fixed_points_outside"] == 1
+    assert f["slow_set_dimension"] == 0
+    assert _fixed_point_words(f) == [
+        "no fixed point inside the recorded states (1 outside, not counted)"]
+    assert "1 outside the recorded states (not counted)" in fp.summary
+    assert fp.to_frame()["outside"].tolist() == [True]
+    inside = hl.find_fixed_points(step, tr, n_starts=8)  # x = 0: s* = 0, within the states
+    assert _figures_fixed_points(inside)["fixed_points_stable"] == 1
+
+
+# ---------------------------------------------------------------------- mean constant input
+def test_constant_input_may_be_the_mean_input_over_a_window():
+    # s -> 0.5 s + x1 − x2 has the one fixed point s* = 2 (x1 − x2) (common practice:
+    # x / (1 − 0.5)); the
+    # mean input is checked against numpy's mean of the recorded inputs
+    step = hl.wrap(lambda s, x: 0.5 * s + x[:, :1] - x[:, 1:], state_size=1, input_size=2,
+                   dtype=F64)
+    x = np.zeros((3, 30, 2))
+    x[:, :10, 0] = 1.0
+    x[:, 10:, 1] = np.random.default_rng(0).uniform(0, 0.2, (3, 20))
+    tr = hl.record(step, x)
+    whole = hl.find_fixed_points(step, tr, "mean", n_starts=8)
+    m = x.reshape(-1, 2).mean(axis=0)
+    np.testing.assert_allclose(whole.x, m, atol=1e-15)
+    np.testing.assert_allclose(whole.points[:, 0], [2 * (m[0] - m[1])], atol=1e-8)
+    cue = hl.find_fixed_points(step, tr, ("mean", 0, 10), n_starts=8)
+    np.testing.assert_allclose(cue.x, [1.0, 0.0])
+    np.testing.assert_allclose(cue.points[:, 0], [2.0], atol=1e-8)
+    for bad, err in (("median", ValueError), (("mean", 5, 5), ValueError),
+                     (("mean", 0, 31), ValueError), (("mean", 0.0, 10), ValueError),
+                     (("mean", 0), ValueError)):
+        with pytest.raises(err, match="mean"):
+            hl.find_fixed_points(step, tr, bad, n_starts=8)
+    with pytest.raises(TypeError, match="averages the inputs of a trace"):
+        hl.find_fixed_points(step, None, "mean", starts=[[0.0]])
+
+
+# ---------------------------------------------------------------------- an integrator net
+def test_line_attractor_of_a_pulse_integrating_rnn_is_found_with_default_settings():
+    # a tanh nn.RNN built to integrate ±pulses: W_hh = v vᵀ + 0.5 P⊥ M P⊥, W_ih = 0.3 v, so
+    # the state adds each pulse along v and keeps it (an approximate line attractor, Mante
+    # et al. 2013; slow points after Sussillo & Barak 2013)
+    S = 10
+    Wt, v = _tanh_line(S, seed=3)
+    rnn = nn.RNN(1, S, batch_first=True)
+    with torch.no_grad():
+        rnn.weight_hh_l0.copy_(Wt.float())
+        rnn.weight_ih_l0.copy_(0.3 * torch.tensor(v, dtype=torch.float32)[:, None])
+        rnn.bias_hh_l0.zero_()
+        rnn.bias_ih_l0.zero_()
+    gen = torch.Generator().manual_seed(0)
+    B, T = 48, 60
+    pulses = (torch.rand(B, T, 1, generator=gen) < 0.15).float() * torch.where(
+        torch.rand(B, T, 1, generator=gen) < 0.5, -1.0, 1.0)
+    tr = hl.record(rnn, pulses)
+    # the integrator works: the state along v follows the running pulse sum (numpy corrcoef)
+    run = pulses.cumsum(1)[..., 0].numpy().ravel()
+    assert np.corrcoef((tr.states @ v).ravel(), run)[0, 1] > 0.95
+    fp = hl.find_fixed_points(rnn, tr)
+    assert fp.slow_set_dimension == 1 and fp.in_slow_set.sum() >= 20
+    along = fp.points @ v
+    assert np.ptp(along[fp.in_slow_set]) > 0.5
+    assert np.abs(fp.points - np.outer(along, v)).max() < 0.05
+    assert fp.summary.startswith("approximate line attractor:")
+    assert "|λ| 0.9" in fp.summary or "|λ| 1.0" in fp.summary
