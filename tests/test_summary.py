@@ -51,7 +51,7 @@ def test_run_analyses_pca_matches_direct_call(inputs):
     np.testing.assert_array_equal(out.trace.states, trace.states)
     direct = hiddenlens.pca_trajectories(trace, k=3)
     assert_allclose(out["pca"].explained_variance_ratio, direct.explained_variance_ratio)
-    assert out.options["pca"] == {"n_components": 3}
+    assert out.options["pca"] == {"k": 3}
     assert out.seconds["pca"] >= 0 and out.skipped == {}
 
 
@@ -72,7 +72,7 @@ def test_memory_in_data_mode_drops_the_probe_budget(inputs):
     model = _rnn()
     trace = hiddenlens.record(model, inputs)
     out = run_analyses(model, inputs, which=["memory"],
-                       options={"memory": {"trace": trace, "max_lag": 3}})
+                       options={"memory": {"mode": "data", "max_lag": 3}})  # the recording
     assert "n_steps" not in out.options["memory"]
     direct = hiddenlens.memory_curve(model, trace, max_lag=3, seed=0)
     assert out["memory"].mode == "data"
@@ -97,11 +97,11 @@ def test_run_analyses_refuses_bad_options(inputs):
 
 def test_run_analyses_failure_raises_or_is_skipped(inputs):
     model = _rnn()
-    bad = {"pca": {"n_components": 99}}
-    with pytest.raises(ValueError, match="n_components"):
+    bad = {"pca": {"k": 99}}
+    with pytest.raises(ValueError, match="k"):
         run_analyses(model, inputs, which=["pca"], options=bad)
     out = run_analyses(model, inputs, which=["pca"], options=bad, on_error="skip")
-    assert "pca" not in out and "n_components" in out.skipped["pca"]
+    assert "pca" not in out and "k" in out.skipped["pca"]
 
 
 def test_missing_analysis_is_skipped_with_a_note(monkeypatch, inputs):
