@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
+import os
 import threading
 from collections.abc import Iterator
 from typing import Any
@@ -50,6 +51,11 @@ def _omp() -> Any:
                         candidates.append(path)
         except OSError:
             pass
+        # other packages load their own copies (scikit-learn and scipy vendor libgomp): try
+        # torch's own first, and keep a runtime only if setting it changes torch's count
+        here = os.path.dirname(torch.__file__)
+        candidates.sort(key=lambda p: not p.startswith(here))
+        torch.get_num_threads()  # let torch's lazy per-thread initialisation run first
         for path in candidates:
             try:
                 lib = ctypes.CDLL(path)  # the already loaded library: same handle
@@ -57,7 +63,16 @@ def _omp() -> Any:
                 lib.omp_get_max_threads.restype = ctypes.c_int
             except (OSError, AttributeError):
                 continue
-            if lib.omp_get_max_threads() == torch.get_num_threads():
+            before = int(lib.omp_get_max_threads())
+            if before != torch.get_num_threads():
+                continue
+            probe = before + 1
+            lib.omp_set_num_threads(probe)
+            try:
+                drives_torch = torch.get_num_threads() == probe
+            finally:
+                lib.omp_set_num_threads(before)
+            if drives_torch:
                 _OMP = lib
                 break
         return _OMP
