@@ -328,6 +328,32 @@ def _lstm_cells(layer: LayerWeights, x, h_first, h_seq, c0, out):
     return out
 
 
+def _refuse_random_steps(system: RecurrentSystem, s: torch.Tensor, x: torch.Tensor) -> None:
+    """Refuse a step function that draws from torch's global RNG, before it draws anything.
+
+    One step under ``vmap(randomness="error")`` raises at the first random operation, so the
+    user's global generator is never advanced (and never saved and restored behind their back).
+    Other failures inside vmap are left for the recording itself to meet.
+    """
+    from torch.func import vmap
+
+    def one(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+        return system._step_fn(a[None], b[None])[0]
+
+    try:
+        with torch.no_grad():
+            vmap(one, randomness="error")(s, x)
+    except RuntimeError as err:
+        if "random" in str(err).lower():
+            raise TypeError(
+                f"the step function of {system.source} draws random numbers from torch's global "
+                "generator; hiddenlens analyses a deterministic map and never draws from your "
+                "generator: pass the noise as an input (one more input feature, drawn beforehand "
+                "with your own torch.Generator) or remove it") from None
+    except Exception:  # noqa: BLE001 - anything else is the recording's to report
+        pass
+
+
 def _run_callable(system: RecurrentSystem, inputs, h0, progress):
     from tqdm.auto import tqdm
 
@@ -336,6 +362,7 @@ def _run_callable(system: RecurrentSystem, inputs, h0, progress):
     xs = inputs.transpose(0, 1).contiguous()  # (T, B, I): contiguous per-step inputs
     s = h0
     show = progress if progress is not None else T >= 20_000
+    _refuse_random_steps(system, s[:1], xs[0, :1])
     # a module step function is already a private copy in eval mode (see _snapshot)
     for t in tqdm(range(T), disable=not show, desc="recording", leave=False):
         s = system._step_fn(s, xs[t])

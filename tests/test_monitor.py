@@ -46,7 +46,7 @@ def test_monitor_records_timeline_and_leaves_training_alone(tmp_path):
     lam = t[t.figure == "lyapunov_max"]
     assert np.all(lam.low <= lam.value) and np.all(lam.value <= lam.high)
     # the last check equals a direct analysis of the trained weights (library oracle)
-    direct = hl.lyapunov_spectrum(monitored, probe, k=1, warmup=10, seed=0)
+    direct = hl.lyapunov_spectrum(monitored, hl.record(monitored, probe), k=1, warmup=10, seed=0)
     np.testing.assert_allclose(lam.value.iloc[-1], direct.exponents[0], rtol=1e-5)
     for ext in ("csv", "json"):
         path = tmp_path / f"timeline.{ext}"

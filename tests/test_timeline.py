@@ -36,7 +36,8 @@ def test_folder_ordered_by_names_and_stored_steps(tmp_path):
     for row, st in zip(range(3), s):
         model = sl.make_tanh_rnn()
         model.load_state_dict(st)
-        ref = hl.lyapunov_spectrum(model, x, k=1, warmup=15, seed=0).exponents[0]
+        ref = hl.lyapunov_spectrum(model, hl.record(model, x), k=1, warmup=15,
+                                   seed=0).exponents[0]
         np.testing.assert_allclose(tl.values[row, 0], ref, rtol=1e-5)
     assert tl.values[0, 0] < tl.values[2, 0]  # larger gain, larger exponent
     t = tl.table

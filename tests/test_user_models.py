@@ -220,7 +220,8 @@ def test_leaky_lyapunov_per_unit_time(gen):
     a, w, dt = 0.1, 0.5, 0.02
     sys = hl.leaky_rnn(np.array([[w]]), np.zeros((1, 1)), alpha=a, dt=dt, nonlinearity="relu",
                        dtype=torch.float64)
-    res = hl.lyapunov_spectrum(sys, np.zeros((1, 200, 1)), h0=np.array([[1.0]]), warmup=0)
+    res = hl.lyapunov_spectrum(sys, hl.record(sys, np.zeros((1, 200, 1)), np.array([[1.0]])),
+                               warmup=0)
     per_step = np.log(1 - a + a * w)
     assert abs(float(np.ravel(res.exponents)[0]) - per_step) < 1e-6
     assert res.metadata["dt"] == dt
@@ -349,7 +350,7 @@ def test_lengths_saved_and_padding_left_out_of_pca(gen, tmp_path):
     # reference: scikit-learn PCA fitted on the real steps only
     real = np.concatenate([tr.states[b, :n] for b, n in enumerate(lengths)]).astype(np.float64)
     ref = PCA(n_components=2).fit(real)
-    res = hl.pca_trajectories(tr, n_components=2)
+    res = hl.pca_trajectories(tr, k=2)
     assert np.allclose(res.explained_variance, ref.explained_variance_, rtol=1e-8)
     assert np.allclose(np.abs(res.components), np.abs(ref.components_), atol=1e-8)
     mask = np.arange(10)[None] < np.array(lengths)[:, None]
@@ -441,7 +442,7 @@ def test_embedding_front_end_records_from_token_ids(gen, snapshot):
         ref = model.rnn(model.embed(ids))[0]
     assert np.abs(tr.part("layer0.h") - ref.numpy()).max() <= 1e-6
     assert tr.metadata["front"] == "embed" and tr.input_size == 4
-    assert hl.pca_trajectories(tr, n_components=2).projected.shape == (3, 9, 2)
+    assert hl.pca_trajectories(tr, k=2).projected.shape == (3, 9, 2)
     snap.assert_unchanged()
     with pytest.raises(ValueError, match="no submodule named 'embedding' to use as front end"):
         hl.wrap(model, front="embedding")
@@ -532,7 +533,7 @@ def test_cli_submodule_option_lengths_and_nested_checkpoint(gen, tmp_path, capsy
     rc = cli.main(["report", "--model", "test_user_models:make_seq2seq", "--weights", str(ckpt),
                    "--submodule", "encoder", "--inputs", str(tmp_path / "x.npy"),
                    "--lengths", str(tmp_path / "n.npy"), "--analyses", "pca",
-                   "--option", "pca.n_components=2", "-o", str(out), "-q"])
+                   "--option", "pca.k=2", "-o", str(out), "-q"])
     assert rc == 0
     assert "extra_head.weight" not in capsys.readouterr().err  # -q: no notes
     assert any(out.iterdir())
