@@ -17,6 +17,7 @@ import numpy as np
 import torch
 
 from ._results import frozen_mapping, readonly
+from ._threads import single_thread
 from ._trace import Trace
 
 __all__ = ["TaskMemory", "task_memory", "task_memory_analysis", "task_memory_key_figures"]
@@ -242,7 +243,8 @@ def task_memory(
         Cross-validation folds; whole sequences are held out (a seeded shuffle assigns them, see
         ``metadata["fold_of"]``).
     n_permutations : int, default 20
-        Refits on targets permuted across sequences, for the chance band.
+        Refits on targets permuted across sequences, for the chance band (categories: a
+        closed-form ridge classifier with penalty 1 / C; continuous: the ridge decoder).
     level : float, default 0.05
         Per-lag significance of the band; needs ``n_permutations >= 1 / level - 1``.
     alphas : float or sequence of float, optional
@@ -257,7 +259,8 @@ def task_memory(
     max_rows : int, default 20000
         Per-step targets: at most this many (sequence, step) rows, a seeded draw.
     max_iter : int, default 300
-        Iterations of the batched L-BFGS fit of the logistic decoders.
+        Iterations of the batched Newton (small decoders) or L-BFGS fit of the logistic
+        decoders.
     seed : int, default 0
         Seed of the local generator for the folds, the permutations and the row draw.
 
@@ -268,8 +271,11 @@ def task_memory(
     Notes
     -----
     All lags (and all permutations) are fitted together: the ridge decoders of a fold share one
-    batched eigendecomposition per lag, and the logistic decoders are one batched L-BFGS
-    problem. Cautions: linear decoding is a lower bound; the chance band is finite-sample and
+    batched eigendecomposition per lag, and the logistic decoders of the unpermuted targets are
+    one batched L-BFGS problem. The categorical chance band comes from a ridge classifier
+    (least squares on one-hot targets, one Cholesky factor per lag for every permutation), a
+    linear decoder at chance on permuted targets as the logistic one is, but not the same
+    estimator. Cautions: linear decoding is a lower bound; the chance band is finite-sample and
     per lag; targets permuted across sequences keep each sequence's time structure.
 
     References
@@ -303,9 +309,23 @@ def task_memory(
     cross = np.full((n_f, L, L), np.nan) if cross_temporal else None
     weights = []
     chosen = []
+    # one thread for small batched work: on a busy machine a second thread waiting for a core
+    # turns each small product into milliseconds (see hiddenlens._threads)
+    small = X.shape[0] * X.shape[1] * X.shape[2] < 4_000_000
     for f in range(n_f):
         train = torch.as_tensor(fold_of[row_seq] != f)
-        out = fit(X, Y, M & train[None], M & ~train[None], opts, cross_temporal)
+        tr_m, te_m = M & train[None], M & ~train[None]
+        with single_thread(small):
+            if opts["categorical"]:
+                # logistic for the reported scores; the permutation null from the closed-form
+                # ridge classifier (least squares on one-hot targets), see docs/task_memory.md
+                out = fit(X, Y[..., :1], tr_m, te_m, opts, cross_temporal)
+                if R > 1:
+                    out["score"] = np.concatenate(
+                        [out["score"], _null_ridge_classifier(X, Y[..., 1:], tr_m, te_m, opts)],
+                        axis=1)
+            else:
+                out = fit(X, Y, tr_m, te_m, opts, cross_temporal)
         fold_scores[f] = out["score"]
         if fold_acc is not None:
             fold_acc[f] = out["accuracy"]
@@ -671,6 +691,11 @@ def _fit_logistic(X, Y, train, test, opts, want_cross):
         loss = (per * wt).sum() + pen * (W * W).sum()
         return loss, XsT @ resid + 2 * pen * W, resid.sum(dim=1, keepdim=True)
 
+    D = (S + 1) * out_dim
+    if D <= 96 and G * N * Lq * R * D * D <= 2e8:
+        W, b = _newton_logistic(Xs, Yl.reshape(G, N, Lq * R), train.to(_F64), K, out_dim,
+                                2 * pen, opts["max_iter"])
+        W.grad, b.grad = None, None
     W.grad, b.grad = torch.zeros_like(W), torch.zeros_like(b)
     opt = torch.optim.LBFGS([W, b], lr=1.0, max_iter=opts["max_iter"], history_size=30,
                             tolerance_grad=1e-7, tolerance_change=1e-12,
@@ -683,7 +708,8 @@ def _fit_logistic(X, Y, train, test, opts, want_cross):
         return loss
 
     with torch.no_grad():
-        opt.step(closure)
+        if D > 96 or G * N * Lq * R * D * D > 2e8:
+            opt.step(closure)
         _, gW, gb = loss_and_grad(W, b)
     # a problem converged when its gradient is small against its number of rows
     gmax = torch.maximum(gW.abs().amax(dim=1), gb.abs().amax(dim=1))  # (G, Q)
@@ -722,6 +748,97 @@ def _fit_logistic(X, Y, train, test, opts, want_cross):
             "weights": Wflat.reshape(L, -1).numpy() if out_dim == 1 else
             Wflat.permute(0, 2, 1).reshape(L, -1).numpy(),
             "chosen": converged.reshape(-1)}
+
+
+def _newton_logistic(Xs, Yl, w, K, out_dim, lam, max_iter):
+    """Newton's method with step halving for small batched logistic problems.
+
+    Xs (G, N, S) standardised rows, Yl (G, N, Q) class codes, w (G, N) training-row weights;
+    objective sum_i w_i loss_i + lam ||W||^2 / 2 (intercept unpenalised). Returns W (G, S,
+    Q * out_dim) and b (G, 1, Q * out_dim) in the layout of :func:`_fit_logistic`."""
+    G, N, S = Xs.shape
+    Q = Yl.shape[2]
+    A = S + 1
+    Xa = torch.cat([Xs, torch.ones(G, N, 1, dtype=_F64)], dim=2)  # (G, N, A)
+    pen = torch.ones(A, dtype=_F64)
+    pen[-1] = 0.0
+    if out_dim == 1:
+        Yt = Yl.to(_F64)[..., None]  # (G, N, Q, 1)
+    else:
+        Yt = torch.nn.functional.one_hot(Yl, K).to(_F64)  # (G, N, Q, K)
+    theta = torch.zeros(G, Q, A, out_dim, dtype=_F64)
+    wn = w[:, :, None]  # (G, N, 1)
+
+    def objective(th):  # (..., G, Q, A, out) -> (..., G, Q)
+        z = torch.einsum("gna,...gqao->...gnqo", Xa, th)
+        if out_dim == 1:
+            per = torch.nn.functional.softplus(z[..., 0]) - z[..., 0] * Yt[..., 0]
+        else:
+            per = torch.logsumexp(z, dim=-1) - (z * Yt).sum(dim=-1)
+        return (per * wn).sum(dim=-2) + 0.5 * lam * (th * th * pen[:, None]).sum(dim=(-2, -1))
+
+    steps = torch.tensor([0.5 ** i for i in range(12)], dtype=_F64)
+    eye = torch.eye(A * out_dim, dtype=_F64)
+    for _ in range(max_iter):
+        z = torch.einsum("gna,gqao->gnqo", Xa, theta)
+        if out_dim == 1:
+            p = torch.sigmoid(z)
+            c = (p * (1 - p) * wn[..., None])[..., None]  # (G, N, Q, 1, 1)
+        else:
+            p = torch.softmax(z, dim=-1)
+            c = (torch.diag_embed(p) - p[..., :, None] * p[..., None, :]) * wn[..., None, None]
+        grad = torch.einsum("gna,gnqo->gqao", Xa, (p - Yt) * wn[..., None]) \
+            + lam * theta * pen[:, None]
+        hess = torch.einsum("gna,gnqkl,gnb->gqkalb", Xa, c, Xa).reshape(G, Q, A * out_dim,
+                                                                        A * out_dim)
+        hess = hess + torch.diag_embed((lam * pen).repeat(out_dim)) + 1e-9 * (N + 1) * eye
+        g = grad.permute(0, 1, 3, 2).reshape(G, Q, A * out_dim)
+        step = torch.linalg.solve(hess, g[..., None])[..., 0]
+        step = step.reshape(G, Q, out_dim, A).permute(0, 1, 3, 2)
+        if float(g.abs().max()) < 1e-10 * max(N, 1):
+            break
+        f0 = objective(theta)
+        trial = theta[None] - steps[:, None, None, None, None] * step[None]
+        ft = objective(trial)  # (n_steps, G, Q)
+        ok = ft <= f0[None]
+        first = torch.where(ok.any(dim=0), ok.to(torch.int64).argmax(dim=0),
+                            torch.full_like(f0, len(steps) - 1, dtype=torch.int64))
+        theta = theta - steps[first][..., None, None] * step
+    W = theta[:, :, :S, :].permute(0, 2, 1, 3).reshape(G, S, Q * out_dim)
+    b = theta[:, :, S, :].reshape(G, 1, Q * out_dim)
+    return W.contiguous(), b.contiguous()
+
+
+def _null_ridge_classifier(X, Y, train, test, opts):
+    """Balanced accuracy of ridge classifiers fitted to permuted targets, for the chance band.
+
+    Least squares on one-hot targets of the standardised, centred training rows with penalty
+    1 / C (scikit-learn's RidgeClassifier, multi-output): one Cholesky factor of the fold's Gram
+    per lag serves every permutation, and the class of a row is the largest output. Returns
+    (L, P)."""
+    G, N, S = X.shape
+    _, _, Lq, P = Y.shape
+    K = opts["classes"].size
+    mu, sd = _standardise(X, train)
+    Xs = (X - mu) / sd
+    wt = train.to(_F64)[..., None]  # (G, N, 1)
+    n = wt.sum(dim=1, keepdim=True).clamp(min=1)  # (G, 1, 1)
+    Yl = Y.to(torch.long)
+    Yo = torch.nn.functional.one_hot(Yl, K).to(_F64).reshape(G, N, Lq * P * K)
+    xbar = (Xs * wt).sum(dim=1, keepdim=True) / n
+    ybar = (Yo * wt).sum(dim=1, keepdim=True) / n
+    Xc = (Xs - xbar) * wt
+    gram = Xc.transpose(1, 2) @ Xc + (1.0 / opts["C"]) * torch.eye(S, dtype=_F64)
+    chol = torch.linalg.cholesky(gram)
+    beta = torch.cholesky_solve(Xc.transpose(1, 2) @ (Yo - ybar), chol)  # (G, S, Q)
+    z = ((Xs - xbar) @ beta + ybar).reshape(G, N, Lq, P, K)
+    pred = z.argmax(dim=-1)  # (G, N, Lq, P)
+    if G > 1:
+        bal, _ = _class_scores(Yl[:, :, 0], pred[:, :, 0], test[:, :, None], K)
+    else:
+        bal, _ = _class_scores(Yl[0].transpose(0, 1), pred[0].transpose(0, 1),
+                               test.expand(Lq, N)[:, :, None], K)
+    return bal
 
 
 def _class_scores(y, pred, mask, K, single: bool = False):
