@@ -252,6 +252,11 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     if "fixed_points" in present:
         fp = hiddenlens.find_fixed_points(model, trace, **opts["fixed_points"])
         assert run["arrays"]["fixed_points"]["stability"] == fp.stability.tolist()
+    if "task_memory" in present and "gru" in names:
+        # the shipped GRU was trained to hold a tag 20-40 steps (example_models/train.py): it
+        # must keep the colour well past the shortest delay
+        assert doc["runs"]["gru"]["key_figures"]["task_memory_span"] >= 30
+        assert "task variable" in page
 
 
 def test_report_damaged_inputs_fail_with_one_line(weights, capsys, tmp_path):
