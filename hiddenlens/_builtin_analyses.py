@@ -44,9 +44,21 @@ def _call_memory(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -
     return fn(system, **opts)  # memory_curve(system): probe mode
 
 
+def _call_task_memory(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
+    # the task variables may belong to trials other than the inputs of the other analyses:
+    # options={"task_memory": {"inputs": trials}} records those once, here
+    data = opts.pop("inputs", None)
+    if data is not None:
+        from ._record import record
+
+        trace = record(system, data)
+    return fn(system, trace, **opts)
+
+
 #: analysis -> adapter(function, system, trace, **options); absent: function(system, trace, ...)
 ADAPTERS: dict[str, Callable[..., Any]] = {
     "memory": _call_memory,
+    "task_memory": _call_task_memory,
 }
 
 
@@ -88,6 +100,15 @@ def _budget_memory(system: Any, trace: Any, seed: int, *, options: Mapping[str, 
     # probe mode: 5 sequences of 600 counted steps fit 41 lags of ridge readouts in well under
     # a second for S = 32 (the library default of 2000 steps is for final numbers)
     return {"max_lag": 40, "n_steps": 40 + 600, "seed": seed, "progress": False}
+
+
+def _budget_task_memory(system: Any, trace: Any, seed: int) -> dict[str, Any]:
+    # 19 permutations reach the 5% band (the smallest p-value is 1/20); 3 folds of whole
+    # sequences, lags up to 50 and no cross-temporal matrix keep the shipped 64-unit GRU on 96
+    # trials at a few seconds (the library defaults, 5 folds x 20 permutations with the
+    # matrix, are for final numbers)
+    return {"max_lag": min(50, max(trace.n_steps - 1, 0)), "n_folds": 3,
+            "n_permutations": 19, "cross_temporal": False, "max_iter": 100, "seed": seed}
 
 
 # ---------------------------------------------------------------------- key figures
@@ -156,6 +177,15 @@ def _figures_memory(r: Any) -> dict[str, Any]:
     if lags.size:
         out["memory_max_lag"] = float(lags.max())
     return out
+
+
+def _figures_task_memory(r: Any) -> dict[str, Any]:
+    from ._task_memory import task_memory_key_figures
+
+    f = task_memory_key_figures(r)
+    return {"task_memory_span": f["task_span"], "task_memory_peak": f["task_peak_score"],
+            "task_memory_chance": f["task_chance"],
+            "task_memory_max_lag": int(r.max_lag), "task_memory_score": f["task_score_name"]}
 
 
 # ---------------------------------------------------------------------- words
@@ -235,16 +265,33 @@ def _fixed_point_words(f: Mapping[str, Any]) -> list[str]:
 def _memory_words(f: Mapping[str, Any]) -> list[str]:
     parts = []
     span, limit = f.get("memory_span"), f.get("memory_max_lag")
+    # beside a task-memory span, this one is what the state keeps of the inputs themselves
+    # (random probes by default), not what it keeps of the task
+    what = "memory of random probe inputs" if finite(f.get("task_memory_span")) else \
+        "memory span"
     if finite(span):
         if span < 0:
             parts.append("no linear memory of the inputs, even at lag 0")
         elif limit is not None and span >= limit:
-            parts.append(f"memory span at least {span:.0f} steps (the longest lag tried)")
+            parts.append(f"{what} at least {span:.0f} steps (the longest lag tried)")
         else:
-            parts.append(f"memory span {span:.0f} step{'s' if span != 1 else ''}")
+            parts.append(f"{what} {span:.0f} step{'s' if span != 1 else ''}")
     if finite(f.get("memory_capacity")):
         parts.append(f"memory capacity {f['memory_capacity']:.3g}")
     return parts
+
+
+def _task_memory_words(f: Mapping[str, Any]) -> list[str]:
+    span, limit = f.get("task_memory_span"), f.get("task_memory_max_lag")
+    if not finite(span):
+        return []
+    if span < 0:
+        return ["the task variable is not linearly decodable above chance at any lag"]
+    if limit is not None and span >= limit:
+        return [f"holds the task variable for at least {span:.0f} steps (the longest lag "
+                "tried)"]
+    return [f"task variable decodable for {span:.0f} step{'s' if span != 1 else ''} after its "
+            "onset"]
 
 
 # ---------------------------------------------------------------------- JSON arrays
@@ -471,3 +518,20 @@ _spec(
     budget=_budget_memory, phrases=_memory_words,
     arrays=lambda r: {"lags": floats(r.lags), "scores": floats(median_curve(r.scores))},
     overlay=_overlay_memory, setting=_setting_memory)
+_spec(
+    "task_memory", "hiddenlens._task_memory:task_memory_analysis",
+    title="Task-variable memory",
+    key_figures=_figures_task_memory,
+    figures={"task_memory_span": Figure("task-variable span", "steps"),
+             "task_memory_peak": Figure("task-variable peak decoding score"),
+             "task_memory_chance": Figure("task-variable chance at the peak"),
+             "task_memory_max_lag": Figure("longest task lag tried", "steps"),
+             "task_memory_score": Figure("task-variable score")},
+    caution="Linear decoding is a lower bound on what the state holds of the task variable; "
+            "the chance band comes from a finite number of permutations at a per-lag level, so "
+            "a lag can pass it by luck, and the span is the last lag of the first run above "
+            "the band.",
+    budget=_budget_task_memory, phrases=_task_memory_words,
+    arrays=lambda r: {"lags": floats(r.lags), "scores": floats(r.scores),
+                      "chance": floats(r.chance), "band": floats(r.band)},
+    needs=("targets",), uses=("onsets",))

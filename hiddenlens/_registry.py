@@ -113,6 +113,8 @@ class AnalysisSpec:
     needs : tuple of str
         Context keys the analysis requires (e.g. ``("targets",)``); they are passed as
         keyword options, and the analysis is skipped with the reason when one is absent.
+    uses : tuple of str
+        Context keys the analysis takes when they are given (e.g. ``("onsets",)``).
     drawings : callable
         ``drawings(result, others, extras=True) -> list of Drawing``: the report figures of
         one run; ``others`` holds the run's other results. Default: ``result.plot(ax=ax)``.
@@ -134,6 +136,7 @@ class AnalysisSpec:
     arrays: Callable[[Any], Mapping[str, Any]] | None = None
     overlay: Callable[[Sequence[tuple[str, Any]], Any], None] | None = None
     needs: tuple[str, ...] = ()
+    uses: tuple[str, ...] = ()
     drawings: Callable[..., list[Drawing]] = _plain_drawings
     setting: Callable[[Mapping[str, Any]], str] = _no_setting
     adapter: Callable[..., Any] | None = None

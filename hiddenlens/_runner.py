@@ -184,7 +184,7 @@ def run_analyses(
             out.skipped[spec.name] = (f"needs {', '.join(map(repr, absent))} in context=; pass "
                                       f"context={{{absent[0]!r}: ...}}")
             continue
-        extra = {k: context[k] for k in spec.needs}
+        extra = {k: context[k] for k in (*spec.needs, *spec.uses) if k in context}
         out.options[spec.name] = analysis_options(spec, system, trace, seed,
                                                   {**extra, **options.get(spec.name, {})})
         ready.append(spec)

@@ -23,6 +23,8 @@ __all__ = ["main", "build_parser"]
 PROG = "hiddenlens"
 DEFAULT_PROBE = (8, 200)
 DEMO_PROBE = (8, 150)
+#: one-crate trials (sequences, steps) of the demo's task-variable memory
+DEMO_TRIALS = (48, 80)
 
 
 class CommandError(Exception):
@@ -328,6 +330,36 @@ def load_inputs(spec: str) -> Any:
     return arr
 
 
+def load_array(spec: str, what: str) -> Any:
+    """Read the array of ``file.npy`` or ``file.npz[:key]`` for option ``what`` (no pickles)."""
+    import numpy as np
+
+    path, key = spec, None
+    head, sep, tail = spec.rpartition(":")
+    if sep and head.lower().endswith(".npz") and tail:
+        path, key = head, tail
+    if not os.path.isfile(path):
+        raise CommandError(f"{what} file {path!r} not found (or not a regular file)")
+    with open(path, "rb") as fh:
+        try:
+            return _read_array(np, fh, path, key)
+        except CommandError as err:
+            raise CommandError(str(err).replace("--inputs", what).replace(
+                "read inputs", f"read {what}")) from None
+
+
+def _context(args: argparse.Namespace) -> dict[str, Any] | None:
+    """``--targets`` and ``--onsets`` as the analyses' context."""
+    if getattr(args, "onsets", None) and not getattr(args, "targets", None):
+        raise CommandError("--onsets needs --targets (the task variable the lags count for)")
+    if not getattr(args, "targets", None):
+        return None
+    context = {"targets": load_array(args.targets, "--targets")}
+    if args.onsets:
+        context["onsets"] = load_array(args.onsets, "--onsets")
+    return context
+
+
 def _probe(n: int, t: int, input_size: int, seed: int):
     import numpy as np
 
@@ -364,6 +396,12 @@ def _model_options(rep: argparse.ArgumentParser) -> None:
                           "inputs (a linear encoder)")
     rep.add_argument("--lengths", metavar="FILE[:KEY]",
                      help="real lengths (B,) of padded --inputs, from .npy or .npz")
+    rep.add_argument("--targets", metavar="FILE[:KEY]",
+                     help="a task variable per sequence (B,) or per step (B, T) of --inputs, "
+                          "from .npy or .npz: adds the task-variable memory analysis")
+    rep.add_argument("--onsets", metavar="FILE[:KEY]",
+                     help="the event step (B,) of each sequence that --targets lags count "
+                          "from (default: the first step)")
     rep.add_argument("--option", action="append", default=[], metavar="ANALYSIS.KEY=VALUE",
                      help="an analysis option, e.g. lyapunov.k=5 (a Python literal; repeat)")
 
@@ -455,7 +493,8 @@ def _user_options(args: argparse.Namespace, runs: dict[str, Any], inputs: Any
 def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str] | None,
                 seed: int, keep_going: bool, quiet: bool, title: str | None,
                 source: str, options: dict[str, dict[str, Any]] | None = None,
-                trace: Any = None, task: dict[str, dict[str, Any]] | None = None) -> Path:
+                trace: Any = None, context: dict[str, Any] | None = None,
+                task: dict[str, dict[str, Any]] | None = None) -> Path:
     from ._compare import compare_runs
     from ._figures import describe_inputs
     from ._registry import analyses, available_analyses
@@ -474,12 +513,12 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
     if len(runs) == 1:
         name, model = next(iter(runs.items()))
         results: Any = run_analyses(model, inputs, which=which, options=options, seed=seed,
-                                    on_error=on_error, trace=trace,
+                                    on_error=on_error, trace=trace, context=context,
                                     progress=lambda s, d, t: say(f"{name}: {s}", d, t))
         kwargs: dict[str, Any] = {"name": name}
     else:
         results = compare_runs(runs, inputs, which=which, options=options, seed=seed,
-                               on_error=on_error, progress=say)
+                               on_error=on_error, progress=say, context=context)
         kwargs = {}
     if task:
         kwargs["task"] = task
@@ -504,6 +543,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
     if len(set(names)) != len(names):
         raise CommandError(f"run names must be distinct, got {', '.join(names)}; pass --names")
     inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
+    context = _context(args)
     runs: dict[str, Any] = {}
     for name, w in zip(names, weights, strict=True):
         runs[name] = _user_run(args, w, quiet=args.quiet)
@@ -524,7 +564,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
     options, trace = _user_options(args, runs, inputs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet, title=args.title,
-                       source=source, options=options, trace=trace)
+                       source=source, options=options, trace=trace, context=context)
     print(path)
     return 0
 
@@ -571,10 +611,17 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     inputs = sorting_line.make_inputs(n, t, seed=args.seed)
     source = (f"sorting-line task inputs (tag flashes, gate cues, belt vibration), "
               f"{n} x {t} steps, seed {args.seed}")
+    # the task variable: one crate per trial, its tag colour decoded at each step after the
+    # flash, on trials of their own (no gate cue, so the tag must be kept to the end)
+    trials = sorting_line.make_trials(*DEMO_TRIALS, seed=args.seed)
+    source += (f"; task-variable memory on {DEMO_TRIALS[0]} one-crate trials of "
+               f"{DEMO_TRIALS[1]} steps (tag colour from its flash)")
     task = _demo_task(runs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet,
                        title="hiddenlens demo: sorting-line runs compared", source=source,
+                       options={"task_memory": {"inputs": trials.inputs}},
+                       context={"targets": trials.colour, "onsets": trials.onset},
                        task=task)
     print(path)
     return 0

@@ -256,6 +256,11 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     if "fixed_points" in present:
         fp = hiddenlens.find_fixed_points(model, trace, **opts["fixed_points"])
         assert run["arrays"]["fixed_points"]["stability"] == fp.stability.tolist()
+    if "task_memory" in present and "gru" in names:
+        # the shipped GRU was trained to hold a tag 20-40 steps (example_models/train.py): it
+        # must keep the colour well past the shortest delay
+        assert doc["runs"]["gru"]["key_figures"]["task_memory_span"] >= 30
+        assert "task variable" in page
 
 
 def test_report_damaged_inputs_fail_with_one_line(weights, capsys, tmp_path):
@@ -308,3 +313,20 @@ def test_progress_label_never_passes_the_total(capsys):
     say("pca", 5, 6)
     err = capsys.readouterr().err
     assert "[6/6] pca done" in err and "[7/6]" not in err and "[6/6] pca\n" in err
+
+
+def test_report_takes_targets_and_onsets(weights, tmp_path, capsys):
+    B, T = 12, 20
+    rng = np.random.default_rng(1)
+    np.save(tmp_path / "x.npy", rng.standard_normal((B, T, 5)).astype(np.float32))
+    np.savez(tmp_path / "y.npz", colour=rng.integers(2, size=B), onset=rng.integers(0, 4, B))
+    base = ["report", "--model", FACTORY, "--weights", str(weights / "gain0.5.pt"),
+            "--inputs", str(tmp_path / "x.npy"), "-q", "--analyses", "task_memory"]
+    code = cli.main([*base, "--targets", f"{tmp_path / 'y.npz'}:colour",
+                     "--onsets", f"{tmp_path / 'y.npz'}:onset", "-o", str(tmp_path / "r")])
+    assert code == 0, capsys.readouterr().err
+    doc = json.loads((tmp_path / "r" / "report.json").read_text())
+    run = next(iter(doc["runs"].values()))
+    assert "task_memory_span" in run["key_figures"]
+    code = cli.main([*base, "--targets", str(tmp_path / "y.npz"), "-o", str(tmp_path / "s")])
+    assert code == 1 and "pick one with --targets" in capsys.readouterr().err

@@ -159,3 +159,31 @@ def test_the_worked_example_of_the_docs_runs(tmp_path, monkeypatch, capsys):
     page = (tmp_path / "extending-demo" / "report.html").read_text(encoding="utf-8")
     assert 'id="analysis-step_length"' in page and "median step length" in page
     assert "step_length" not in hiddenlens.analyses()
+
+
+def test_task_memory_is_a_builtin_that_needs_targets():
+    # a shift register (delay line) carries the cue exactly N steps: the state at lag k holds
+    # the input of k steps ago while k < N (common practice: the linear delay line)
+    n_cells = 6
+    shift = torch.zeros(n_cells, n_cells, dtype=torch.float32)
+    shift[1:, :-1] = torch.eye(n_cells - 1, dtype=torch.float32)
+    feed = torch.zeros(n_cells, 1, dtype=torch.float32)
+    feed[0, 0] = 1.0
+    system = hiddenlens.wrap(lambda x, h: h @ shift.T + x @ feed.T, state_size=n_cells,
+                             input_size=1)
+    rng = np.random.default_rng(3)
+    B, T = 40, 12
+    colour = rng.integers(2, size=B)
+    x = np.zeros((B, T, 1), dtype=np.float32)
+    x[:, 0, 0] = 2.0 * colour - 1.0
+    assert "task_memory" in hiddenlens.analyses()
+    out = hiddenlens.run_analyses(system, x, which=["task_memory"])
+    assert "task_memory" not in out and "targets" in out.skipped["task_memory"]
+    out = hiddenlens.run_analyses(system, x, which=["task_memory"],
+                                  context={"targets": colour, "onsets": np.zeros(B, int)})
+    figs = hiddenlens.key_figures(out)
+    # the pulse enters cell 0 at step 0 and leaves the last cell after step n_cells - 1
+    assert figs["task_memory_span"] == n_cells - 1
+    assert figs["task_memory_max_lag"] == T - 1
+    assert out.options["task_memory"]["n_permutations"] == 19
+    assert "task variable decodable for 5 steps" in hiddenlens.summary_sentence(figs)
