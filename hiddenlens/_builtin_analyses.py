@@ -365,7 +365,8 @@ def _overlay_fixed_points(runs: Runs, ax: Any) -> None:
     width = 0.8 / max(len(runs), 1)
     x = np.arange(len(STABILITY_CLASSES))
     for i, (name, r) in enumerate(runs):
-        counts = list(_figures_fixed_points(r).values())
+        figs = _figures_fixed_points(r)
+        counts = [figs.get(f"fixed_points_{c}", 0) for c in STABILITY_CLASSES]
         ax.bar(x + (i - (len(runs) - 1) / 2) * width, counts, width=width, label=name)
     ax.set_xticks(x, STABILITY_CLASSES)
     ax.set_ylabel("number of points")
