@@ -10,6 +10,7 @@ import torch
 from numpy.testing import assert_allclose
 
 import hiddenlens
+from hiddenlens._registry import analysis_spec
 from hiddenlens._summary import (
     ANALYSES,
     FIGURES,
@@ -37,7 +38,8 @@ def inputs():
 
 
 def test_analysis_names_and_order():
-    assert ANALYSES == ("spectra", "gradient_flow", "lyapunov", "pca", "fixed_points", "memory")
+    assert ANALYSES == ("spectra", "gradient_flow", "lyapunov", "pca", "fixed_points", "memory",
+                        "task_memory")
     assert set(available_analyses()) <= set(ANALYSES)
     assert {a for _, _, a in FIGURES.values()} == set(ANALYSES)
 
@@ -141,12 +143,14 @@ def test_every_analysis_runs_with_default_budgets_and_repeats(inputs):
     opts = {"memory": {"max_lag": 5, "n_steps": 300}}
     a = run_analyses(model, inputs, options=opts)
     b = run_analyses(model, inputs, options=opts)
-    assert list(a) == list(ANALYSES)
+    # analyses that need context (task targets) are skipped, with the reason, without it
+    assert list(a) == [n for n in ANALYSES if not analysis_spec(n).needs]
+    assert all("needs" in a.skipped[n] for n in ANALYSES if analysis_spec(n).needs)
     assert key_figures(a) == key_figures(b)  # seeded: repeatable
     assert torch.equal(torch.get_rng_state(), rng) and model.training
     assert all(torch.equal(v, before[k]) for k, v in model.state_dict().items())
     figs = key_figures(a)
-    assert set(figs) == set(FIGURES)
+    assert set(figs) == {k for k, v in FIGURES.items() if not analysis_spec(v[2]).needs}
     # the figures are the results' own numbers
     assert figs["lyapunov_max"] == a["lyapunov"].exponents[0]
     assert figs["memory_span"] == a["memory"].span
@@ -158,7 +162,7 @@ def test_every_analysis_runs_with_default_budgets_and_repeats(inputs):
     assert_allclose(figs["top_singular_value_median"],
                     np.median(a["spectra"].singular_values[..., 0]))
     arrays = array_summaries(a)
-    assert set(arrays) == set(ANALYSES)
+    assert set(arrays) == {n for n in ANALYSES if not analysis_spec(n).needs}
     assert arrays["lyapunov"]["exponents"] == a["lyapunov"].exponents.tolist()
 
 

@@ -40,7 +40,9 @@ def check_analyses(analyses: Sequence[str] | None) -> list[str]:
     if analyses is None:
         order = [n for n in DEFAULT_ORDER if n in known] + [
             n for n in known if n not in DEFAULT_ORDER]
-        return [n for n in order if analysis_spec(n).available()]
+        # analyses that need context (task targets) are left out: the boards take none yet
+        return [n for n in order
+                if analysis_spec(n).available() and not analysis_spec(n).needs]
     if isinstance(analyses, str):
         analyses = [analyses]
     names = list(analyses)
