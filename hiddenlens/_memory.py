@@ -212,6 +212,20 @@ class MemoryCurve(Result):
 
 # ====================================================================== entry point
 @analysis("memory_curve")
+
+def check_alphas(alphas: Any, default: Any = DEFAULT_ALPHAS) -> np.ndarray:
+    """Ridge penalties as a 1-D float array (None: ``default``), or a ValueError."""
+    if alphas is None:
+        return np.array(default)
+    try:
+        out = np.atleast_1d(np.asarray(alphas, dtype=float))
+    except (TypeError, ValueError):
+        out = np.array([np.nan])
+    if out.ndim != 1 or out.size == 0 or not np.all(np.isfinite(out)) or np.any(out <= 0):
+        raise ValueError("alphas must be one positive number or a non-empty sequence of them, "
+                         f"got {alphas!r}")
+    return out
+
 def memory_curve(
     model_or_system: Any,
     trace: Trace | None = None,
@@ -419,18 +433,7 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
     if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
             or not math.isfinite(threshold):
         raise ValueError(f"threshold must be a finite number, got {threshold!r}")
-    alphas = given["alphas"]
-    if alphas is None:
-        alphas = np.array(DEFAULT_ALPHAS)
-    else:
-        try:
-            alphas = np.atleast_1d(np.asarray(alphas, dtype=float))
-        except (TypeError, ValueError):
-            alphas = np.array([np.nan])
-        if alphas.ndim != 1 or alphas.size == 0 or not np.all(np.isfinite(alphas)) \
-                or np.any(alphas <= 0):
-            raise ValueError(f"alphas must be one positive number or a non-empty sequence of "
-                             f"them, got {given['alphas']!r}")
+    alphas = check_alphas(given["alphas"])
     normalize = given["normalize"]
     if method == "decoding":
         if normalize is not None:

@@ -479,12 +479,7 @@ def wrap(
         if submodule is not None:
             raise ValueError("give either submodule= (a built-in recurrent module) or cell= "
                              "(a cell of your own), not both")
-        try:
-            target = obj.get_submodule(cell)
-        except AttributeError:
-            names = ", ".join(repr(n) for n, _ in obj.named_modules() if n) or "none"
-            raise ValueError(f"{type(obj).__name__} has no submodule named {cell!r}; its "
-                             f"submodules: {names}") from None
+        target = _named_submodule(obj, cell)
         label = name or f"{type(obj).__name__}.{cell}"
         if _is_leaky_module(target) and state_size is None and order is None:
             return _wrap_leaky_module(target, dt, source=label, model=obj)
@@ -521,13 +516,17 @@ def _front_of(obj: Any, front: str) -> nn.Module:
         raise TypeError(f"front= names a submodule of a model; got a {type(obj).__name__}")
     if not isinstance(front, str):
         raise TypeError(f"front must be the name of a submodule (a string), got {front!r}")
+    return _copy_module(_named_submodule(obj, front, " to use as front end"))
+
+
+def _named_submodule(obj: nn.Module, name: str, purpose: str = "") -> nn.Module:
+    """``obj.get_submodule(name)``, or a ValueError listing the submodules there are."""
     try:
-        module = obj.get_submodule(front)
+        return obj.get_submodule(name)
     except AttributeError:
         names = ", ".join(repr(n) for n, _ in obj.named_modules() if n) or "none"
-        raise ValueError(f"{type(obj).__name__} has no submodule named {front!r} to use as "
-                         f"front end; its submodules: {names}") from None
-    return _copy_module(module)
+        raise ValueError(f"{type(obj).__name__} has no submodule named {name!r}{purpose}; its "
+                         f"submodules: {names}") from None
 
 
 def leaky_rnn(

@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 import torch
 
+from ._memory import check_alphas
 from ._results import frozen_mapping, readonly
 from ._threads import single_thread
 from ._trace import Trace
@@ -484,17 +485,7 @@ def _check(trace: Trace, targets: Any, onsets: Any, max_lag: Any, categorical: A
         raise ValueError(f"{n_permutations} permutations cannot reach level={level} (the "
                          f"smallest p-value is 1/{n_permutations + 1}); pass n_permutations >= "
                          f"{need} or a larger level")
-    if alphas is None:
-        alphas = np.array(DEFAULT_ALPHAS)
-    else:
-        try:
-            alphas = np.atleast_1d(np.asarray(alphas, dtype=float))
-        except (TypeError, ValueError):
-            alphas = np.array([np.nan])
-        if alphas.ndim != 1 or alphas.size == 0 or not np.all(np.isfinite(alphas)) \
-                or np.any(alphas <= 0):
-            raise ValueError("alphas must be one positive number or a non-empty sequence of "
-                             f"them, got {alphas!r}")
+    alphas = check_alphas(alphas, DEFAULT_ALPHAS)
     if isinstance(C, bool) or not isinstance(C, (int, float, np.number)) \
             or not math.isfinite(C) or C <= 0:
         raise ValueError(f"C must be a positive finite number, got {C!r}")

@@ -304,14 +304,19 @@ def _read_array(np: Any, fh: Any, path: str, key: str | None) -> Any:
     return arr
 
 
+def _split_spec(spec: str) -> tuple[str, str | None]:
+    """``file.npz:key`` -> (``file.npz``, ``key``); any other spec is a path with no key."""
+    head, sep, tail = spec.rpartition(":")
+    if sep and head.lower().endswith(".npz") and tail:
+        return head, tail
+    return spec, None
+
+
 def load_inputs(spec: str) -> Any:
     """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything)."""
     import numpy as np
 
-    path, key = spec, None
-    head, sep, tail = spec.rpartition(":")
-    if sep and head.lower().endswith(".npz") and tail:
-        path, key = head, tail
+    path, key = _split_spec(spec)
     if not os.path.exists(path):
         raise CommandError(f"inputs file {path!r} not found")
     if not os.path.isfile(path):
@@ -334,10 +339,7 @@ def load_array(spec: str, what: str) -> Any:
     """Read the array of ``file.npy`` or ``file.npz[:key]`` for option ``what`` (no pickles)."""
     import numpy as np
 
-    path, key = spec, None
-    head, sep, tail = spec.rpartition(":")
-    if sep and head.lower().endswith(".npz") and tail:
-        path, key = head, tail
+    path, key = _split_spec(spec)
     if not os.path.isfile(path):
         raise CommandError(f"{what} file {path!r} not found (or not a regular file)")
     with open(path, "rb") as fh:
@@ -468,24 +470,9 @@ def _user_options(args: argparse.Namespace, runs: dict[str, Any], inputs: Any
     if args.lengths:
         if len(runs) != 1:
             raise CommandError("--lengths applies to one weights file at a time")
-        import numpy as np
-
         from ._record import record
 
-        head, sep, tail = args.lengths.rpartition(":")
-        path, key = (head, tail) if sep and head.lower().endswith(".npz") else (args.lengths, None)
-        if not os.path.isfile(path):
-            raise CommandError(f"lengths file {path!r} not found")
-        data = np.load(path, allow_pickle=False)
-        if isinstance(data, np.lib.npyio.NpzFile):
-            with data:
-                names = data.files
-                if key is None and len(names) == 1:
-                    key = names[0]
-                if key not in names:
-                    raise CommandError(f"{path!r} holds {', '.join(names)}; pick one with "
-                                       f"--lengths {path}:KEY")
-                data = data[key]
+        data = load_array(args.lengths, "--lengths")
         trace = record(next(iter(runs.values())), inputs, lengths=data)
     return options or None, trace
 
