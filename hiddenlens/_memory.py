@@ -210,9 +210,6 @@ class MemoryCurve(Result):
                 f"max_lag={self.max_lag}, capacity={self.capacity:.4g}, span={self.span})")
 
 
-# ====================================================================== entry point
-@analysis("memory_curve")
-
 def check_alphas(alphas: Any, default: Any = DEFAULT_ALPHAS) -> np.ndarray:
     """Ridge penalties as a 1-D float array (None: ``default``), or a ValueError."""
     if alphas is None:
@@ -226,6 +223,9 @@ def check_alphas(alphas: Any, default: Any = DEFAULT_ALPHAS) -> np.ndarray:
                          f"got {alphas!r}")
     return out
 
+
+# ====================================================================== entry point
+@analysis("memory_curve")
 def memory_curve(
     model_or_system: Any,
     trace: Trace | None = None,
