@@ -16,8 +16,8 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._fixed_points import _working_system
-from hiddenlens._jacobians import step_jacobians
+from hiddenlens._analyses.fixed_points import _working_system
+from hiddenlens._core.jacobians import step_jacobians
 
 H, I, N_STARTS = 128, 16, 256
 B, T = 64, 200

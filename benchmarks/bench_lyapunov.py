@@ -18,7 +18,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._lyapunov import _choose_method, lyapunov_spectrum
+from hiddenlens._analyses.lyapunov import _choose_method, lyapunov_spectrum
 
 
 def best_of(fn, repeats: int = 3) -> float:

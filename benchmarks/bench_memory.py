@@ -80,7 +80,7 @@ def against_sklearn(system, rng) -> None:
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
 
-    from hiddenlens._memory import DEFAULT_ALPHAS, _folds, _ridge_cv, _Targets
+    from hiddenlens._analyses.memory import DEFAULT_ALPHAS, _folds, _ridge_cv, _Targets
 
     x = rng.standard_normal((1, T, I)).astype(np.float32)
     t_ours, curve = best_of(lambda: hiddenlens.memory_curve(system, x, max_lag=MAX_LAG))

@@ -23,8 +23,9 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens import _record, _systems
-from hiddenlens._trace import Trace
+from hiddenlens._core import record as _record
+from hiddenlens._core import systems as _systems
+from hiddenlens._core.trace import Trace
 
 H, I, T, B, LAYERS = 256, 32, 500, 16, 2
 TARGETS = {"GRU": 1.5, "LSTM": 2.5}

@@ -33,8 +33,8 @@ from threadpoolctl import threadpool_limits
 from torch import nn
 
 import hiddenlens as hl
-import hiddenlens._spectra as spectra_module
-from hiddenlens._threads import single_thread
+import hiddenlens._analyses.spectra as spectra_module
+from hiddenlens._core.threads import single_thread
 
 I = 16
 FULL_SIZES = {16: 2000, 32: 2000, 64: 2000, 128: 1000, 256: 128, 512: 24, 1024: 4}

@@ -21,8 +21,8 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-import hiddenlens._fixed_points as fixed_module
-import hiddenlens._gradient_flow as flow_module
+import hiddenlens._analyses.fixed_points as fixed_module
+import hiddenlens._analyses.gradient_flow as flow_module
 
 I = 16
 

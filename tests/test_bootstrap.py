@@ -5,8 +5,8 @@ import pytest
 import torch
 
 import hiddenlens as hl
-from hiddenlens._bootstrap import compare_intervals, figure_intervals, within_noise
-from hiddenlens._summary import run_analyses
+from hiddenlens._analyses.bootstrap import compare_intervals, figure_intervals, within_noise
+from hiddenlens._faces.summary import run_analyses
 
 S = 3
 LAMBDAS = np.array([0.9, 0.3, 0.1])  # a wide gap: the frame aligns within the warmup

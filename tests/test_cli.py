@@ -13,8 +13,8 @@ import torch
 from numpy.testing import assert_allclose
 
 import hiddenlens
-from hiddenlens import cli
-from hiddenlens._summary import ANALYSES, available_analyses
+from hiddenlens._faces import cli
+from hiddenlens._faces.summary import ANALYSES, available_analyses
 
 # float32 recordings agree within this across torch thread counts (docs/options.md): the CLI
 # may run at another thread count than the test
@@ -44,7 +44,7 @@ def test_version_via_python_m():
 def test_console_script_points_at_main():
     tomllib = pytest.importorskip("tomllib")
     meta = tomllib.loads((ROOT / "pyproject.toml").read_text())
-    assert meta["project"]["scripts"]["hiddenlens"] == "hiddenlens.cli:main"
+    assert meta["project"]["scripts"]["hiddenlens"] == "hiddenlens._faces.cli:main"
 
 
 def test_no_command_prints_help(capsys):

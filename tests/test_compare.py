@@ -12,9 +12,9 @@ from numpy.testing import assert_allclose
 
 import hiddenlens
 from hiddenlens import compare_runs, linear_cka
-from hiddenlens._compare import RunComparison
-from hiddenlens._registry import analysis_spec
-from hiddenlens._summary import ANALYSES, available_analyses, key_figures
+from hiddenlens._analyses.compare import RunComparison
+from hiddenlens._core.registry import analysis_spec
+from hiddenlens._faces.summary import ANALYSES, available_analyses, key_figures
 from tests.conftest import gaussian_module
 
 

@@ -12,8 +12,8 @@ import pytest
 import torch
 
 import hiddenlens as hl
-from hiddenlens._options import CONSTRAINTS, bad_values, describe_constraints
-from hiddenlens._results import METADATA_KEYS
+from hiddenlens._core.options import CONSTRAINTS, bad_values, describe_constraints
+from hiddenlens._core.results import METADATA_KEYS
 from tests.conftest import build
 
 

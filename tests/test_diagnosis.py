@@ -7,7 +7,7 @@ import math
 
 import pytest
 
-from hiddenlens._diagnosis import (
+from hiddenlens._analyses.diagnosis import (
     LEVELS,
     TERMS,
     Diagnosis,

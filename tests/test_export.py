@@ -12,9 +12,7 @@ import numpy as np
 import pytest
 from matplotlib.figure import Figure
 
-from hiddenlens.widgets import _export as E
-
-
+from hiddenlens._faces.widgets import export as E
 def _figure():
     fig = Figure(figsize=(3, 2))
     ax = fig.add_subplot()

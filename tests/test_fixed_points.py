@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._fixed_points: fixed and slow points and their stability."""
+"""Tests of hiddenlens._analyses.fixed_points: fixed and slow points and their stability."""
 
 from __future__ import annotations
 
@@ -13,8 +13,8 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._fixed_points import FixedPoints, find_fixed_points
-from hiddenlens._trace import Trace
+from hiddenlens._analyses.fixed_points import FixedPoints, find_fixed_points
+from hiddenlens._core.trace import Trace
 
 F64 = torch.float64
 
@@ -510,7 +510,7 @@ def test_speed_rule_keeps_an_approximate_line_attractor_spread():
 
 # ---------------------------------------------------------------------- reach and key figures
 def test_points_outside_the_recorded_states_are_flagged_and_not_counted():
-    from hiddenlens._builtin_analyses import _figures_fixed_points, _fixed_point_words
+    from hiddenlens._analyses.builtin import _figures_fixed_points, _fixed_point_words
 
     # s -> 0.5 s + x, x = 3: the only fixed point s* = x / (1 − 0.5) = 6 (common practice)
     # lies far beyond states recorded under inputs near 0

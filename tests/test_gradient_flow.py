@@ -11,7 +11,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._summary import key_figures, summary_sentence
+from hiddenlens._faces.summary import key_figures, summary_sentence
 
 
 def _linear_system(W: torch.Tensor):

@@ -11,8 +11,8 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._guard import grad_restored, private_copy
-from hiddenlens._threads import num_threads, per_thread_available, single_thread
+from hiddenlens._core.guard import grad_restored, private_copy
+from hiddenlens._core.threads import num_threads, per_thread_available, single_thread
 
 # float32 recordings: analyses agree within this across torch thread counts (docs/options.md)
 THREAD_RTOL = 1e-5

@@ -13,16 +13,16 @@ from scipy import integrate, optimize
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._lyapunov import (
+from hiddenlens._analyses.lyapunov import (
     LyapunovSpectrum,
     _with_dtype,
     kaplan_yorke_dimension,
     lyapunov_spectrum,
 )
-from hiddenlens._record import as_system
-from hiddenlens._summary import key_figures, summary_sentence
-from hiddenlens._systems import RecurrentSystem
-from hiddenlens._validation import as_dtype
+from hiddenlens._core.record import as_system
+from hiddenlens._faces.summary import key_figures, summary_sentence
+from hiddenlens._core.systems import RecurrentSystem
+from hiddenlens._core.validation import as_dtype
 
 F64 = torch.float64
 

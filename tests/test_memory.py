@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._memory: memory curves by decoding, perturbation and input sensitivity."""
+"""Tests of hiddenlens._analyses.memory: memory curves by decoding, perturbation and input sensitivity."""
 
 from __future__ import annotations
 
@@ -17,8 +17,8 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 import hiddenlens
-from hiddenlens._memory import MemoryCurve, _folds, memory_curve
-from hiddenlens._record import as_system
+from hiddenlens._analyses.memory import MemoryCurve, _folds, memory_curve
+from hiddenlens._core.record import as_system
 
 F64 = torch.float64
 
@@ -395,7 +395,7 @@ def test_categorical_probe_draws_tokens():
 
 def test_span_conventions():
     # the documented convention: largest k with every lag 0..k at or above the threshold
-    from hiddenlens._memory import _span
+    from hiddenlens._analyses.memory import _span
 
     assert _span(np.array([0.9, 0.8, 0.4, 0.7]), 0.5) == 1
     assert _span(np.array([0.4, 0.8]), 0.5) == -1
@@ -443,7 +443,7 @@ def test_bad_data_options_fail_clearly():
 
 def test_import_leaves_matplotlib_out():
     # the core imports without matplotlib (layering rule of the package)
-    code = "import sys, hiddenlens._memory; assert 'matplotlib' not in sys.modules"
+    code = "import sys, hiddenlens._analyses.memory; assert 'matplotlib' not in sys.modules"
     subprocess.run([sys.executable, "-c", code], check=True)
 
 

@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._pca: PCA trajectories, variance spectrum and participation ratio."""
+"""Tests of hiddenlens._analyses.pca: PCA trajectories, variance spectrum and participation ratio."""
 
 from __future__ import annotations
 
@@ -10,8 +10,8 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._pca import PCATrajectories, pca_trajectories
-from hiddenlens._trace import Trace
+from hiddenlens._analyses.pca import PCATrajectories, pca_trajectories
+from hiddenlens._core.trace import Trace
 
 
 def _trace(states, parts=None):

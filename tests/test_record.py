@@ -12,7 +12,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._record import as_system, initial_states
+from hiddenlens._core.record import as_system, initial_states
 
 
 def lstm(make, gen, L=2):

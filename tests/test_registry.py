@@ -15,7 +15,8 @@ import torch  # noqa: E402
 from numpy.testing import assert_allclose  # noqa: E402
 
 import hiddenlens  # noqa: E402
-from hiddenlens import _registry, cli  # noqa: E402
+from hiddenlens._core import registry as _registry  # noqa: E402
+from hiddenlens._faces import cli  # noqa: E402
 from tests.conftest import gaussian_module  # noqa: E402
 
 pytest.importorskip("ipywidgets")
@@ -29,7 +30,7 @@ class StateSize:
     level: np.ndarray
 
     def plot(self, ax=None):
-        from hiddenlens._plotting import get_axes
+        from hiddenlens._plotting.style import get_axes
 
         ax = get_axes(ax)
         ax.plot(np.arange(self.level.size), self.level, label="mean |s_t|")

@@ -10,8 +10,8 @@ from numpy.testing import assert_allclose
 
 import hiddenlens
 from hiddenlens import compare_runs, write_report
-from hiddenlens._report import GENERAL_CAUTIONS, report_data
-from hiddenlens._summary import (
+from hiddenlens._faces.report import GENERAL_CAUTIONS, report_data
+from hiddenlens._faces.summary import (
     AnalysisResults,
     array_summaries,
     available_analyses,
@@ -173,7 +173,7 @@ def test_report_modules_import_without_matplotlib():
     import subprocess
     import sys
 
-    code = ("import sys, hiddenlens._report, hiddenlens._compare, hiddenlens.cli; "
+    code = ("import sys, hiddenlens._faces.report, hiddenlens._analyses.compare, hiddenlens._faces.cli; "
             "print(sorted(m for m in ('matplotlib', 'ipywidgets', 'pandas') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"

@@ -10,7 +10,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._spectra import top_singular_values
+from hiddenlens._analyses.spectra import top_singular_values
 
 
 @pytest.fixture

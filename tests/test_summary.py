@@ -10,8 +10,8 @@ import torch
 from numpy.testing import assert_allclose
 
 import hiddenlens
-from hiddenlens._registry import analysis_spec
-from hiddenlens._summary import (
+from hiddenlens._core.registry import analysis_spec
+from hiddenlens._faces.summary import (
     ANALYSES,
     FIGURES,
     AnalysisResults,
@@ -107,8 +107,7 @@ def test_run_analyses_failure_raises_or_is_skipped(inputs):
 
 
 def test_missing_analysis_is_skipped_with_a_note(monkeypatch, inputs):
-    from hiddenlens import _registry
-
+    from hiddenlens._core import registry as _registry
     spec = _registry.analysis_spec("memory")
     monkeypatch.setitem(_registry._SPECS, "memory", dataclasses.replace(
         spec, function="hiddenlens._no_such_module:f"))

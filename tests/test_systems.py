@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._systems import fingerprint
+from hiddenlens._core.systems import fingerprint
 
 KINDS = {
     "rnn_tanh": (nn.RNN, {"nonlinearity": "tanh"}),

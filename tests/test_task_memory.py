@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._task_memory: decoding a task variable at each lag after its onset."""
+"""Tests of hiddenlens._analyses.task_memory: decoding a task variable at each lag after its onset."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 import hiddenlens
-from hiddenlens._task_memory import (
+from hiddenlens._analyses.task_memory import (
     TaskMemory,
     task_memory,
     task_memory_analysis,

@@ -6,7 +6,7 @@ import torch
 
 import hiddenlens as hl
 from example_models import sorting_line as sl
-from hiddenlens.cli import main
+from hiddenlens._faces.cli import main
 
 FACTORY = "example_models.sorting_line:make_tanh_rnn"
 FIGS = ["lyapunov_max", "participation_ratio"]

@@ -12,7 +12,7 @@ import torch
 from torch import nn
 
 import hiddenlens as hl
-from hiddenlens._trace import Trace, load_trace
+from hiddenlens._core.trace import Trace, load_trace
 
 
 @pytest.fixture

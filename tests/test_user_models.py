@@ -13,7 +13,7 @@ from torch import nn
 from torch.func import jacrev, vmap
 
 import hiddenlens as hl
-from hiddenlens._jacobians import _per_sample, input_jacobians, step_jacobians
+from hiddenlens._core.jacobians import _per_sample, input_jacobians, step_jacobians
 
 
 def randn(gen, *shape, dtype=torch.float32, scale=1.0):
@@ -468,7 +468,7 @@ def test_lstm_proj_size_matches_forward_and_jacrev(gen, L):
     Kr = vmap(jacrev(_per_sample(sys), argnums=1))(s, u)
     assert (step_jacobians(sys, s, u) - Jr).abs().max() <= 1e-10
     assert (input_jacobians(sys, s, u) - Kr).abs().max() <= 1e-10
-    from hiddenlens._jacobians import linearize
+    from hiddenlens._core.jacobians import linearize
 
     lin = linearize(sys, s, u)
     V = randn(gen, 6, S, 3, dtype=torch.float64)
@@ -519,8 +519,7 @@ def make_seq2seq():
 
 
 def test_cli_submodule_option_lengths_and_nested_checkpoint(gen, tmp_path, capsys):
-    from hiddenlens import cli
-
+    from hiddenlens._faces import cli
     src = fill(Seq2Seq(), gen)
     state = {f"model.{k}": v for k, v in src.state_dict().items()}
     state["model.extra_head.weight"] = torch.zeros(2)

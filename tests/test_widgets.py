@@ -20,10 +20,10 @@ pytest.importorskip("ipywidgets")
 from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa: E402
 
 import hiddenlens  # noqa: E402
-import hiddenlens._summary  # noqa: E402
-from hiddenlens._summary import analysis_function, key_figures, summary_sentence  # noqa: E402
+import hiddenlens._faces.summary  # noqa: E402
+from hiddenlens._faces.summary import analysis_function, key_figures, summary_sentence  # noqa: E402
 from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
-from hiddenlens.widgets._jobs import Cache, Runner, Step  # noqa: E402
+from hiddenlens._faces.widgets.jobs import Cache, Runner, Step  # noqa: E402
 
 pytestmark = pytest.mark.usefixtures("one_blas_thread")
 
@@ -121,7 +121,7 @@ def test_view_controls_redraw_without_recomputing(model, inputs, calls):
 
 
 def test_spectra_sample_and_window_only_redraw(model, inputs, calls):
-    if "spectra" not in hiddenlens._summary.available_analyses():
+    if "spectra" not in hiddenlens._faces.summary.available_analyses():
         pytest.skip("jacobian_spectra is not part of this installation")
     view = explore(model, inputs, analyses=["spectra"], background=False)
     seen = [view.images["spectra"]]
@@ -183,7 +183,7 @@ def test_summary_strip_uses_the_shared_key_figures(model, inputs):
 
 
 def test_errors_are_shown_in_the_widget(model, inputs, monkeypatch):
-    import hiddenlens._lyapunov as lyap
+    import hiddenlens._analyses.lyapunov as lyap
 
     @functools.wraps(lyap.lyapunov_spectrum)
     def broken(*args, **kw):
@@ -200,8 +200,7 @@ def test_errors_are_shown_in_the_widget(model, inputs, monkeypatch):
 
 
 def test_drawing_errors_are_shown_too(model, inputs, monkeypatch):
-    from hiddenlens.widgets import _panels
-
+    from hiddenlens._faces.widgets import panels as _panels
     def bad_draw(*args):
         raise RuntimeError("no room for the legend")
 
@@ -307,7 +306,7 @@ def test_cancel_stops_a_running_step():
 
 
 def test_cancel_button_frees_the_widget(model, inputs, monkeypatch):
-    import hiddenlens._lyapunov as lyap
+    import hiddenlens._analyses.lyapunov as lyap
 
     started = threading.Event()
 
@@ -448,7 +447,7 @@ def test_diagnosis_line_shown_only_when_task_given(runs, inputs):
 
 
 def test_compare_overlay_uses_the_colour_blind_safe_palette(runs, inputs):
-    from hiddenlens._plotting import RUN_COLORS
+    from hiddenlens._plotting.style import RUN_COLORS
 
     view = compare(runs, inputs, analyses=["lyapunov"], background=False)
     panel = view._panels["lyapunov"]

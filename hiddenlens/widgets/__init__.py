@@ -7,8 +7,8 @@ imports ipywidgets and matplotlib; the computation core never does.
 
 from __future__ import annotations
 
-from ._board import StaticView
-from ._comparison import Comparison, compare
-from ._explore import Explorer, explore
+from .._faces.widgets.board import StaticView
+from .._faces.widgets.comparison import Comparison, compare
+from .._faces.widgets.explore import Explorer, explore
 
 __all__ = ["Comparison", "Explorer", "StaticView", "compare", "explore"]

@@ -1,0 +1,1 @@
+"""analyses layer of hiddenlens (private: the public names are in hiddenlens)."""

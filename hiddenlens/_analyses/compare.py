@@ -1,0 +1,435 @@
+"""Compare training runs side by side: key figures, their differences, linear CKA of the states."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .figures import figure_rows, key_figures, summary_sentence
+from .._core.record import as_system
+from .._core.registry import analyses, analysis_spec
+from .._core.results import frozen_mapping, readonly
+from .runner import AnalysisResults, ModelLike, Sequences, run_analyses
+from .._core.systems import RecurrentSystem
+from .._core.trace import Trace
+
+__all__ = ["RunComparison", "compare_runs", "comparison_of", "figure_table", "linear_cka",
+           "plot_overlay", "plot_cka"]
+
+
+# ---------------------------------------------------------------------- linear CKA
+def _as_matrix(a: Any, name: str) -> np.ndarray:
+    if isinstance(a, Trace):
+        a = a.states
+    if hasattr(a, "detach"):
+        a = a.detach().cpu().numpy()
+    if not isinstance(a, np.ndarray):
+        raise TypeError(f"{name} must be a numpy array, a tensor or a Trace, got "
+                        f"{type(a).__name__}")
+    if not np.issubdtype(a.dtype, np.floating):
+        raise TypeError(f"{name} must hold floating-point numbers, got dtype {a.dtype}; "
+                        f"convert it with {name}.astype(np.float64)")
+    if a.ndim == 3:
+        a = a.reshape(-1, a.shape[-1])  # (B, T, S) -> (B*T, S): one row per (sample, step)
+    if a.ndim != 2 or a.shape[0] < 2 or a.shape[1] < 1:
+        raise ValueError(f"{name} must have shape (n, p) with n >= 2 examples (or (B, T, S) "
+                         f"states), got {a.shape}")
+    if not np.isfinite(a).all():
+        raise ValueError(f"{name} contains NaN or Inf; CKA needs finite features")
+    return a.astype(np.float64)
+
+
+def linear_cka(X: Any, Y: Any) -> float:
+    """Linear centred kernel alignment between two representations of the same examples.
+
+    Parameters
+    ----------
+    X : ndarray of shape (n, p1) or (B, T, p1)
+        Features of n examples (rows); (B, T, S) states are flattened to (B*T, S).
+    Y : ndarray of shape (n, p2) or (B, T, p2)
+        Features of the same examples in the same order; p2 may differ from p1.
+
+    Returns
+    -------
+    float
+        CKA in [0, 1]: 1 for representations equal up to an orthogonal transform and an
+        isotropic scaling, near 0 for unrelated ones.
+
+    Notes
+    -----
+    With column-centred X and Y (done here),
+
+        CKA(X, Y) = ||Yᵀ X||_F² / (||Xᵀ X||_F ||Yᵀ Y||_F),
+
+    which equals HSIC(K, L) / sqrt(HSIC(K, K) HSIC(L, L)) for the linear Gram matrices
+    K = X Xᵀ, L = Y Yᵀ (the 1/(n-1)² factors of HSIC cancel). It is invariant to orthogonal
+    transforms and isotropic scaling of either side, not to arbitrary invertible linear maps.
+    CKA compares the representations on these examples only.
+
+    References
+    ----------
+    Kornblith, Norouzi, Lee & Hinton (2019), "Similarity of Neural Network Representations
+    Revisited", ICML.
+    """
+    x = _as_matrix(X, "X")
+    y = _as_matrix(Y, "Y")
+    if x.shape[0] != y.shape[0]:
+        raise ValueError(f"X and Y must describe the same examples: X has {x.shape[0]} rows, "
+                         f"Y has {y.shape[0]}; record both runs on the same inputs")
+    x = x - x.mean(axis=0)
+    y = y - y.mean(axis=0)
+    # whichever is smaller: feature space (p x p) or example space (n x n)
+    if max(x.shape[1], y.shape[1]) <= x.shape[0]:
+        cross = np.linalg.norm(y.T @ x) ** 2
+        nx = np.linalg.norm(x.T @ x)
+        ny = np.linalg.norm(y.T @ y)
+    else:
+        K, L = x @ x.T, y @ y.T  # (n, n)
+        cross = float(np.sum(K * L))
+        nx, ny = np.linalg.norm(K), np.linalg.norm(L)
+    if nx == 0 or ny == 0:
+        raise ValueError("one representation is constant over the examples (zero variance); "
+                         "CKA is undefined for it")
+    return float(cross / (nx * ny))
+
+
+# ---------------------------------------------------------------------- result
+@dataclass(frozen=True, eq=False)
+class RunComparison:
+    """Several runs analysed on the same inputs (from :func:`compare_runs`).
+
+    Attributes
+    ----------
+    names : tuple of str
+        Run names, in the order given; the first run is the reference for differences.
+    table : pandas.DataFrame
+        One row per run: model kind and state size, then each key figure (see
+        :func:`hiddenlens.key_figures`, registered analyses included) followed by
+        ``"Δ <figure>"``, its difference from the first run (numeric figures only).
+    results : Mapping[str, AnalysisResults]
+        Per run, analysis name -> result object (with ``.trace`` and ``.skipped``).
+    cka : ndarray of shape (R, R)
+        Linear CKA between the runs' hidden states on the same inputs (symmetric, ones on the
+        diagonal).
+    figures : Mapping[str, dict]
+        Per run, the key figures as a dict.
+    cka_parts : str
+        Which states entered CKA: ``"output"`` (each run's top-layer h) or ``"all"``.
+    """
+
+    names: tuple[str, ...]
+    table: Any
+    results: Mapping[str, AnalysisResults]
+    cka: np.ndarray
+    figures: Mapping[str, dict]
+    cka_parts: str = "output"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "names", tuple(self.names))
+        object.__setattr__(self, "cka", readonly(self.cka, dtype=np.float64))
+        object.__setattr__(self, "results", frozen_mapping(self.results))
+        object.__setattr__(self, "figures", frozen_mapping(self.figures))
+
+    @property
+    def traces(self) -> dict[str, Trace]:
+        """Per run, the trace recorded on the shared inputs."""
+        return {n: self.results[n].trace for n in self.names}
+
+    def summaries(self) -> dict[str, str]:
+        """Per run, the key figures in plain words (see :func:`summary_sentence`)."""
+        return {n: summary_sentence(self.figures[n]) for n in self.names}
+
+    def to_frame(self):
+        """The comparison table (a copy), one row per run."""
+        return self.table.copy()
+
+    def plot(self, analysis: str = "cka", ax: Any = None, **kw: Any):
+        """Overlay one analysis for every run on one Axes, or draw the CKA matrix.
+
+        Parameters
+        ----------
+        analysis : str, default "cka"
+            ``"cka"`` or a name from :func:`hiddenlens.analyses`, drawn by the analysis'
+            overlay: PCA as cumulative explained variance (the axes of different runs are
+            not comparable), fixed points as counts per stability class.
+        ax : matplotlib Axes, optional
+
+        Returns
+        -------
+        matplotlib Axes
+        """
+        if analysis == "cka":
+            return plot_cka(self.cka, self.names, ax=ax, **kw)
+        if analysis not in analyses():
+            raise ValueError(f"unknown analysis {analysis!r}; expected 'cka' or one of "
+                             f"{', '.join(analyses())}")
+        present = {n: self.results[n][analysis] for n in self.names
+                   if analysis in self.results[n]}
+        if not present:
+            raise ValueError(f"no run has a {analysis!r} result; run compare_runs with "
+                             f"which=[..., {analysis!r}]")
+        return plot_overlay(analysis, present, ax=ax, **kw)
+
+    def __repr__(self) -> str:
+        return f"RunComparison(runs=[{', '.join(self.names)}])"
+
+
+# ---------------------------------------------------------------------- comparing
+def compare_runs(
+    runs: Mapping[str, ModelLike],
+    inputs: Sequences,
+    *,
+    which: Iterable[str] | None = None,
+    options: Mapping[str, Mapping[str, Any]] | None = None,
+    progress: bool | Callable[[str, int, int], Any] | None = None,
+    seed: int = 0,
+    cka_parts: str = "output",
+    on_error: str = "raise",
+    context: Mapping[str, Any] | None = None,
+) -> RunComparison:
+    """Analyse several runs on the same inputs and put their key figures side by side.
+
+    Parameters
+    ----------
+    runs : Mapping[str, model or system]
+        Run name -> anything :func:`hiddenlens.wrap` accepts (or a system). Architectures and
+        state sizes may differ; the input size must be the same.
+    inputs : Tensor or ndarray of shape (B, T, I)
+        The same sequences for every run.
+    which, options, seed, on_error, context
+        As in :func:`hiddenlens.run_analyses`, applied to every run.
+    progress : bool or callable, optional
+        ``True`` shows one bar over all runs and analyses; a callable is called as
+        ``progress("<run>: <analysis>", done, total)``.
+    cka_parts : {"output", "all"}, default "output"
+        States entering CKA: each run's top-layer hidden state, or its whole flat state
+        (including LSTM cell states).
+
+    Returns
+    -------
+    RunComparison
+        ``.table``, ``.results``, ``.cka``, ``.plot(analysis)``, ``.to_frame()``.
+
+    Notes
+    -----
+    CKA compares the runs' representations on these inputs only; other inputs can rank the
+    runs differently.
+    """
+    if cka_parts not in ("output", "all"):
+        raise ValueError(f"cka_parts must be 'output' or 'all', got {cka_parts!r}")
+    systems = check_runs(runs)
+    names = list(systems)
+    which_list = None if which is None else ([which] if isinstance(which, str) else list(which))
+    ticks = _Ticks(progress, len(names))
+    bar = ticks.bar
+    results: dict[str, AnalysisResults] = {}
+    try:
+        for n in names:
+            results[n] = run_analyses(systems[n], inputs, which=which_list, options=options,
+                                      progress=ticks.for_run(n), seed=seed, on_error=on_error,
+                                      context=context)
+        if callable(progress):
+            progress("done", ticks.done, ticks.done)
+    finally:
+        if bar is not None:
+            bar.close()
+    return comparison_of(results, systems, cka_parts=cka_parts)
+
+
+def check_runs(runs: Mapping[str, ModelLike], **wrap_options: Any
+               ) -> dict[str, RecurrentSystem]:
+    """Run name -> system for a mapping of runs that read the same inputs (checked)."""
+    if not isinstance(runs, Mapping) or len(runs) == 0:
+        raise TypeError("runs must be a non-empty mapping name -> model, e.g. "
+                        "{'before': model_a, 'after': model_b}")
+    names = [str(n) for n in runs]
+    if len(set(names)) != len(names):
+        raise ValueError("run names must be distinct as strings")
+    systems = {str(n): as_system(m, **wrap_options) for n, m in runs.items()}
+    sizes = {n: s.input_size for n, s in systems.items()}
+    if len(set(sizes.values())) > 1:
+        raise ValueError(f"runs take different input sizes {sizes}; compare runs that read the "
+                         "same inputs")
+    return systems
+
+
+class _Ticks:
+    """One progress count over every run's analyses: a bar, or ``progress(label, done, total)``."""
+
+    def __init__(self, progress: Any, n_runs: int) -> None:
+        self.progress, self.n_runs, self.done = progress, n_runs, 0
+        self.bar = None
+        if progress is True:
+            from tqdm.auto import tqdm
+
+            self.bar = tqdm(total=None, desc="compare", leave=False)
+
+    def for_run(self, run: str) -> Callable[[str, int, int], None] | None:
+        if not self.progress:
+            return None
+
+        def step(name: str, _i: int, total: int) -> None:
+            if name == "done":
+                return
+            grand = total * self.n_runs
+            if self.bar is not None:
+                self.bar.total, self.bar.n = grand, self.done
+                self.bar.set_postfix_str(f"{run}: {name}")
+            else:
+                self.progress(f"{run}: {name}", self.done, grand)
+            self.done += 1
+
+        return step
+
+
+def comparison_of(results: Mapping[str, AnalysisResults],
+                  systems: Mapping[str, RecurrentSystem], *,
+                  cka_parts: str = "output") -> RunComparison:
+    """The comparison of runs already analysed: key-figure table, Δ columns and CKA.
+
+    Parameters
+    ----------
+    results : Mapping[str, AnalysisResults]
+        Run name -> its results (with ``.trace``), in order; the first run is the reference.
+    systems : Mapping[str, RecurrentSystem]
+        Run name -> the system the results came from.
+    cka_parts : {"output", "all"}, default "output"
+        As in :func:`compare_runs`.
+    """
+    names = [str(n) for n in results]
+    cka = np.eye(len(names))
+    states = {}
+    for n in names:
+        tr = results[n].trace
+        cols = tr.columns(systems[n].output_part) if cka_parts == "output" else tr.columns()
+        states[n] = tr.states[:, :, cols]  # (B, T, S_n)
+    for i, a in enumerate(names):
+        for j in range(i + 1, len(names)):
+            b = names[j]
+            try:
+                v = linear_cka(states[a], states[b])
+            except ValueError:  # a constant representation, or non-finite states
+                v = float("nan")
+            cka[i, j] = cka[j, i] = v
+
+    figures = {n: key_figures(results[n]) for n in names}
+    table = figure_table(names, systems, figures)
+    return RunComparison(names=tuple(names), table=table, results=dict(results), cka=cka,
+                         figures=figures, cka_parts=cka_parts)
+
+
+def figure_table(names: Sequence[str], systems: Mapping[str, RecurrentSystem],
+                 figures: Mapping[str, Mapping[str, Any]]):
+    """One row per run: kind, state size, then each figure and its ``"Δ <figure>"``."""
+    import pandas as pd
+
+    rows: dict[str, dict[str, Any]] = {
+        n: {"kind": systems[n].kind, "state_size": systems[n].state_size} for n in names}
+    counts = []
+    for fr in figure_rows({n: figures[n] for n in names}):
+        for n in names:
+            rows[n][fr.key] = fr.values[n]
+            if fr.numeric:
+                d = fr.deltas[n] if n != names[0] else (0 if fr.values[n] is not None else None)
+                rows[n][f"\u0394 {fr.key}"] = np.nan if d is None else d
+        if fr.numeric and all(_is_int(v) for v in fr.values.values()):
+            counts.append(fr.key)
+    table = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="run"))
+    for k in counts:  # counts stay integers when every run has one
+        table[k] = table[k].astype(int)
+        table[f"\u0394 {k}"] = table[f"\u0394 {k}"].astype(int)
+    return table
+
+
+def _is_int(v: Any) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, bool)
+
+
+# ---------------------------------------------------------------------- overlay plots
+def plot_overlay(analysis: str, results: Mapping[str, Any], ax: Any = None, *,
+                 colors: Sequence[str] | None = None):
+    """Draw one analysis of several runs on one Axes; ``results`` maps run name -> result.
+
+    The analysis' ``overlay`` draws; one without an overlay draws each run's ``.plot`` on the
+    same Axes. Runs are told apart by colour (the colour-blind-safe Okabe-Ito palette, see
+    :func:`hiddenlens._plotting.style.run_style`) and by line style, marker and bar hatch, so they
+    stay apart in grey print and under colour-vision deficiencies. ``colors`` gives one colour
+    per run instead of the palette.
+    """
+    from .._plotting.style import get_axes, no_mathtext, run_style
+
+    spec = analysis_spec(analysis)
+    ax = get_axes(ax)
+    runs = [(str(n), r) for n, r in results.items()]
+    styles = [run_style(i) for i in range(len(runs))]
+    if colors is not None:
+        colors = list(colors)
+        for i, st in enumerate(styles):
+            st["color"] = colors[i % len(colors)] if colors else st["color"]
+    if styles:
+        ax.set_prop_cycle(color=[st["color"] for st in styles],
+                          linestyle=[st["linestyle"] for st in styles])
+    if spec.overlay is not None:
+        spec.overlay(runs, ax)
+    else:
+        for _, r in runs:
+            r.plot(ax=ax)
+    _style_runs(ax, [n for n, _ in runs], styles)
+    ax.set_title(spec.title)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize="small")
+    no_mathtext(ax)  # run names are the user's: plain text, not mathtext
+    return ax
+
+
+_HATCHES = ("", "//", "..", "xx", "\\\\", "++", "oo", "--")
+
+
+def _run_of(label: str, names: Sequence[str]) -> int | None:
+    """Index of the run a legend label names (the name itself, or the name and a note)."""
+    for i, n in enumerate(names):
+        if label == n or label.startswith(f"{n} ("):
+            return i
+    return None
+
+
+def _style_runs(ax: Any, names: Sequence[str], styles: Sequence[Mapping[str, Any]]) -> None:
+    """Give each run's lines its colour, line style and sparse markers, its bars a hatch."""
+    for line in ax.get_lines():
+        i = _run_of(str(line.get_label()), names)
+        if i is None:
+            continue
+        n_points = len(line.get_xdata())
+        st = dict(styles[i])
+        if n_points > 12:
+            st["markevery"] = max(1, n_points // 10)
+        line.set(**st)
+    for cont in getattr(ax, "containers", []):
+        i = _run_of(str(cont.get_label()), names)
+        if i is None:
+            continue
+        for patch in cont:
+            patch.set(facecolor=styles[i]["color"], hatch=_HATCHES[i % len(_HATCHES)],
+                      edgecolor="white" if i else styles[i]["color"])
+
+
+def plot_cka(cka: Any, names: Iterable[str], ax: Any = None, **kw: Any):
+    """Draw a runs x runs CKA matrix with its values written in the cells."""
+    from .._plotting.style import get_axes, no_mathtext
+
+    ax = get_axes(ax)
+    names = list(names)
+    m = np.asarray(cka, dtype=float)
+    im = ax.imshow(m, vmin=0.0, vmax=1.0, cmap=kw.pop("cmap", "viridis"), **kw)
+    ax.set_xticks(range(len(names)), names, rotation=30, ha="right")
+    ax.set_yticks(range(len(names)), names)
+    for i in range(m.shape[0]):
+        for j in range(m.shape[1]):
+            ax.text(j, i, f"{m[i, j]:.2f}", ha="center", va="center",
+                    color="black" if m[i, j] > 0.6 else "white", fontsize="small")
+    ax.figure.colorbar(im, ax=ax, label="linear CKA")
+    ax.set_title("Linear CKA of hidden states")
+    return no_mathtext(ax)

@@ -1,0 +1,549 @@
+"""PCA of recorded hidden states: low-dimensional trajectories and the effective dimension."""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+
+from .._core.options import analysis, check_options, int_seed, renamed
+from .._core.results import Result, frozen_mapping, readonly
+from .._core.systems import RecurrentSystem
+from .._core.trace import Trace
+from .._core.validation import check_trace_fits
+
+__all__ = ["PCATrajectories", "pca_trajectories"]
+
+
+@dataclass(frozen=True, eq=False)
+class PCATrajectories(Result):
+    """Hidden-state trajectories projected onto their principal components.
+
+    Attributes
+    ----------
+    projected : ndarray of shape (B, T, k)
+        The states of the fitted trace in the basis of the k leading components.
+    components : ndarray of shape (k, D)
+        Principal axes over the D selected state units (rows of unit length).
+    mean : ndarray of shape (D,)
+        Mean state over all samples and steps, removed before projecting.
+    explained_variance : ndarray of shape (k,)
+        Variance along each kept component.
+    explained_variance_ratio : ndarray of shape (k,)
+        Fraction of the total variance along each kept component.
+    spectrum : ndarray of shape (D,)
+        All eigenvalues of the state covariance, largest first (not only the k kept).
+    cumulative : ndarray of shape (D,)
+        Cumulative fraction of variance of the first 1, 2, ..., D components.
+    participation_ratio : float
+        Effective dimension ``(sum(spectrum))**2 / sum(spectrum**2)``, between 1 and D.
+    n_components_90, n_components_95 : int
+        Fewest components that explain at least 90% / 95% of the variance.
+    columns : ndarray of shape (D,)
+        Indices of the selected units in the flat state.
+    parts : tuple of str or None
+        The parts PCA was fitted on (None: the whole state).
+    state_size : int
+        S of the fitted trace; :meth:`project` accepts states of this length.
+    trace_parts : Mapping[str, slice]
+        The part layout of the fitted trace, to check traces given to :meth:`project`.
+    pca : sklearn.decomposition.PCA
+        The fitted scikit-learn estimator (do not refit it: the arrays above would no longer
+        match it).
+
+    Notes
+    -----
+    PCA axes belong to the data they were fitted on. The axes of two separate fits (two runs,
+    two models, two input conditions) are not comparable, even when they look alike: project
+    both traces into one basis with :meth:`project` (or ``others=`` in :meth:`plot`). The
+    fraction of variance along an axis says how much the states spread along it, not how much
+    the network relies on it.
+    """
+
+    projected: np.ndarray
+    components: np.ndarray
+    mean: np.ndarray
+    explained_variance: np.ndarray
+    explained_variance_ratio: np.ndarray
+    spectrum: np.ndarray
+    cumulative: np.ndarray
+    participation_ratio: float
+    n_components_90: int
+    n_components_95: int
+    columns: np.ndarray
+    parts: tuple[str, ...] | None
+    state_size: int
+    trace_parts: Mapping[str, slice]
+    pca: Any
+
+    @property
+    def n_components(self) -> int:
+        """k, the number of kept components."""
+        return self.components.shape[0]
+
+    # ------------------------------------------------------------------ projecting
+    def project(self, other: Trace | Any) -> np.ndarray:
+        """Project another trace, or flat states, into this basis.
+
+        Parameters
+        ----------
+        other : Trace or array_like of shape (..., S)
+            A trace with the same part layout as the fitted one (another run or input condition
+            of the same model), or flat states of the fitted length S (e.g. fixed points).
+
+        Returns
+        -------
+        ndarray of shape (B', T', k) for a trace, (..., k) for an array
+        """
+        if isinstance(other, Trace):
+            self._check_layout(other)
+            states = other.states
+        else:
+            states = np.asarray(other, dtype=np.float64)
+            if states.ndim == 0 or states.shape[-1] != self.state_size:
+                raise ValueError(
+                    f"states to project must have shape (..., {self.state_size}), the state "
+                    f"size of the fitted trace, got shape {states.shape}"
+                )
+        X = np.asarray(states[..., self.columns], dtype=np.float64)  # (..., D)
+        return (X - self.mean) @ self.components.T  # (..., k)
+
+    def _check_layout(self, other: Trace) -> None:
+        names = self.parts if self.parts is not None else tuple(self.trace_parts)
+        own = {n: self.trace_parts[n] for n in names}
+        theirs = {n: other.parts.get(n) for n in names}
+        same_size = other.state_size == self.state_size or self.parts is not None
+        if own != theirs or not same_size:
+            raise ValueError(
+                f"the trace to project has state size {other.state_size} and parts "
+                f"{_describe_parts(other.parts)}, but PCA was fitted on parts "
+                f"{_describe_parts(own)} of states of size {self.state_size}; project traces "
+                "of the same model (or pass flat states of matching size as an array)"
+            )
+
+    # ------------------------------------------------------------------ tables
+    def to_frame(self):
+        """Long table of the projected trajectories: index (sample, step), columns PC1..PCk."""
+        import pandas as pd
+
+        B, T, k = self.projected.shape
+        idx = pd.MultiIndex.from_product([range(B), range(T)], names=["sample", "step"])
+        return pd.DataFrame(self.projected.reshape(B * T, k), index=idx,
+                            columns=[f"PC{i + 1}" for i in range(k)])
+
+    # ------------------------------------------------------------------ plots
+    def axis_label(self, i: int) -> str:
+        """``"PC1 (42.0%)"``: the label of component ``i`` (from 0) with its variance share."""
+        return f"PC{i + 1} ({100 * self.explained_variance_ratio[i]:.1f}%)"
+
+    def plot(self, ax: Any = None, *, dims: int = 2, color_by: Any = "time", samples: Any = None,
+             steps: slice | None = None, others: Any = None):
+        """Draw the trajectories in the plane (or space) of the leading components.
+
+        Parameters
+        ----------
+        ax : matplotlib Axes, optional
+            Where to draw (3-D axes for ``dims=3``); a new figure by default.
+        dims : {2, 3}
+        color_by : "time", "sample" or array_like of shape (B,)
+            Colour segments by step, each sample in its own colour, or by a label per sample
+            (e.g. the class of each sequence).
+        samples : int, sequence of int or slice, optional
+            Which samples to draw (all by default).
+        steps : slice, optional
+            Which steps to draw (all by default).
+        others : Trace, sequence of Trace or mapping name -> Trace, optional
+            Further traces of the same model, projected into this basis and drawn dashed.
+
+        Returns
+        -------
+        matplotlib Axes
+
+        Notes
+        -----
+        Circles mark where each trajectory starts, squares where it ends.
+        """
+        from .._plotting.style import RUN_COLORS, get_axes
+
+        dims = _check_dims(dims, self.n_components)
+        B, T, _ = self.projected.shape
+        try:
+            rows = np.atleast_1d(np.arange(B)[samples if samples is not None else slice(None)])
+            cols = np.arange(T)[steps if steps is not None else slice(None)]
+        except (IndexError, TypeError) as err:
+            raise ValueError(f"samples must index the {B} samples and steps must be a slice of "
+                             f"the {T} steps ({err})") from None
+        if rows.size == 0 or cols.size == 0:
+            raise ValueError("samples/steps select nothing to draw; pass a non-empty selection")
+        P = self.projected[rows][:, cols, :dims]  # (b, t, dims)
+        colouring = _colouring(color_by, B, rows)
+        ax = get_axes(ax, projection="3d" if dims == 3 else None)
+        handles = _draw_lines(ax, P, colouring, cols)
+        drawn = [P]
+        used = len(np.unique(colouring[1])) if colouring[0] == "labels" else 1
+        for i, (label, tr) in enumerate(_as_named_traces(others)):
+            Q = self.project(tr)[:, :, :dims]  # (B', T', dims)
+            colour = RUN_COLORS[(used + i) % len(RUN_COLORS)]
+            handles += _draw_lines(ax, Q, ("single", colour), None, label=label,
+                                   ls="--")
+            drawn.append(Q)
+        handles += _mark_ends(ax, drawn)
+        _set_limits(ax, drawn, dims)
+        ax.set_xlabel(self.axis_label(0))
+        ax.set_ylabel(self.axis_label(1))
+        if dims == 3:
+            ax.set_zlabel(self.axis_label(2))
+        what = "all states" if self.parts is None else ", ".join(self.parts)
+        ax.set_title(f"PCA of {what}: participation ratio {self.participation_ratio:.1f}")
+        ax.legend(handles=handles, loc="best", fontsize="small")
+        return ax
+
+    def plot_variance(self, ax: Any = None, *, max_components: int = 30):
+        """Draw the variance share of each component and the cumulative curve (90%/95% marked)."""
+        from .._plotting.style import get_axes
+
+        ax = get_axes(ax)
+        n = min(max_components, self.spectrum.size)
+        share = self.spectrum[:n] / self.spectrum.sum()
+        x = np.arange(1, n + 1)
+        ax.bar(x, share, color="C0", alpha=0.6, label="per component")
+        ax.plot(x, self.cumulative[:n], "o-", color="C1", ms=3, label="cumulative")
+        for level, k in ((0.9, self.n_components_90), (0.95, self.n_components_95)):
+            ax.axhline(level, color="grey", lw=0.6, ls=":")
+            ax.annotate(f"{level:.0%}: {k}", (x[-1], level), ha="right", va="bottom",
+                        fontsize="small", color="grey")
+        ax.set_xlabel("component")
+        ax.set_ylabel("fraction of variance")
+        ax.set_ylim(0, 1.05)
+        ax.set_title(f"participation ratio {self.participation_ratio:.2f} of {self.spectrum.size}")
+        ax.legend(loc="center right", fontsize="small")
+        return ax
+
+    def __repr__(self) -> str:
+        B, T, k = self.projected.shape
+        return (f"PCATrajectories(B={B}, T={T}, k={k}, D={self.columns.size}, "
+                f"participation_ratio={self.participation_ratio:.3g}, "
+                f"n_components_90={self.n_components_90})")
+
+
+@analysis("pca_trajectories")
+def pca_trajectories(
+    system: Any,
+    trace: Trace | None = None,
+    *legacy: Any,
+    k: int | None = None,
+    parts: str | Sequence[str] | None = None,
+    svd_solver: str | None = None,
+    seed: int | np.random.Generator = 0,
+    threads: int | None = None,
+    n_components: int | None = None,
+) -> PCATrajectories:
+    """Fit PCA to the recorded states and project the trajectories onto the leading components.
+
+    Every (sample, step) state of the chosen parts is one observation: the (B, T, D) states are
+    reshaped to (B * T, D) and fitted with :class:`sklearn.decomposition.PCA` in float64.
+
+    Called as ``pca_trajectories(system, trace, k=3)`` like every analysis, or as
+    ``pca_trajectories(trace)`` (PCA needs only the states).
+
+    Parameters
+    ----------
+    system : RecurrentSystem, model or Trace
+        The system the trace was recorded from (checked against the trace's sizes when it is a
+        RecurrentSystem), or the trace itself.
+    trace : Trace
+        Recorded states (B, T, S), e.g. from :func:`hiddenlens.record`. Input sequences given
+        here are recorded first through ``system`` (with a DeprecationWarning).
+    k : int, default 3
+        The number of components to keep (the participation ratio and the 90%/95% counts use
+        the whole spectrum regardless). Called ``n_components`` in 0.1; that name and the
+        positional ``pca_trajectories(trace, 3, parts)`` still work for one release with a
+        DeprecationWarning.
+    parts : str or sequence of str, optional
+        Parts of the state to analyse (e.g. ``"layer1.h"``). Default: the whole flat state,
+        except for an LSTM (parts ``"layer<k>.h"`` and ``"layer<k>.c"``), where the h parts
+        only: h and c have different scales, and mixing them lets the larger c dominate the
+        axes. Pass both parts by name to fit them together.
+    svd_solver : str, optional
+        Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
+        D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
+        "randomized" is faster for very wide states.
+    seed : int >= 0 or numpy.random.Generator, default 0
+        Random state of the randomized solver.
+    threads : int, optional
+        Torch threads of the calling thread during the fit (see docs/options.md).
+
+    Returns
+    -------
+    PCATrajectories
+
+    Notes
+    -----
+    With covariance eigenvalues λ_1 >= ... >= λ_D the participation ratio is
+    PR = (Σ λ_i)² / Σ λ_i² (Gao et al. 2017; Litwin-Kumar et al. 2017): D for isotropic states,
+    1 when all variance lies along one axis. The axes of two fits are not comparable; project
+    other traces with :meth:`PCATrajectories.project` to see them in one basis.
+
+    References
+    ----------
+    Gao, Trautmann, Yu, Santhanam, Ryu, Shenoy & Ganguli (2017), "A theory of multineuronal
+    dimensionality, dynamics and measurement", bioRxiv 214262.
+    Litwin-Kumar, Harris, Axel, Sompolinsky & Abbott (2017), "Optimal degrees of synaptic
+    connectivity", Neuron 93(5).
+    """
+    from sklearn.decomposition import PCA
+
+    trace, k, parts = _call_form(system, trace, legacy, k, parts, n_components)
+    check_options("pca_trajectories", locals())
+    seed = int_seed(seed)
+    n_components = k
+    names = None if parts is None else ((parts,) if isinstance(parts, str) else tuple(parts))
+    if names is None:
+        names = _default_parts(trace)
+    try:
+        cols = trace.columns(names)  # (D,)
+    except KeyError as err:  # an unknown part is a bad option value, as elsewhere
+        raise ValueError(str(err.args[0])) from None
+    B, T, _ = trace.states.shape
+    X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
+    from .._core.record import valid_steps
+
+    keep = valid_steps(trace)  # (B, T): padded steps of variable-length batches stay out
+    X_fit = X if keep is None else X[keep.reshape(-1)]
+    _check_data(X_fit, n_components)
+    spectrum = _covariance_spectrum(X_fit)  # (D,)
+    total = spectrum.sum()
+    if not total > 0:
+        raise ValueError("the selected states do not vary over samples and steps, so they have "
+                         "no principal components; record longer or more varied inputs")
+    if svd_solver is None:
+        svd_solver = "covariance_eigh" if _has_covariance_eigh() and \
+            X_fit.shape[0] >= X_fit.shape[1] else "full"
+    pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X_fit)
+    cumulative = np.minimum(np.cumsum(spectrum) / total, 1.0)  # (D,)
+    projected = pca.transform(X).reshape(B, T, n_components)  # (B, T, k)
+    return PCATrajectories(
+        projected=readonly(projected),
+        components=readonly(pca.components_),
+        mean=readonly(pca.mean_),
+        explained_variance=readonly(pca.explained_variance_),
+        explained_variance_ratio=readonly(pca.explained_variance_ratio_),
+        spectrum=readonly(spectrum),
+        cumulative=readonly(cumulative),
+        participation_ratio=float(total**2 / np.sum(spectrum**2)),
+        n_components_90=_components_for(cumulative, 0.90),
+        n_components_95=_components_for(cumulative, 0.95),
+        columns=readonly(cols),
+        parts=names,
+        state_size=trace.state_size,
+        trace_parts=frozen_mapping(trace.parts),
+        pca=pca,
+    )
+
+
+# ---------------------------------------------------------------------- computing
+def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: Any,
+               n_components: Any) -> tuple[Trace, Any, Any]:
+    """The trace, k and parts of any accepted call form (the 0.1 forms with a warning)."""
+    if isinstance(system, Trace):
+        given, positional = system, ((trace,) if trace is not None else ()) + tuple(legacy)
+    else:
+        given, positional = trace, tuple(legacy)
+        if given is None:
+            raise TypeError(f"the trace must be a hiddenlens Trace, got {type(system).__name__}; "
+                            "call pca_trajectories(system, trace) or pca_trajectories(trace) "
+                            "with trace = hiddenlens.record(model, inputs)")
+        if not isinstance(given, Trace):
+            from .._core.record import record
+
+            if not isinstance(given, (np.ndarray, torch.Tensor)):
+                raise TypeError(f"trace must be a hiddenlens Trace, got {type(given).__name__}; "
+                                "record one with hiddenlens.record(model, inputs)")
+            warnings.warn("pca_trajectories(system, inputs) is deprecated; record first: "
+                          "pca_trajectories(system, hiddenlens.record(system, inputs))",
+                          DeprecationWarning, stacklevel=4)
+            given = record(system, given)
+        elif isinstance(system, RecurrentSystem):
+            check_trace_fits(system, given, "pca_trajectories")
+    if len(positional) > 2:
+        raise TypeError(f"pca_trajectories takes at most (system, trace) positionally, got "
+                        f"{len(positional)} more; pass k= and parts= by keyword")
+    if positional:
+        warnings.warn("pca_trajectories(trace, n_components, parts) with positional options is "
+                      "deprecated; pass them by keyword: pca_trajectories(system, trace, k=..., "
+                      "parts=...)", DeprecationWarning, stacklevel=4)
+        if k is not None or n_components is not None:
+            raise TypeError("pca_trajectories got the number of components twice; pass only k=")
+        k = positional[0]
+        if len(positional) == 2:
+            if parts is not None:
+                raise TypeError("pca_trajectories got parts twice; pass only parts=")
+            parts = positional[1]
+    k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
+    return given, (3 if k is None else k), parts
+def _default_parts(trace: Trace) -> tuple[str, ...] | None:
+    """The h parts of an LSTM trace (which also holds c parts); None (all) otherwise."""
+    names = list(trace.parts)
+    cells = [n for n in names if n.endswith(".c")]
+    hidden = [n for n in names if n.endswith(".h")]
+    if cells and hidden and len(cells) + len(hidden) == len(names):
+        return tuple(hidden)
+    return None
+
+
+def _has_covariance_eigh() -> bool:
+    """scikit-learn >= 1.5 offers the "covariance_eigh" PCA solver."""
+    import sklearn
+
+    major, minor = (int(v) for v in sklearn.__version__.split(".")[:2])
+    return (major, minor) >= (1, 5)
+
+
+def _check_data(X: np.ndarray, n_components: Any) -> None:
+    N, D = X.shape
+    if N < 2:
+        raise ValueError("PCA needs at least two states; record more than one step or sample")
+    if not np.isfinite(X).all():
+        raise ValueError(
+            "the selected states contain NaN or Inf (the dynamics exploded); restrict the trace "
+            "to the finite part with trace.select(steps=...) or samples=..."
+        )
+    if isinstance(n_components, bool) or not isinstance(n_components, (int, np.integer)) \
+            or not 1 <= n_components <= min(N, D):
+        raise ValueError(f"k (the number of components) must be an integer from 1 to "
+                         f"{min(N, D)} (the number of selected units or states), got "
+                         f"{n_components!r}")
+
+
+def _covariance_spectrum(X: np.ndarray) -> np.ndarray:
+    """All eigenvalues of the sample covariance of X (N, D), largest first, length D."""
+    N, D = X.shape
+    Xc = X - X.mean(axis=0)
+    # the smaller of the two Gram matrices has the same non-zero eigenvalues
+    G = Xc.T @ Xc if N >= D else Xc @ Xc.T  # (D, D) or (N, N)
+    lam = np.clip(np.linalg.eigvalsh(G)[::-1], 0.0, None) / (N - 1)
+    out = np.zeros(D)
+    out[: min(lam.size, D)] = lam[:D]
+    return out
+
+
+def _components_for(cumulative: np.ndarray, level: float) -> int:
+    # a small slack so that exactly 90% counts as reaching 90% despite rounding
+    return int(np.searchsorted(cumulative, level - 1e-12) + 1)
+
+
+def _describe_parts(parts: Mapping[str, Any]) -> str:
+    return "{" + ", ".join(f"{n}: {s.start}:{s.stop}" if isinstance(s, slice) else f"{n}: none"
+                           for n, s in parts.items()) + "}"
+
+
+# ---------------------------------------------------------------------- drawing
+def _check_dims(dims: Any, k: int) -> int:
+    if dims not in (2, 3):
+        raise ValueError(f"dims must be 2 or 3, got {dims!r}")
+    if k < dims:
+        raise ValueError(f"a {dims}-D plot needs at least {dims} components but only {k} were "
+                         f"kept; refit with k={dims}")
+    return int(dims)
+
+
+def _colouring(color_by: Any, B: int, rows: np.ndarray):
+    if isinstance(color_by, str):
+        if color_by not in ("time", "sample"):
+            raise ValueError(f"color_by must be 'time', 'sample' or an array of {B} labels "
+                             f"(one per sample), got {color_by!r}")
+        return (color_by, None)
+    labels = np.asarray(color_by)
+    if labels.shape != (B,):
+        raise ValueError(f"color_by labels must have shape ({B},), one per sample, got shape "
+                         f"{labels.shape}")
+    return ("labels", labels[rows])
+
+
+_TIME_PIECES = 128  # most colour bands drawn along one trajectory coloured by time
+
+
+def _draw_lines(ax, P: np.ndarray, colouring, steps, *, label: str | None = None,
+                ls: str = "-") -> list:
+    """Draw trajectories P (b, t, dims) as one line collection; return legend handles."""
+    from matplotlib.collections import LineCollection
+    from matplotlib.lines import Line2D
+
+    b, t, dims = P.shape
+    kind, extra = colouring
+    handles = []
+    if kind == "single":
+        handles.append(Line2D([], [], color=extra, ls=ls, label=label))
+    if t < 2:
+        return handles
+    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
+    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
+    # that matplotlib builds and strokes on every redraw).
+    m = t - 1 if kind != "time" else -(-(t - 1) // _TIME_PIECES)
+    firsts = np.arange(0, t - 1, m)  # first step of each piece
+    segs = [P[i, a:min(a + m, t - 1) + 1] for i in range(b) for a in firsts]  # (<= m+1, dims)
+    per_sample = firsts.size
+    kw: dict[str, Any] = {"linewidths": 1.0, "linestyles": ls}
+    if kind == "single":
+        kw["colors"] = extra
+    elif kind == "sample":
+        from .._plotting.style import time_colors
+
+        kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
+    elif kind == "labels":
+        uniq, code = np.unique(extra, return_inverse=True)
+        palette = np.array([f"C{i % 10}" for i in range(uniq.size)])
+        kw["colors"] = np.repeat(palette[code], per_sample)
+    if dims == 3:
+        from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
+    else:
+        Collection = LineCollection
+    coll = Collection(segs, **kw)
+    if kind == "time":
+        coll.set_array(np.tile(steps[firsts], b).astype(float))
+        coll.set_cmap("viridis")
+    ax.add_collection(coll)
+    if kind == "time":
+        ax.figure.colorbar(coll, ax=ax, label="step", shrink=0.8, pad=0.12 if dims == 3 else 0.04)
+    elif kind == "labels":
+        handles += [Line2D([], [], color=palette[i], label=str(u)) for i, u in enumerate(uniq)]
+    return handles
+
+
+def _mark_ends(ax, drawn: list[np.ndarray]) -> list:
+    first = np.concatenate([P[:, 0] for P in drawn])  # (n, dims)
+    last = np.concatenate([P[:, -1] for P in drawn])
+    return [
+        ax.scatter(*first.T, marker="o", facecolors="white", edgecolors="black", s=22,
+                   zorder=3, label="start"),
+        ax.scatter(*last.T, marker="s", color="black", s=18, zorder=3, label="end"),
+    ]
+
+
+def _set_limits(ax, drawn: list[np.ndarray], dims: int) -> None:
+    pts = np.concatenate([P.reshape(-1, dims) for P in drawn])
+    lo, hi = pts.min(axis=0), pts.max(axis=0)
+    span = hi - lo
+    big = float(span.max()) or 1.0
+    pad = np.where(span > 1e-9 * big, 0.05 * span, 0.5 * big)  # a flat axis gets room too
+    setters = (ax.set_xlim, ax.set_ylim) + ((ax.set_zlim,) if dims == 3 else ())
+    for i, setter in enumerate(setters):
+        setter(lo[i] - pad[i], hi[i] + pad[i])
+
+
+def _as_named_traces(others: Any) -> list[tuple[str, Trace]]:
+    if others is None:
+        return []
+    if isinstance(others, Trace):
+        return [("other", others)]
+    items = list(others.items()) if isinstance(others, Mapping) else \
+        [(f"other {i + 1}", tr) for i, tr in enumerate(others)]
+    for name, tr in items:
+        if not isinstance(tr, Trace):
+            raise TypeError(f"others must hold Traces, got {type(tr).__name__} for {name!r}")
+    return [(str(n), tr) for n, tr in items]
+

@@ -1,0 +1,1 @@
+"""core layer of hiddenlens (private: the public names are in hiddenlens)."""

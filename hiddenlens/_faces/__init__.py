@@ -1,0 +1,1 @@
+"""faces layer of hiddenlens (private: the public names are in hiddenlens)."""

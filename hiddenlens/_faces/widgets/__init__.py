@@ -1,0 +1,1 @@
+"""widgets layer of hiddenlens (private: the public names are in hiddenlens)."""

@@ -1,0 +1,186 @@
+"""``explore``: one model's hidden-state dynamics in a notebook widget, one tab per analysis."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from concurrent.futures import Executor
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+
+from ..._core.record import as_system, record
+from ..._analyses.runner import ModelLike, Sequences
+from ..summary import key_figures, summary_sentence
+from ..._core.validation import as_sequences
+from . import render as _render
+from .board import _ALL, Board, Panel, check_analyses
+from .panels import Run, View, tab
+
+__all__ = ["Explorer", "explore"]
+
+
+def _labels(labels: Any, batch: int) -> np.ndarray | None:
+    if labels is None:
+        return None
+    arr = np.asarray(labels)
+    if arr.ndim != 1 or arr.shape[0] != batch:
+        raise ValueError(f"labels must hold one label per sequence, shape ({batch},), got shape "
+                         f"{arr.shape}; pass e.g. the class of each input sequence")
+    return arr
+
+
+class Explorer(Board):
+    """The widget returned by :func:`explore` (an ``ipywidgets.VBox``).
+
+    Attributes
+    ----------
+    trace : Trace
+        The states recorded on the inputs, shared by every tab.
+    computed : dict
+        How many times each analysis was computed so far.
+    images : dict
+        Analysis name -> the PNG bytes its tab shows.
+    """
+
+    def __init__(self, model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
+                 analyses: Sequence[str] | None = None, background: bool = True,
+                 executor: Executor | None = None, seed: int = 0, name: str | None = None,
+                 task: Mapping[str, Any] | None = None, **wrap_options: Any) -> None:
+        names = check_analyses(analyses)
+        if task is not None and not isinstance(task, Mapping):
+            raise TypeError("task must be a mapping of the model's task metrics (e.g. "
+                            f"{{'accuracy': 0.97, 'chance': 0.5}}), got {type(task).__name__}")
+        system = as_system(model_or_system, **wrap_options)
+        x = as_sequences(inputs, system.input_size, system.dtype,
+                         what=f"the {system.source} system")  # (B, T, I)
+        trace = record(system, x, h0)
+        run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
+                  seed)
+        super().__init__()  # only once the arguments are known to be good
+        self._runs = {run.name: run}
+        self._task = {run.name: dict(task)} if task else {}
+        self.trace = trace
+        B, T, S = trace.states.shape
+
+        self._sample = widgets.Dropdown(
+            options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
+            description="sample", layout=widgets.Layout(width="140px"),
+            style={"description_width": "initial"})
+        self._window = widgets.IntRangeSlider(
+            value=(0, T), min=0, max=T, step=1, description="steps", continuous_update=False,
+            style={"description_width": "initial"}, layout=widgets.Layout(width="340px"))
+        parts = [("whole state", _ALL)] + [(p, p) for p in trace.parts] if len(trace.parts) > 1 \
+            else [("whole state", _ALL)]
+        self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      style={"description_width": "initial"},
+                                      layout=widgets.Layout(width="max-content"),
+                                      disabled=len(parts) == 1)
+        meta = trace.metadata
+        size = f"{S} states" if meta.get("hidden_size") in (None, S) else \
+            f"{S} states ({meta['num_layers']} layer(s) of {meta['hidden_size']})"
+        title = (f"<div style='font-size:15px'><b>{_render.esc(run.name)}</b> "
+                 f"<span style='color:#4a5568'>· {system.kind} · {size} · {B} sequence"
+                 f"{'s' if B != 1 else ''} × {T} steps</span></div>")
+        self._build(names, title=title, background=background, executor=executor,
+                    shared=[self._sample, self._window, self._part])
+
+    # ------------------------------------------------------------------ hooks
+    @property
+    def run(self) -> Run:
+        return next(iter(self._runs.values()))
+
+    def _part_value(self, run: Run) -> Any:
+        return None if self._part.value == _ALL else self._part.value
+
+    def _view(self, panel: Panel) -> View:
+        return self._sample_window_view(panel, self.trace.n_steps)
+
+    def _update_shared_state(self) -> None:
+        name = self.current
+        analysis = tab(name) if name else None
+        uses = analysis.uses if analysis else frozenset()
+        self._sample.disabled = "sample" not in uses
+        self._window.disabled = "window" not in uses
+        takes_part = analysis is not None and (analysis.part_option is not None or any(
+            tab(d).part_option for d in analysis.needs))
+        self._part.disabled = len(self._part.options) == 1 or not takes_part
+
+    def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
+        analysis, run = panel.analysis, self.run
+        n, projection = analysis.n_axes(view)
+        fig, axes = _render.new_figure(n, projection=projection, layout=layout,
+                                       height=4.6 if projection == "3d" else _render.HEIGHT_IN)
+        deps = {d: self._results(d, run) for d in analysis.needs}
+        analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
+        return fig
+
+    def _summary_html(self) -> str:
+        results = {n: self._results(n, self.run) for n in self._panels}
+        present = {n: r for n, r in results.items() if r is not None}
+        text = summary_sentence(key_figures(present)) if present else ""
+        missing = [self._panels[n].analysis.label.lower() for n in results if n not in present]
+        body = _render.esc(text[:1].upper() + text[1:]) + "." if text else \
+            "Key figures appear here as the analyses finish."
+        rest = ""
+        if missing:
+            names = _render.esc(", ".join(missing))
+            rest = (f"<span style='color:#718096'> Not computed yet: {names} (open their tabs "
+                    "or press 'Run all').</span>")
+        return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
+                f"#3b6ea5;padding:6px 10px;font-size:13.5px'>{body}{rest}</div>")
+
+
+def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
+            analyses: Sequence[str] | None = None, background: bool = True,
+            executor: Executor | None = None, seed: int = 0, name: str | None = None,
+            task: Mapping[str, Any] | None = None, **wrap_options: Any) -> Explorer:
+    """An interactive notebook view of one model's hidden-state dynamics.
+
+    The model is recorded once on ``inputs``; each tab shows one analysis and is computed only
+    when opened, in a background thread (a progress bar and a Cancel button sit at the bottom).
+    A strip at the top states the key figures in plain words as they become known.
+
+    Parameters
+    ----------
+    model_or_system : RecurrentSystem, nn.Module or callable
+        Anything :func:`hiddenlens.wrap` accepts (wrapped with ``wrap_options``), or a system.
+    inputs : Tensor or ndarray of shape (B, T, I)
+        Input sequences, batch first.
+    h0 : Tensor or ndarray, optional
+        Initial states as in :func:`hiddenlens.record` (zeros by default).
+    labels : array_like of shape (B,), optional
+        A label per sequence; adds "colour by label" to the trajectories tab.
+    analyses : sequence of str, optional
+        Which tabs to show, in order (default: every available analysis, trajectories first).
+        Names: those of :func:`hiddenlens.analyses` ("pca", "spectra", "gradient_flow",
+        "lyapunov", "fixed_points", "memory" and any registered analysis).
+    background : bool, default True
+        Compute in a worker thread. False computes inline, in the calling thread (scripts,
+        tests); the widget then behaves the same but blocks while computing.
+    executor : concurrent.futures.Executor, optional
+        Run computations on this executor instead of a private one-thread pool.
+    seed : int, default 0
+        Seed of the analyses that draw random numbers, so the figures repeat.
+    name : str, optional
+        Title of the widget (default: the model's class name).
+    task : Mapping, optional
+        Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
+        ``n_eval``, ``horizon``; see :func:`hiddenlens._analyses.diagnosis.diagnose`): a diagnosis line
+        at the top reads the key figures against them.
+
+    Returns
+    -------
+    Explorer
+        An ``ipywidgets.VBox``; display it (or end a cell with it). ``.show_static()`` gives
+        every figure as plain HTML for front ends without widgets, ``.wait()`` blocks until
+        the background work is done.
+
+    Notes
+    -----
+    Results are cached by the options that change the computation, so the sample, step window,
+    colouring and 2-D/3-D controls only redraw. The user's model is not modified.
+    """
+    return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
+                    background=background, executor=executor, seed=seed, name=name,
+                    task=task, **wrap_options)

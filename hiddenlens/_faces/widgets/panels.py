@@ -1,0 +1,333 @@
+"""The analyses the widgets show: one registry entry per analysis (compute, options, drawing).
+
+An entry says which keyword options change the computation (these become controls and form the
+cache key), which view controls only change the drawing, and how to draw a result onto Axes.
+Computing always goes through :func:`hiddenlens.run_analyses`, so the widgets use the same
+default budgets and option checks as the report and :func:`hiddenlens.compare_runs`. Every
+analysis of the registry has a tab (:func:`tab`); an entry here adds controls and drawing.
+"""
+
+from __future__ import annotations
+
+import inspect
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import torch
+
+from ..._core.registry import analysis_spec
+from ..._analyses.runner import budget_of, run_analyses
+from ..._core.systems import RecurrentSystem
+from ..._core.trace import Trace
+
+__all__ = ["Analysis", "Option", "Run", "View", "REGISTRY", "register", "option_defaults", "tab"]
+
+
+@dataclass(frozen=True, eq=False)
+class Run:
+    """One model as the widgets see it: its system, the trace on the inputs, the inputs."""
+
+    name: str
+    system: RecurrentSystem
+    trace: Trace
+    inputs: torch.Tensor  # (B, T, I)
+    labels: np.ndarray | None = None  # (B,) one label per sample, for colouring
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class View:
+    """The view-only control values: changing them redraws from the cache, never recomputes."""
+
+    sample: int | None = None  # None: every sample
+    window: tuple[int, int] | None = None  # steps [t0, t1)
+    extra: Mapping[str, Any] = field(default_factory=dict)  # per-analysis view options
+
+    def steps(self) -> slice | None:
+        return None if self.window is None else slice(*self.window)
+
+
+@dataclass(frozen=True)
+class Option:
+    """A control of one analysis.
+
+    ``name`` is the keyword passed to the analysis (for a compute option) or a key of
+    ``View.extra`` (for a view option). ``default(run)`` gives the starting value; with
+    ``choices`` ((label, value) pairs) the control is a drop-down, otherwise an integer box
+    bounded by ``low`` and ``high(run)``.
+    """
+
+    name: str
+    label: str
+    default: Callable[[Run], Any]
+    choices: Callable[[Run], Sequence[tuple[str, Any]]] | None = None
+    low: int = 1
+    high: Callable[[Run], int] | None = None
+    tip: str = ""
+
+
+@dataclass(frozen=True, eq=False)
+class Analysis:
+    """One tab: how to compute, what controls it has, how to draw.
+
+    Attributes
+    ----------
+    name : str
+        The analysis name in the registry (:func:`hiddenlens.analyses`).
+    label : str
+        Tab title.
+    options : tuple of Option
+        Compute options (part of the cache key).
+    views : tuple of Option
+        View-only options (drawing only).
+    uses : frozenset of str
+        Which shared view controls change the drawing: "sample", "window".
+    part_option : str or None
+        Keyword that receives the shared "part" control (a compute option), if any.
+    needs : tuple of str
+        Further analyses whose results the drawing uses (e.g. fixed points on PCA axes).
+    draw : callable
+        ``draw(result, axes, view, run, deps)`` draws one run's result on ``axes``.
+    n_axes : callable
+        ``n_axes(view) -> (number of Axes, projection or None)``.
+    prepare : callable, optional
+        ``prepare(run, options) -> keyword options`` turns control values that are not plain
+        keywords (e.g. "hold the input at its mean") into what the analysis takes.
+    per_run : bool
+        In a comparison, draw each run on its own Axes (e.g. in its own PCA axes) instead of
+        the analysis' overlay of all runs on one.
+    overlay_row : bool
+        With ``per_run``, add the analysis' overlay of all runs below the per-run Axes.
+    run_title : callable, optional
+        ``run_title(result) -> str`` appended to a run's name above its own Axes.
+    """
+
+    name: str
+    label: str
+    draw: Callable[..., None]
+    options: tuple[Option, ...] = ()
+    views: tuple[Option, ...] = ()
+    uses: frozenset[str] = frozenset()
+    part_option: str | None = None
+    needs: tuple[str, ...] = ()
+    n_axes: Callable[[View], tuple[int, str | None]] = lambda view: (1, None)
+    prepare: Callable[[Run, dict[str, Any]], dict[str, Any]] | None = None
+    per_run: bool = False
+    overlay_row: bool = False
+    run_title: Callable[[Any], str] | None = None
+
+    @property
+    def caution(self) -> str:
+        return analysis_spec(self.name).caution
+
+    def available(self) -> bool:
+        return analysis_spec(self.name).available()
+
+    def accepted(self) -> set[str]:
+        """Keywords the analysis function accepts (options it lacks are not offered)."""
+        names, var_kw = analysis_spec(self.name).accepted()
+        return names | ({o.name for o in self.options} if var_kw else set())
+
+    def compute(self, run: Run, options: Mapping[str, Any]) -> Any:
+        """Run this analysis on ``run`` with ``options`` (the other options at their defaults)."""
+        opts = dict(options)
+        if self.prepare is not None:
+            opts = self.prepare(run, opts)
+        out = run_analyses(run.system, run.inputs, which=[self.name],
+                           options={self.name: opts}, seed=run.seed, trace=run.trace)
+        if self.name not in out:
+            raise ValueError(f"{self.label} was not run: {out.skipped.get(self.name, '')}")
+        return out[self.name]
+
+
+#: Controls and drawing of the built-in analyses' tabs; any other registered analysis gets a
+#: plain tab from :func:`tab`.
+REGISTRY: dict[str, Analysis] = {}
+
+
+def register(analysis: Analysis) -> Analysis:
+    """Give an analysis of the registry its own controls and drawing in the widgets."""
+    REGISTRY[analysis.name] = analysis
+    return analysis
+
+
+def tab(name: str) -> Analysis:
+    """The tab of analysis ``name``: its own entry, or one that draws ``result.plot(ax=ax)``
+    (on one Axes per run in a comparison when the analysis has no overlay)."""
+    entry = REGISTRY.get(name)
+    if entry is not None:
+        return entry
+    spec = analysis_spec(name)
+    return Analysis(name, spec.title, _draw_plain, per_run=spec.overlay is None)
+
+
+def option_defaults(run: Run, name: str) -> dict[str, Any]:
+    """The default budget of analysis ``name`` for ``run`` (shared with the report)."""
+    return budget_of(analysis_spec(name), run.system, run.trace, run.seed)
+
+
+def _default(name: str, key: str, fallback: Callable[[Run], Any]) -> Callable[[Run], Any]:
+    def get(run: Run) -> Any:
+        value = option_defaults(run, name).get(key)
+        return fallback(run) if value is None else value
+
+    return get
+
+
+def _state_size(run: Run) -> int:
+    return run.trace.state_size
+
+
+def _n_steps(run: Run) -> int:
+    return run.trace.n_steps
+
+
+# ---------------------------------------------------------------------- drawing
+def _window(ax: Any, view: View) -> None:
+    """Show the steps of the window only, with the y-range fitted to what is visible."""
+    if view.window is None:
+        return
+    t0, t1 = view.window[0], view.window[1] - 1
+    ax.set_xlim(t0, max(t1, t0 + 1))
+    ys = []
+    for line in ax.get_lines():
+        x = np.asarray(line.get_xdata(), dtype=float)
+        y = np.asarray(line.get_ydata(), dtype=float)
+        if x.shape == y.shape and x.size > 1:  # curves over time, not reference lines
+            ys.append(y[(x >= t0) & (x <= t1)])
+    y = np.concatenate(ys) if ys else np.empty(0)
+    log = ax.get_yscale() == "log"
+    y = y[np.isfinite(y) & (y > 0)] if log else y[np.isfinite(y)]
+    if y.size:
+        lo, hi = float(y.min()), float(y.max())
+        if log:
+            pad = (hi / lo) ** 0.05 if hi > lo else 1.1
+            ax.set_ylim(lo / pad, hi * pad)
+        else:
+            pad = 0.05 * (hi - lo) if hi > lo else 0.5 * (abs(hi) or 1.0)
+            ax.set_ylim(lo - pad, hi + pad)
+
+
+def _draw_plain(result, axes, view, run, deps):
+    result.plot(ax=axes[0])
+
+
+def _draw_spectra(result, axes, view, run, deps):
+    ax = axes[0]
+    kw = _accepted_kw(result.plot, sample=view.sample, samples=view.sample)
+    result.plot(ax=ax, **kw)
+    _window(ax, view)
+
+
+def _draw_gradient_flow(result, axes, view, run, deps):
+    kw = _accepted_kw(result.plot, sample=view.sample, samples=view.sample,
+                      norm=view.extra.get("norm", "spectral"))
+    result.plot(ax=axes[0], **kw)
+
+
+def _draw_lyapunov(result, axes, view, run, deps):
+    result.plot(ax=axes[0], kind="spectrum")
+    result.plot(ax=axes[1], kind="convergence")
+
+
+def _color_by(view: View, run: Run) -> Any:
+    how = view.extra.get("color_by", "time")
+    if how == "label":
+        return run.labels if run.labels is not None else "sample"
+    return how
+
+
+def _draw_pca(result, axes, view, run, deps):
+    result.plot(ax=axes[0], dims=view.extra.get("dims", 2), color_by=_color_by(view, run),
+                samples=view.sample, steps=view.steps())
+
+
+def _draw_fixed_points(result, axes, view, run, deps):
+    kw = _accepted_kw(result.plot, dims=view.extra.get("dims", 2))
+    result.plot(ax=axes[0], pca=deps["pca"], **kw)
+
+
+def _draw_memory(result, axes, view, run, deps):
+    result.plot(ax=axes[0])
+
+
+def _held_input(run: Run, options: dict[str, Any]) -> dict[str, Any]:
+    held = options.pop("x", "zero")
+    if held == "mean":
+        options["x"] = run.inputs.mean(dim=(0, 1))  # (I,)
+    return options
+
+
+def _memory_inputs(run: Run, options: dict[str, Any]) -> dict[str, Any]:
+    if options.get("mode") == "data":
+        options["inputs"] = run.inputs
+    return options
+
+
+def _accepted_kw(fn: Callable[..., Any], **kw: Any) -> dict[str, Any]:
+    names = inspect.signature(fn).parameters
+    return {k: v for k, v in kw.items() if k in names}
+
+
+def _dims(view: View) -> tuple[int, str | None]:
+    return 1, "3d" if view.extra.get("dims", 2) == 3 else None
+
+
+_DIMS = Option("dims", "axes", lambda run: 2,
+               choices=lambda run: [("2-D", 2), ("3-D", 3)] if run.trace.state_size >= 3
+               else [("2-D", 2)], tip="draw the leading 2 or 3 components")
+_COLOR = Option("color_by", "colour by", lambda run: "time",
+                choices=lambda run: [("time", "time"), ("sample", "sample")]
+                + ([("label", "label")] if run.labels is not None else []))
+
+register(Analysis(
+    "spectra", "Spectra", _draw_spectra,
+    options=(Option("k", "top k", _default("spectra", "k", _state_size), high=_state_size,
+                    tip="how many of the largest singular values of each step Jacobian"),),
+    uses=frozenset({"sample", "window"})))
+register(Analysis(
+    "gradient_flow", "Gradient flow", _draw_gradient_flow,
+    options=(Option("max_lag", "max lag", lambda r: r.trace.n_steps - 1,
+                    high=lambda r: r.trace.n_steps - 1,
+                    tip="the longest lag T - t followed back from the last step"),),
+    views=(Option("norm", "norm", lambda r: "spectral",
+                  choices=lambda r: [("spectral", "spectral"), ("Frobenius", "frobenius")],
+                  tip="operator 2-norm or Frobenius norm of d s_T / d s_t"),),
+    uses=frozenset({"sample"}), part_option="parts"))
+register(Analysis(
+    "lyapunov", "Lyapunov", _draw_lyapunov,
+    options=(Option("k", "exponents", _default("lyapunov", "k", _state_size), high=_state_size,
+                    tip="how many of the largest exponents"),
+             Option("warmup", "warm-up", _default("lyapunov", "warmup", lambda r: 0), low=0,
+                    high=lambda r: r.trace.n_steps - 1,
+                    tip="leading steps that advance the frame without counting")),
+    n_axes=lambda view: (2, None)))
+register(Analysis(
+    "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
+    uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims, per_run=True,
+    overlay_row=True, run_title=lambda r: f"PR {r.participation_ratio:.1f}"))
+register(Analysis(
+    "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
+    options=(Option("n_starts", "starts", _default("fixed_points", "n_starts", lambda r: 64),
+                    high=lambda r: r.trace.batch_size * r.trace.n_steps,
+                    tip="starting states drawn from the trace"),
+             Option("x", "input held at", lambda r: "zero",
+                    choices=lambda r: [("zero", "zero"), ("mean input", "mean")],
+                    tip="the constant input under which points are fixed")),
+    needs=("pca",), n_axes=_dims, prepare=_held_input, per_run=True))
+register(Analysis(
+    "memory", "Memory", _draw_memory,
+    options=(Option("method", "method", lambda r: "decoding",
+                    choices=lambda r: [("decoding", "decoding"),
+                                       ("perturbation", "perturbation"),
+                                       ("sensitivity", "sensitivity")],
+                    tip="read inputs back from the state, follow an impulse, or use gradients"),
+             Option("mode", "inputs", lambda r: "probe",
+                    choices=lambda r: [("random probe", "probe"), ("these inputs", "data")],
+                    tip="i.i.d. probe inputs (default) or the sequences given to the widget"),
+             Option("max_lag", "max lag", _default("memory", "max_lag", lambda r: 40),
+                    high=lambda r: max(1, r.trace.n_steps - 1),
+                    tip="the longest lag the memory curve reaches")),
+    part_option="parts", prepare=_memory_inputs))

@@ -1,0 +1,1 @@
+"""plotting layer of hiddenlens (private: the public names are in hiddenlens)."""

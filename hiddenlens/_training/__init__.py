@@ -1,0 +1,1 @@
+"""training layer of hiddenlens (private: the public names are in hiddenlens)."""
