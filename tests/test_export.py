@@ -13,6 +13,8 @@ import pytest
 from matplotlib.figure import Figure
 
 from hiddenlens._faces.widgets import export as E
+
+
 def _figure():
     fig = Figure(figsize=(3, 2))
     ax = fig.add_subplot()

@@ -9,7 +9,13 @@ from torch import nn
 from torch.func import jacrev, vmap
 
 import hiddenlens as hl
-from hiddenlens._core.jacobians import input_jacobians, linearize, step_jacobians, step_jvp, step_vjp
+from hiddenlens._core.jacobians import (
+    input_jacobians,
+    linearize,
+    step_jacobians,
+    step_jvp,
+    step_vjp,
+)
 
 TOL = {torch.float32: 1e-5, torch.float64: 1e-12}
 

@@ -1,7 +1,7 @@
 """The package's layers, checked on the source: imports go one way only.
 
 hiddenlens/_core       systems, traces, recording, step Jacobians, options, results, registry
-hiddenlens/_plotting   matplotlib only: draws what a result holds, imports nothing else of hiddenlens
+hiddenlens/_plotting   matplotlib only: draws what a result holds, imports no other layer
 hiddenlens/_analyses   the analyses, one module each, and what runs them
 hiddenlens/_training   the monitor, checkpoint timelines and sweeps
 hiddenlens/_faces      the report, the command line and the notebook widgets
@@ -38,8 +38,8 @@ def _imports(path, parts):
     package = parts[:-1] if parts[-1] != "__init__" else parts[:-1]
     if parts[-1] == "__init__":
         package = parts[:-1]
-    functions = {id(n) for f in ast.walk(tree) if isinstance(f, (ast.FunctionDef, ast.AsyncFunctionDef))
-                 for n in ast.walk(f)}
+    defs = (ast.FunctionDef, ast.AsyncFunctionDef)
+    functions = {id(n) for f in ast.walk(tree) if isinstance(f, defs) for n in ast.walk(f)}
     for node in ast.walk(tree):
         if isinstance(node, ast.ImportFrom) and node.level:
             base = package[:len(package) - (node.level - 1)]

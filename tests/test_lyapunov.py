@@ -20,9 +20,9 @@ from hiddenlens._analyses.lyapunov import (
     lyapunov_spectrum,
 )
 from hiddenlens._core.record import as_system
-from hiddenlens._faces.summary import key_figures, summary_sentence
 from hiddenlens._core.systems import RecurrentSystem
 from hiddenlens._core.validation import as_dtype
+from hiddenlens._faces.summary import key_figures, summary_sentence
 
 F64 = torch.float64
 

@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._analyses.memory: memory curves by decoding, perturbation and input sensitivity."""
+"""Tests of memory_curve: memory curves by decoding, perturbation and input sensitivity."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._analyses.pca: PCA trajectories, variance spectrum and participation ratio."""
+"""Tests of pca_trajectories: PCA trajectories, variance spectrum and participation ratio."""
 
 from __future__ import annotations
 

@@ -173,7 +173,8 @@ def test_report_modules_import_without_matplotlib():
     import subprocess
     import sys
 
-    code = ("import sys, hiddenlens._faces.report, hiddenlens._analyses.compare, hiddenlens._faces.cli; "
+    code = ("import sys, hiddenlens._faces.report, hiddenlens._analyses.compare, "
+            "hiddenlens._faces.cli; "
             "print(sorted(m for m in ('matplotlib', 'ipywidgets', 'pandas') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"

@@ -1,4 +1,4 @@
-"""Tests of hiddenlens._analyses.task_memory: decoding a task variable at each lag after its onset."""
+"""Tests of task_memory: decoding a task variable at each lag after its onset."""
 
 from __future__ import annotations
 

@@ -6,7 +6,13 @@ import numpy as np
 import pytest
 import torch
 
-from hiddenlens._core.validation import as_dtype, as_float_tensor, as_sequences, check_finite, describe
+from hiddenlens._core.validation import (
+    as_dtype,
+    as_float_tensor,
+    as_sequences,
+    check_finite,
+    describe,
+)
 
 
 @pytest.mark.parametrize("given, expected", [

@@ -22,8 +22,8 @@ from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa
 import hiddenlens  # noqa: E402
 import hiddenlens._faces.summary  # noqa: E402
 from hiddenlens._faces.summary import analysis_function, key_figures, summary_sentence  # noqa: E402
-from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
 from hiddenlens._faces.widgets.jobs import Cache, Runner, Step  # noqa: E402
+from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explore  # noqa: E402
 
 pytestmark = pytest.mark.usefixtures("one_blas_thread")
 

@@ -8,13 +8,13 @@ from typing import Any
 
 import numpy as np
 
-from .figures import figure_rows, key_figures, summary_sentence
 from .._core.record import as_system
 from .._core.registry import analyses, analysis_spec
 from .._core.results import frozen_mapping, readonly
-from .runner import AnalysisResults, ModelLike, Sequences, run_analyses
 from .._core.systems import RecurrentSystem
 from .._core.trace import Trace
+from .figures import figure_rows, key_figures, summary_sentence
+from .runner import AnalysisResults, ModelLike, Sequences, run_analyses
 
 __all__ = ["RunComparison", "compare_runs", "comparison_of", "figure_table", "linear_cka",
            "plot_overlay", "plot_cka"]

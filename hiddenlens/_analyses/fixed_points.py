@@ -250,8 +250,8 @@ class FixedPoints(Result):
         -------
         matplotlib Axes
         """
-        from .pca import PCATrajectories, _check_dims, _set_limits, pca_trajectories
         from .._plotting.style import get_axes
+        from .pca import PCATrajectories, _check_dims, _set_limits, pca_trajectories
 
         S = self.points.shape[1]
         if pca is None and S > 3 and self.trace is not None:

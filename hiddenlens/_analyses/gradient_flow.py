@@ -17,7 +17,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from .._core.jacobians import trace_tensors, check_chunk, linearize, system_for_trace
+from .._core.jacobians import check_chunk, linearize, system_for_trace, trace_tensors
 from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
@@ -402,7 +402,7 @@ def _finite_window(states: np.ndarray, initial: np.ndarray, x: torch.Tensor, end
 
 
 def _threads_for(step_flops: float):
-    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see hiddenlens._core.threads)."""
+    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see _core.threads)."""
     return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 

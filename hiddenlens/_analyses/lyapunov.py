@@ -630,7 +630,7 @@ def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
 
 
 def _threads_for(step_flops: float):
-    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see hiddenlens._core.threads)."""
+    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see _core.threads)."""
     return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 

@@ -13,10 +13,10 @@ import torch
 
 from .._core.jacobians import (
     StepLinearization,
-    trace_tensors,
     check_chunk,
     linearize,
     system_for_trace,
+    trace_tensors,
 )
 from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.results import Result, frozen_mapping, readonly

@@ -16,10 +16,10 @@ from typing import Any
 import numpy as np
 import torch
 
-from .memory import check_alphas
 from .._core.results import frozen_mapping, readonly
 from .._core.threads import single_thread
 from .._core.trace import Trace
+from .memory import check_alphas
 
 __all__ = ["TaskMemory", "task_memory", "task_memory_analysis", "task_memory_key_figures"]
 

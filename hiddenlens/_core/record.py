@@ -9,10 +9,10 @@ from typing import Any
 import numpy as np
 import torch
 
+from .._version import __version__
 from .systems import RecurrentSystem, wrap
 from .trace import Trace
 from .validation import as_float_tensor, as_sequences, check_finite, describe
-from .._version import __version__
 
 __all__ = ["record", "as_system", "initial_states", "valid_steps", "NonFiniteStateWarning"]
 

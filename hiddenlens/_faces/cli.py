@@ -484,9 +484,9 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
                 task: dict[str, dict[str, Any]] | None = None) -> Path:
     from .._analyses.compare import compare_runs
     from .._analyses.figures import describe_inputs
+    from .._analyses.runner import run_analyses
     from .._core.registry import analyses, available_analyses
     from .report import write_report
-    from .._analyses.runner import run_analyses
 
     say = _Progress(quiet)
     notes = []

@@ -32,9 +32,9 @@ from .._analyses.figures import (
     key_figures,
     summary_sentence,
 )
-from .._plotting.style import no_mathtext
-from .._core.registry import AnalysisSpec, analyses, registered
 from .._analyses.runner import AnalysisResults
+from .._core.registry import AnalysisSpec, analyses, registered
+from .._plotting.style import no_mathtext
 from .._version import __version__
 
 __all__ = ["write_report", "report_data", "GENERAL_CAUTIONS"]

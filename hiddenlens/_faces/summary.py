@@ -18,6 +18,7 @@ from .._analyses.figures import (
     key_figures,
     summary_sentence,
 )
+from .._analyses.runner import AnalysisResults, run_analyses
 from .._core.registry import (
     analyses,
     analysis_spec,
@@ -27,7 +28,6 @@ from .._core.registry import (
     registered,
     unregister_analysis,
 )
-from .._analyses.runner import AnalysisResults, run_analyses
 
 __all__ = [
     "ANALYSES",

@@ -95,8 +95,8 @@ def probe_figures(model_or_system: Any, inputs: Any, figures: Sequence[str] = DE
         others are named with the reason in ``skipped`` (when given).
     """
     from .._analyses.bootstrap import figure_intervals
-    from .._core.record import as_system
     from .._analyses.runner import run_analyses
+    from .._core.record import as_system
     from .._core.registry import available_analyses
 
     figures = check_figures(figures)

@@ -11,11 +11,17 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 from ..._analyses.compare import RunComparison, check_runs, comparison_of, plot_cka, plot_overlay
-from ..._analyses.figures import figure_rows, format_delta, format_figure, key_figures, summary_sentence
-from ..._plotting.style import RUN_COLORS
-from ..._core.record import record
+from ..._analyses.figures import (
+    figure_rows,
+    format_delta,
+    format_figure,
+    key_figures,
+    summary_sentence,
+)
 from ..._analyses.runner import AnalysisResults, ModelLike, Sequences
+from ..._core.record import record
 from ..._core.validation import as_sequences
+from ..._plotting.style import RUN_COLORS
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses, row
 from .jobs import Step

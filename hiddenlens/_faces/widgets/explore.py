@@ -9,10 +9,10 @@ from typing import Any
 import ipywidgets as widgets
 import numpy as np
 
-from ..._core.record import as_system, record
 from ..._analyses.runner import ModelLike, Sequences
-from ..summary import key_figures, summary_sentence
+from ..._core.record import as_system, record
 from ..._core.validation import as_sequences
+from ..summary import key_figures, summary_sentence
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses
 from .panels import Run, View, tab
@@ -166,7 +166,7 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         Title of the widget (default: the model's class name).
     task : Mapping, optional
         Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
-        ``n_eval``, ``horizon``; see :func:`hiddenlens._analyses.diagnosis.diagnose`): a diagnosis line
+        ``n_eval``, ``horizon``; see :func:`hiddenlens.diagnose`): a diagnosis line
         at the top reads the key figures against them.
 
     Returns

@@ -188,8 +188,8 @@ def alt_text(result: Any, *, name: str | None = None) -> str:
     name : str, optional
         Run name to start with.
     """
-    from .. import summary as _summary
     from ..._analyses.diagnosis import describe_figure
+    from .. import summary as _summary
 
     head = f"{name}: " if name else ""
     if hasattr(result, "savefig") and hasattr(result, "axes"):

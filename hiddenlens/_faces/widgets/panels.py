@@ -17,8 +17,8 @@ from typing import Any
 import numpy as np
 import torch
 
-from ..._core.registry import analysis_spec
 from ..._analyses.runner import budget_of, run_analyses
+from ..._core.registry import analysis_spec
 from ..._core.systems import RecurrentSystem
 from ..._core.trace import Trace
 
