@@ -60,7 +60,7 @@ def test_samples_reproduce_the_figures_of_a_sub_batch():
     # (the exponents' random start frames are drawn per row index, so they agree to 1e-3 only)
     for f, rtol in (("lyapunov_max", 1e-3), ("participation_ratio", 1e-9),
                     ("gradient_rate", 1e-9)):
-        np.testing.assert_allclose(fi[f][0], hl._summary.key_figures(sub)[f], rtol=rtol)
+        np.testing.assert_allclose(fi[f][0], hl.key_figures(sub)[f], rtol=rtol)
     full = figure_intervals(res, n_boot=50, seed=4)
     again = figure_intervals(res, n_boot=50, seed=4)
     np.testing.assert_array_equal(full.low, again.low)

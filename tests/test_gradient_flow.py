@@ -115,7 +115,7 @@ def test_result_frozen_plot_frame(make, gen):
     plt.close(fig)
     df = res.to_frame()
     assert df.shape == (2 * 19, 4)
-    assert res.verdict in hl._gradient_flow.VERDICTS
+    assert res.verdict in hl._analyses.gradient_flow.VERDICTS
 
 
 def test_bad_options(make, gen):

@@ -42,7 +42,7 @@ def test_monitor_records_timeline_and_leaves_training_alone(tmp_path):
     t = mon.timeline
     assert list(t.columns) == ["step", "figure", "value", "low", "high"]
     assert sorted(set(t.step)) == [0, 5, 10]
-    assert set(t.figure) == set(hl._monitor.DEFAULT_FIGURES)
+    assert set(t.figure) == set(hl._training.monitor.DEFAULT_FIGURES)
     lam = t[t.figure == "lyapunov_max"]
     assert np.all(lam.low <= lam.value) and np.all(lam.value <= lam.high)
     # the last check equals a direct analysis of the trained weights (library oracle)

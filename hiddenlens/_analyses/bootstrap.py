@@ -125,17 +125,9 @@ class FigureIntervals:
 
     def plot(self, ax: Any = None, **kw: Any):
         """Each figure with its interval as an error bar (one row per figure)."""
-        from .._plotting.style import get_axes
+        from .._plotting.bootstrap import draw_intervals
 
-        ax = get_axes(ax)
-        y = np.arange(len(self.figures))
-        v = self.values
-        err = np.vstack([np.where(np.isfinite(self.low), v - self.low, 0.0),
-                         np.where(np.isfinite(self.high), self.high - v, 0.0)])
-        ax.errorbar(v, y, xerr=np.abs(err), fmt="o", capsize=3, **kw)
-        ax.set_yticks(y, list(self.figures))
-        ax.set_xlabel(f"value ({self.level:.0%} interval)")
-        return ax
+        return draw_intervals(self, ax, **kw)
 
     def __repr__(self) -> str:
         return (f"FigureIntervals({len(self.figures)} figures, level={self.level}, "

@@ -26,13 +26,6 @@ __all__ = ["FixedPoints", "find_fixed_points", "STABILITY_CLASSES"]
 
 STABILITY_CLASSES = ("stable", "saddle", "unstable", "marginal")
 
-_MARKERS = {
-    "stable": {"marker": "o", "color": "tab:blue"},
-    "saddle": {"marker": "X", "color": "tab:orange"},
-    "unstable": {"marker": "o", "facecolors": "none", "edgecolors": "tab:red"},
-    "marginal": {"marker": "D", "color": "tab:green"},
-}
-
 # largest state size searched on one torch thread (see benchmarks/bench_fixed_points.py)
 _ONE_THREAD_UP_TO = 512
 
@@ -250,8 +243,8 @@ class FixedPoints(Result):
         -------
         matplotlib Axes
         """
-        from .._plotting.style import get_axes
-        from .pca import PCATrajectories, _check_dims, _set_limits, pca_trajectories
+        from .._plotting.pca import check_dims
+        from .pca import PCATrajectories, pca_trajectories
 
         S = self.points.shape[1]
         if pca is None and S > 3 and self.trace is not None:
@@ -264,7 +257,7 @@ class FixedPoints(Result):
                     f"the state has {S} units; choose the axes to draw on with "
                     "pca=hiddenlens.pca_trajectories(trace) or pca=trace"
                 )
-            dims = int(dims) if dims in (2, 3) else _check_dims(dims, 3)
+            dims = int(dims) if dims in (2, 3) else check_dims(dims, 3)
             names = unit_names(self.parts, S)
             labels = [names[i] if i < S else "(none)" for i in range(dims)]
 
@@ -280,7 +273,7 @@ class FixedPoints(Result):
             if pca.state_size != S:
                 raise ValueError(f"pca was fitted on states of size {pca.state_size} but the "
                                  f"points have {S} units; fit it on a trace of this system")
-            dims = _check_dims(dims, pca.n_components)
+            dims = check_dims(dims, pca.n_components)
             labels = [pca.axis_label(i) for i in range(dims)]
 
             def coords(a: np.ndarray) -> np.ndarray:
@@ -290,32 +283,11 @@ class FixedPoints(Result):
                 return v[:, pca.columns] @ pca.components[:dims].T
 
             background = pca.projected[:, :, :dims] if show_trajectories else None
+        from .._plotting.fixed_points import draw_fixed_points
 
-        ax = get_axes(ax, projection="3d" if dims == 3 else None)
-        if dims == 3:
-            ax.computed_zorder = False  # keep the points above the trajectories
-        extent = []
-        if background is not None:
-            _draw_background(ax, background)
-            extent.append(background.reshape(-1, dims))
-        keep = np.ones(len(self), bool) if show_slow else self.is_fixed
-        P = coords(self.points[keep])  # (m, dims)
-        extent.append(P)
-        pts = np.concatenate(extent) if extent else np.zeros((0, dims))
-        span = float(np.max(np.ptp(pts, axis=0))) if pts.shape[0] > 1 else 1.0
-        length = direction_length if direction_length is not None else 0.1 * (span or 1.0)
-        extent += _draw_directions(ax, self, keep, coords, along, length)
-        _draw_points(ax, self, keep, P)
-        if len(pts):
-            _set_limits(ax, extent, dims)
-        ax.set_xlabel(labels[0])
-        ax.set_ylabel(labels[1])
-        if dims == 3:
-            ax.set_zlabel(labels[2])
-        x_desc = "x* = 0" if not np.any(self.x) else "constant input x*"
-        ax.set_title(f"fixed points ({x_desc}): {self.n_fixed} fixed, {self.n_slow} slow")
-        ax.legend(loc="best", fontsize="small")
-        return ax
+        return draw_fixed_points(self, ax, coords=coords, along=along, labels=labels, dims=dims,
+                                 background=background, direction_length=direction_length,
+                                 show_slow=show_slow)
 
 
 @analysis("find_fixed_points")
@@ -875,44 +847,3 @@ def _expanding(vals: np.ndarray, vecs: np.ndarray, threshold: float) -> np.ndarr
     # sign convention: the largest component of each direction is positive
     flip = np.sign(D[np.arange(D.shape[0]), np.argmax(np.abs(D), axis=1)])
     return D * flip[:, None]
-
-
-# ---------------------------------------------------------------------- drawing
-def _draw_background(ax, P: np.ndarray) -> None:
-    b, t, dims = P.shape
-    if t < 2:
-        return
-    segs = np.stack([P[:, :-1], P[:, 1:]], axis=2).reshape(b * (t - 1), 2, dims)
-    if dims == 3:
-        from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
-    else:
-        from matplotlib.collections import LineCollection as Collection
-    ax.add_collection(Collection(segs, colors="0.75", linewidths=0.5, alpha=0.4, zorder=1,
-                                 label="trajectories"))
-
-
-def _draw_directions(ax, fp: FixedPoints, keep, coords, along, length) -> list[np.ndarray]:
-    drawn = []
-    for i in np.nonzero(keep)[0]:
-        D = fp.unstable_directions[i]
-        if D.shape[0] == 0:
-            continue
-        p = coords(fp.points[i : i + 1])[0]  # (dims,)
-        for d in along(D):  # (dims,)
-            seg = np.stack([p - length * d, p + length * d])  # (2, dims)
-            ax.plot(*seg.T, color="tab:red", lw=1.2, zorder=3, label=None if drawn else
-                    "unstable direction")
-            drawn.append(seg)
-    return drawn
-
-
-def _draw_points(ax, fp: FixedPoints, keep, P: np.ndarray) -> None:
-    stab = fp.stability[keep]
-    fixed = fp.is_fixed[keep]
-    for cls in STABILITY_CLASSES:
-        for is_fixed, alpha, size, tag in ((True, 1.0, 50, ""), (False, 0.4, 20, " (slow)")):
-            sel = (stab == cls) & (fixed == is_fixed)
-            if not sel.any():
-                continue
-            ax.scatter(*P[sel].T, s=size, alpha=alpha, zorder=4 if is_fixed else 3,
-                       linewidths=1.5, label=f"{cls}{tag} ({int(sel.sum())})", **_MARKERS[cls])

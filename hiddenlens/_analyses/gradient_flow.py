@@ -107,43 +107,9 @@ class GradientFlow(Result):
         ``sample=None`` draws the median over samples with the 10-90% band of the samples;
         the dashed line is the pooled fit, its slope the rate in the title.
         """
-        from .._plotting.style import get_axes
+        from .._plotting.gradient_flow import draw_gradient_flow
 
-        if norm not in ("spectral", "frobenius"):
-            raise ValueError(f"norm must be 'spectral' or 'frobenius', got {norm!r}")
-        ax = get_axes(ax)
-        logs = (self.log_norms if norm == "spectral" else self.log_frobenius) / math.log(10)
-        B = logs.shape[0]
-        x = self.lags
-        with np.errstate(all="ignore"):
-            if sample is None:
-                finite = np.where(np.isfinite(logs), logs, np.nan)
-                ok = ~np.isnan(finite).all(axis=0)
-                mid = np.full(x.shape, np.nan)
-                mid[ok] = np.nanmedian(finite[:, ok], axis=0)
-                if B > 1 and ok.any():
-                    lo = np.full(x.shape, np.nan)
-                    hi = np.full(x.shape, np.nan)
-                    lo[ok], hi[ok] = np.nanquantile(finite[:, ok], [0.1, 0.9], axis=0)
-                    ax.fill_between(x, lo, hi, color="C0", alpha=0.2, lw=0,
-                                    label="10-90% of samples")
-                label = f"median of {B} samples" if B > 1 else f"sample {self.samples[0]}"
-            else:
-                if not -B <= sample < B:
-                    raise ValueError(f"sample must be in [0, {B}), got {sample}")
-                mid, label = logs[sample], f"sample {self.samples[sample]}"
-        ax.plot(x, mid, color="C0", lw=kw.get("lw", 1.5), label=label)
-        if np.isfinite(self.rate) and norm == "spectral":
-            ax.plot(x, (self.intercept + self.rate * x) / math.log(10), "k--", lw=1.0,
-                    label=f"fit: {self.rate:+.3g} per step")
-        ax.axhline(0.0, color="0.6", lw=0.8, ls=":")
-        what = "||d s_T / d s_t||" + ("_2" if norm == "spectral" else "_F")
-        ax.set_xlabel("lag T - t (steps)")
-        ax.set_ylabel(f"log10 {what}")
-        ax.set_title(f"{self.metadata.get('model_class', 'system')}: gradient flow, "
-                     f"{self.verdict}")
-        ax.legend(fontsize="small", loc="best")
-        return ax
+        return draw_gradient_flow(self, ax, sample=sample, norm=norm, **kw)
 
     def to_frame(self):
         """One row per (sample, lag): ``norm``, ``log_norm``, ``frobenius``, ``log_frobenius``."""
@@ -565,28 +531,9 @@ class LossGradientNorms(Result):
     def plot(self, ax: Any = None, *, sample: int | None = None, **kw: Any):
         """||dL/ds_t|| over the steps t on a log axis (median over samples, or one sample);
         grey ticks mark the steps the loss reads."""
-        from .._plotting.style import get_axes
+        from .._plotting.gradient_flow import draw_loss_gradient_norms
 
-        ax = get_axes(ax)
-        B, T = self.norms.shape
-        if sample is None:
-            y = np.median(self.norms, axis=0) if B > 1 else self.norms[0]
-            label = f"median of {B} samples" if B > 1 else "sample 0"
-        else:
-            if not -B <= sample < B:
-                raise ValueError(f"sample must be in [0, {B}), got {sample}")
-            y, label = self.norms[sample], f"sample {sample}"
-        ax.plot(np.arange(T), y, lw=kw.get("lw", 1.5), label=label)
-        if self.loss_steps is not None:
-            for t in self.loss_steps:
-                ax.axvline(t, color="0.7", lw=0.8, ls=":")
-        if np.any(np.isfinite(y) & (y > 0)):
-            ax.set_yscale("log")
-        ax.set_xlabel("step t")
-        ax.set_ylabel("||dL / ds_t||")
-        ax.set_title(f"{self.metadata.get('model_class', 'model')}: loss gradient per step")
-        ax.legend(fontsize="small", loc="best")
-        return ax
+        return draw_loss_gradient_norms(self, ax, sample=sample, **kw)
 
     def to_frame(self):
         """One row per (sample, step): ``norm`` and one column per part."""

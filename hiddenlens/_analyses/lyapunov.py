@@ -164,36 +164,9 @@ class LyapunovSpectrum(Result):
         **kw
             Passed to ``ax.plot`` (convergence) or ``ax.errorbar`` (spectrum).
         """
-        from .._plotting.style import get_axes, time_colors
+        from .._plotting.lyapunov import draw_lyapunov
 
-        if kind not in ("convergence", "spectrum"):
-            raise ValueError(f"kind must be 'convergence' or 'spectrum', got {kind!r}")
-        ax = get_axes(ax)
-        k = self.k
-        if kind == "convergence":
-            colors = time_colors(k, "viridis")
-            for i in range(k):
-                label = f"λ{i + 1}" if k <= 10 else None
-                ax.plot(self.running_steps, self.running[:, i], color=colors[i], label=label,
-                        **kw)
-            if self.running_steps.shape[0] > 1:
-                ax.set_xscale("log")
-            ax.set_xlabel("counted steps")
-            ax.set_ylabel("running estimate (per step)")
-            ax.set_title(f"Lyapunov exponents: convergence (B={self.batch_size})")
-            if k <= 10:
-                ax.legend(fontsize="small")
-        else:
-            idx = np.arange(1, k + 1)
-            yerr = self.std if self.batch_size > 1 else None
-            kw.setdefault("fmt", "o")
-            kw.setdefault("markersize", 4 if k <= 50 else 2)
-            ax.errorbar(idx, self.exponents, yerr=yerr, **kw)
-            ax.set_xlabel("index i")
-            ax.set_ylabel("λ_i (per step)")
-            ax.set_title(f"Lyapunov spectrum, Kaplan–Yorke dimension {self.kaplan_yorke:.3g}")
-        ax.axhline(0.0, color="0.5", linewidth=0.8, linestyle=":")
-        return ax
+        return draw_lyapunov(self, ax, kind=kind, **kw)
 
     def to_frame(self, table: str = "exponents"):
         """The result as a pandas DataFrame.

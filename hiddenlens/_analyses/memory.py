@@ -173,37 +173,9 @@ class MemoryCurve(Result):
         -------
         matplotlib Axes
         """
-        from .._plotting.style import OKABE_ITO, get_axes
+        from .._plotting.memory import draw_memory
 
-        ax = get_axes(ax)
-        log = self.method != "decoding" if log is None else log
-        line, = ax.plot(self.lags, self.scores, marker=".", label=self.method, **kw)
-        lo, hi = self.scores - self.spread, self.scores + self.spread
-        if log:
-            lo = np.where(lo > 0, lo, np.nan)
-        ax.fill_between(self.lags, lo, hi, color=line.get_color(), alpha=0.2, lw=0)
-        if self.baseline is not None:
-            ax.plot(self.lags, self.baseline, ls="--", color="0.4",
-                    label="baseline (inputs' own history)")
-        level = self.threshold
-        if self.chance is not None:
-            ax.axhline(self.chance, ls=":", color="0.5", label=f"chance {self.chance:.2f}")
-            level = self.chance + self.threshold * (1.0 - self.chance)
-        ax.axhline(level, ls="--", color=OKABE_ITO["vermillion"], lw=0.8,
-                   label=f"threshold {level:.2f}")
-        if self.time_constant is not None and 0 < self.time_constant < np.inf:
-            ax.plot(self.lags, np.exp(-self.lags / self.time_constant), ls=":", color="0.3",
-                    label=f"exp(-k/{self.time_constant:.3g})")
-        if 0 <= self.span:
-            ax.axvline(self.span, color="0.6", lw=0.8)
-        if log:
-            ax.set_yscale("log")
-        ax.set_xlabel("lag k (steps)")
-        ax.set_ylabel(self.score_name)
-        ax.set_title(f"memory ({self.method}, {self.mode}): capacity {self.capacity:.3g}, "
-                     f"span {self.span}")
-        ax.legend(fontsize="small")
-        return ax
+        return draw_memory(self, ax, log=log, **kw)
 
     def __repr__(self) -> str:
         return (f"MemoryCurve(method={self.method!r}, mode={self.mode!r}, "

@@ -164,37 +164,9 @@ class TaskMemory:
         -------
         matplotlib Axes
         """
-        from .._plotting.style import get_axes
+        from .._plotting.task_memory import draw_task_memory
 
-        if kind not in ("curve", "cross_temporal"):
-            raise ValueError(f"kind must be 'curve' or 'cross_temporal', got {kind!r}")
-        ax = get_axes(ax)
-        if kind == "cross_temporal":
-            if self.cross_temporal is None:
-                raise ValueError("no cross-temporal matrix was computed; rerun task_memory "
-                                 "with cross_temporal=True")
-            lo, hi = self.lags[0] - 0.5, self.lags[-1] + 0.5
-            image = ax.imshow(self.cross_temporal, origin="lower", extent=(lo, hi, lo, hi),
-                              cmap=kw.pop("cmap", "viridis"), aspect="auto", **kw)
-            ax.figure.colorbar(image, ax=ax, label=self.score_name)
-            ax.set_xlabel("test lag (steps after onset)")
-            ax.set_ylabel("train lag (steps after onset)")
-            ax.set_title("cross-temporal generalisation")
-            return ax
-        line, = ax.plot(self.lags, self.scores, marker=".", label=self.score_name, **kw)
-        ax.fill_between(self.lags, self.scores - self.spread, self.scores + self.spread,
-                        color=line.get_color(), alpha=0.2, lw=0)
-        ax.plot(self.lags, self.chance, ls=":", color="0.4", label="permutation mean")
-        ax.fill_between(self.lags, np.nanmin(self.null_scores, axis=0), self.band,
-                        color="0.6", alpha=0.3, lw=0,
-                        label=f"chance band ({100 * (1 - self.level):.0f}%)")
-        if self.span >= 0:
-            ax.axvline(self.span, color="tab:red", lw=0.8, label=f"span {self.span}")
-        ax.set_xlabel("lag (steps after onset)")
-        ax.set_ylabel(self.score_name)
-        ax.set_title(f"task memory: span {self.span}")
-        ax.legend(fontsize="small")
-        return ax
+        return draw_task_memory(self, ax, kind=kind, **kw)
 
     def __repr__(self) -> str:
         return (f"TaskMemory(max_lag={self.max_lag}, span={self.span}, "

@@ -190,15 +190,9 @@ class Trace:
     def plot(self, ax: Any = None, *, part: str | None = None, sample: int = 0,
              max_units: int = 16):
         """Draw the first ``max_units`` units of one sample's states over time."""
-        from .._plotting.style import get_axes
+        from .._plotting.trace import draw_trace
 
-        ax = get_axes(ax)
-        cols = self.columns(part)[:max_units]
-        ax.plot(self.states[sample][:, cols], lw=0.8)
-        ax.set_xlabel("step t")
-        ax.set_ylabel("state" if part is None else part)
-        ax.set_title(f"{self.metadata.get('model_class', 'system')}: sample {sample}")
-        return ax
+        return draw_trace(self, ax, part=part, sample=sample, max_units=max_units)
 
     def __repr__(self) -> str:
         B, T, S = self.states.shape

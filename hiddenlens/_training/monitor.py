@@ -300,24 +300,9 @@ class Monitor:
 
 def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None = None):
     """Draw a (step, figure, value, low, high) table: one panel per figure, against step."""
-    import matplotlib.pyplot as plt
+    from .._plotting.training import plot_timeline
 
-    names = list(figures) if figures is not None else list(dict.fromkeys(table["figure"]))
-    if ax is None:
-        fig, axes = plt.subplots(len(names), 1, figsize=(6, 2.2 * max(len(names), 1)),
-                                 sharex=True, squeeze=False)
-        axes = list(axes[:, 0])
-    else:
-        axes = list(np.atleast_1d(ax))
-        if len(axes) != len(names):
-            raise ValueError(f"ax must hold one Axes per figure ({len(names)}), got {len(axes)}")
-    for a, name in zip(axes, names, strict=True):
-        d = table[table["figure"] == name].sort_values("step")
-        a.plot(d["step"], d["value"], marker="o", ms=3)
-        a.fill_between(d["step"], d["low"], d["high"], alpha=0.25)
-        a.set_ylabel(name, fontsize=8)
-    axes[-1].set_xlabel("training step")
-    return axes if len(axes) > 1 else axes[0]
+    return plot_timeline(table, ax, figures=figures)
 
 
 def _lightning_callback(monitor: Monitor):

@@ -83,24 +83,9 @@ class SweepResult:
 
     def plot(self, figure: str, param: str, ax: Any = None, **kw: Any):
         """``figure`` against hyperparameter ``param``, with interval error bars."""
-        from .._plotting.style import get_axes
+        from .._plotting.training import draw_sweep
 
-        if figure not in self.figures:
-            raise ValueError(f"figure {figure!r} is not in this sweep; it has "
-                             f"{', '.join(self.figures)}")
-        if param not in self.params:
-            raise ValueError(f"param {param!r} is not in this sweep; it has "
-                             f"{', '.join(self.params) or 'no params (pass params=)'}")
-        j = self.figures.index(figure)
-        x = np.asarray(self.params[param], dtype=float)
-        order = np.argsort(x, kind="stable")
-        v, lo, hi = self.values[order, j], self.low[order, j], self.high[order, j]
-        ax = get_axes(ax)
-        err = np.vstack([np.nan_to_num(v - lo), np.nan_to_num(hi - v)])
-        ax.errorbar(x[order], v, yerr=np.abs(err), marker="o", capsize=3, **kw)
-        ax.set_xlabel(param)
-        ax.set_ylabel(figure)
-        return ax
+        return draw_sweep(self, figure, param, ax, **kw)
 
     def __repr__(self) -> str:
         failed = sum(e is not None for e in self.errors)
