@@ -73,10 +73,11 @@ def section_gru_all(rate: float, quick: bool) -> None:
     model = gru(H)
     x = inputs(B, T)
     system = hl.wrap(model)
+    trace = hl.record(system, x)  # the exponents are taken along the recorded trajectory
     with torch.no_grad():
         t_fwd = best_of(lambda: model(x), 5)
-    t_lyap = best_of(lambda: lyapunov_spectrum(system, x, warmup=0, progress=False), 3)
-    res = lyapunov_spectrum(system, x, warmup=0, progress=False)
+    t_lyap = best_of(lambda: lyapunov_spectrum(system, trace, warmup=0, progress=False), 3)
+    res = lyapunov_spectrum(system, trace, warmup=0, progress=False)
     flops = T * B * frame_flops(H, H)
     ideal = flops / rate
     # where the time goes: the same QR and product on random frames, without Jacobians
@@ -107,9 +108,9 @@ def section_gru_all(rate: float, quick: bool) -> None:
           f"J@Q at {mm_rate / 1e9:.0f} Gflop/s: the QR's own speed bounds the ratio at about "
           f"{(t_one_qr + t_one_mm) * T / ideal:.2f}x")
     for every in (2, 4):
-        t = best_of(lambda e=every: lyapunov_spectrum(system, x, warmup=0, qr_every=e,
+        t = best_of(lambda e=every: lyapunov_spectrum(system, trace, warmup=0, qr_every=e,
                                                       progress=False), 1)
-        r = lyapunov_spectrum(system, x, warmup=0, qr_every=every, progress=False)
+        r = lyapunov_spectrum(system, trace, warmup=0, qr_every=every, progress=False)
         diff = abs(r.exponents - res.exponents).max()
         floor = T * B * frame_flops(H, H, every) / rate
         print(f"    qr_every={every}          {t:8.3f} s   (max change of an exponent "
@@ -130,12 +131,13 @@ def section_crossover(quick: bool) -> None:
                 T = int(min(400, max(10, 2e8 / (S * S * max(k, 16)))))
                 if quick:
                     T = max(10, T // 4)
-                x = inputs(1, T)
+                trace = hl.record(system, inputs(1, T))
                 times = {}
                 for method in ("jacobian", "jvp"):
-                    lyapunov_spectrum(system, x[:, :3], k=k, method=method, warmup=0)
-                    t = best_of(lambda s=system, x=x, k=k, m=method: lyapunov_spectrum(
-                        s, x, k=k, method=m, warmup=0, progress=False), 2)
+                    lyapunov_spectrum(system, trace.select(steps=slice(0, 3)), k=k,
+                                      method=method, warmup=0)
+                    t = best_of(lambda s=system, tr=trace, k=k, m=method: lyapunov_spectrum(
+                        s, tr, k=k, method=m, warmup=0, progress=False), 2)
                     times[method] = t / T * 1e3
                 fast = min(times, key=times.get)
                 pick = _choose_method(system, k)

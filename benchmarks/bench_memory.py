@@ -55,9 +55,11 @@ def main() -> None:
             for label, kw in cases:
                 kw = dict(kw)
                 inputs = kw.pop("inputs", None)
+                # data mode decodes a recorded trace; probe mode records its own probes
+                trace = hiddenlens.record(system, inputs) if inputs is not None else None
                 t_mem, curve = best_of(
-                    lambda kw=kw, inputs=inputs: hiddenlens.memory_curve(
-                        system, inputs, max_lag=MAX_LAG, progress=False, **kw),
+                    lambda kw=kw, trace=trace: hiddenlens.memory_curve(
+                        system, trace, max_lag=MAX_LAG, progress=False, **kw),
                     repeats=1 if kw["method"] == "sensitivity" else 3)
                 # recording the same number of sequences and steps, for the ratio
                 shape = (curve.metadata["n_sequences"], curve.metadata["n_steps"], I)
@@ -83,8 +85,8 @@ def against_sklearn(system, rng) -> None:
     from hiddenlens._analyses.memory import DEFAULT_ALPHAS, _folds, _ridge_cv, _Targets
 
     x = rng.standard_normal((1, T, I)).astype(np.float32)
-    t_ours, curve = best_of(lambda: hiddenlens.memory_curve(system, x, max_lag=MAX_LAG))
     trace = hiddenlens.record(system, x)
+    t_ours, curve = best_of(lambda: hiddenlens.memory_curve(system, trace, max_lag=MAX_LAG))
     t_start = MAX_LAG
     X = trace.states[0, t_start:].astype(np.float64)  # (N, S)
     b_idx, t_idx = np.zeros(T - t_start, int), np.arange(t_start, T)
