@@ -28,11 +28,7 @@ from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explor
 pytestmark = pytest.mark.usefixtures("one_blas_thread")
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
-_MODULES = {"pca": "_pca", "lyapunov": "_lyapunov", "fixed_points": "_fixed_points",
-            "memory": "_memory", "spectra": "_spectra", "gradient_flow": "_gradient_flow"}
-_FUNCS = {"pca": "pca_trajectories", "lyapunov": "lyapunov_spectrum",
-          "fixed_points": "find_fixed_points", "memory": "memory_curve",
-          "spectra": "jacobian_spectra", "gradient_flow": "gradient_flow"}
+_COUNTED = ("pca", "lyapunov", "fixed_points", "memory", "spectra", "gradient_flow")
 
 
 @pytest.fixture
@@ -59,20 +55,21 @@ def calls(monkeypatch):
     """Count the calls into each analysis function (patched where run_analyses finds it)."""
     import importlib
 
+    from hiddenlens._core.registry import analysis_spec
+
     counts: dict[str, int] = {}
-    for name, mod in _MODULES.items():
-        try:
-            module = importlib.import_module(f"hiddenlens.{mod}")
-        except ImportError:
-            continue
-        fn = getattr(module, _FUNCS[name])
+    for name in _COUNTED:
+        # the registry names where each function lives ("module:function")
+        module_name, attr = analysis_spec(name).function.split(":")
+        module = importlib.import_module(module_name)
+        fn = getattr(module, attr)
 
         @functools.wraps(fn)  # keeps the signature the widget reads its options from
         def counted(*args, __fn=fn, __name=name, **kw):
             counts[__name] = counts.get(__name, 0) + 1
             return __fn(*args, **kw)
 
-        monkeypatch.setattr(module, _FUNCS[name], counted)
+        monkeypatch.setattr(module, attr, counted)
     return counts
 
 
