@@ -6,7 +6,6 @@ from typing import Any
 
 import numpy as np
 
-
 #: Most steps drawn along one line before the drawing is thinned (``thin=None``).
 MAX_DRAWN_STEPS = 400
 
@@ -203,8 +202,10 @@ def _trial_colouring(result, color_by: Any, rows: np.ndarray, cols: np.ndarray, 
                 raise ValueError("color_by='label' needs labels; pass labels= to "
                                  "pca_trajectories or an array of labels as color_by")
             lab, kind = result.labels, result.label_kind
-        elif color_by in ("time", "sample"):
-            return (color_by, None)
+        elif color_by == "time":
+            return ("time", None)
+        elif color_by == "sample":
+            return ("sample", rows)
         else:
             raise ValueError(f"color_by must be 'time', 'sample', 'label' or an array of {B} "
                              f"labels (one per sample) or ({B}, {T}) (one per step), got "
@@ -274,9 +275,18 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
     if kind == "single":
         kw["colors"] = extra
     elif kind == "sample":
-        from .style import time_colors
+        from .style import LINESTYLES, RUN_COLORS
 
-        kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
+        names = np.arange(b) if extra is None else extra
+        if b <= len(RUN_COLORS):  # a colour and a line style each, named in the legend
+            kw["colors"] = [RUN_COLORS[i] for i in range(b)]
+            kw["linestyles"] = [LINESTYLES[i] for i in range(b)]
+            handles += [Line2D([], [], color=RUN_COLORS[i], ls=LINESTYLES[i],
+                               label=f"sample {names[i]}") for i in range(b)]
+        else:
+            from .style import time_colors
+
+            kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
     elif kind == "labels":
         piece = values[:, firsts].reshape(-1)  # (b * pieces,) label at each piece's start
         if keys["kind"] == "ordered":
@@ -298,6 +308,15 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
     ax.add_collection(coll)
     if kind == "time":
         ax.figure.colorbar(coll, ax=ax, label="step", shrink=0.8, pad=0.12 if dims == 3 else 0.04)
+    elif kind == "sample" and b > 8:
+        import matplotlib
+        from matplotlib.cm import ScalarMappable
+        from matplotlib.colors import Normalize
+
+        sm = ScalarMappable(norm=Normalize(float(names[0]), float(names[-1]) or 1.0),
+                            cmap=matplotlib.colormaps["turbo"])
+        ax.figure.colorbar(sm, ax=ax, label="sample", shrink=0.8,
+                           pad=0.12 if dims == 3 else 0.04)
     elif kind == "labels" and key:
         if keys["kind"] == "ordered":
             _colorbar(ax, keys)
