@@ -462,8 +462,7 @@ def _setting_pca(results: Mapping[str, Any]) -> str:
         what = ", ".join(r.condition_names[:8]) + (", ..." if len(r.conditions) > 8 else "")
         aligned = " aligned to each sequence's onset" if r.onsets is not None else ""
         words.append(f"lines are the mean trajectories of {len(r.conditions)} conditions "
-                     f"({what}){aligned}; they hide the trial-to-trial spread, shown beside "
-                     "them")
+                     f"({what}){aligned}; means hide the trial-to-trial spread around them")
     note = (r.metadata or {}).get("labels_note")
     if note:
         words.append(note)

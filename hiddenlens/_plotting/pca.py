@@ -70,8 +70,11 @@ def draw_trajectories(result, ax: Any = None, *, dims: int = 2, color_by: Any = 
     ax.set_title(_title(result, what, values[cols], stride, aligned=means
                         and result.onsets is not None), fontsize="medium")
     if handles:
-        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0),
-                  borderaxespad=0.0, fontsize="small")
+        if ax.figure.get_layout_engine() is not None:  # room is made for a key outside
+            ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0),
+                      borderaxespad=0.0, fontsize="small")
+        else:  # fixed margins (a report page): keep the key inside the axes
+            ax.legend(handles=handles, loc="best", fontsize="small", framealpha=0.8)
     return ax
 
 
