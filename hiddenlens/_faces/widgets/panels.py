@@ -310,7 +310,8 @@ _COLOR = Option("color_by", "draw", lambda run: "means" if _task_labels(run) is 
                                      if _task_labels(run) is not None else [])
                 + [("trials by time", "time"), ("trials by sample", "sample")],
                 tip="the mean trajectory of each label value, or every trajectory coloured "
-                    "by its label, its step or its sample")
+                    "by its label, its step or its sample; over means aligned to onsets the "
+                    "step window counts from the onset")
 
 register(Analysis(
     "spectra", "Spectra", _draw_spectra,
