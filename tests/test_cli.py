@@ -242,9 +242,16 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
     trace = hiddenlens.record(model, x)
     opts = run["options"]
     if "pca" in present:
-        pca = hiddenlens.pca_trajectories(trace, **opts["pca"])
+        # the PCA is fitted on the one-crate trials, labelled by tag colour and aligned to the
+        # flash (the trials of the task-memory analysis)
+        trials = sorting_line.make_trials(*cli.DEMO_TRIALS, seed=0)
+        pca = hiddenlens.pca_trajectories(hiddenlens.record(model, trials.inputs),
+                                          k=opts["pca"]["k"], labels=trials.colour,
+                                          onsets=trials.onset)
         assert_allclose(run["key_figures"]["participation_ratio"], pca.participation_ratio,
                         rtol=THREAD_RTOL)
+        assert run["arrays"]["pca"]["conditions"] == ["0", "1", "2"]
+        assert "mean trajectories of 3 conditions" in sections["pca"]
     if "lyapunov" in present:
         lyap = hiddenlens.lyapunov_spectrum(model, trace, **opts["lyapunov"])
         assert_allclose(run["arrays"]["lyapunov"]["exponents"], lyap.exponents, rtol=THREAD_RTOL)

@@ -59,6 +59,9 @@ def _call_task_memory(fn: Callable[..., Any], system: Any, trace: Any, **opts: A
 ADAPTERS: dict[str, Callable[..., Any]] = {
     "memory": _call_memory,
     "task_memory": _call_task_memory,
+    # the task targets may belong to trials of their own (as for task memory): PCA with
+    # options={"pca": {"inputs": trials}} is fitted on those, so their labels fit its trace
+    "pca": _call_task_memory,
 }
 
 
@@ -306,6 +309,15 @@ def _arrays_gradient_flow(r: Any) -> dict[str, Any]:
     return out
 
 
+def _arrays_pca(r: Any) -> dict[str, Any]:
+    out: dict[str, Any] = {"explained_variance_ratio": floats(r.explained_variance_ratio),
+                           "fit_steps": r.fit_description}
+    if r.condition_means is not None:
+        out["conditions"] = list(r.condition_names)
+        out["condition_steps"] = [int(t) for t in r.condition_steps]
+    return out
+
+
 def _arrays_fixed_points(r: Any) -> dict[str, Any]:
     ev = np.asarray(r.eigenvalues)  # (n, S)
     rho = np.abs(ev).max(axis=-1) if ev.ndim == 2 and ev.shape[-1] else np.zeros(len(ev))
@@ -396,7 +408,13 @@ def _draw_lyapunov(r: Any, others: Mapping[str, Any], *, extras: bool = True
 
 
 def _draw_pca(r: Any, others: Mapping[str, Any], *, extras: bool = True) -> list[Drawing]:
-    out = [Drawing("", lambda ax: r.plot(ax=ax))]
+    # with labels the first figure is the condition means; the single trials beside it show
+    # the spread the means hide
+    out = [Drawing("condition means" if r.condition_means is not None else "",
+                   lambda ax: r.plot(ax=ax))]
+    if extras and r.condition_means is not None:
+        out.append(Drawing("single trials by label",
+                           lambda ax: r.plot(ax=ax, conditions=False, color_by="label")))
     if extras:
         out.append(Drawing("variance", lambda ax: r.plot_variance(ax=ax)))
     return out
@@ -435,6 +453,20 @@ def _setting_fixed_points(results: Mapping[str, Any]) -> str:
     starts = sorted({int(r.n_starts) for r in results.values()})
     return (f"Constant input {const}; {', '.join(map(str, starts))} starting states sampled "
             "from the recorded states.")
+
+
+def _setting_pca(results: Mapping[str, Any]) -> str:
+    r = _first(results)
+    words = [f"Axes fitted on {r.fit_description} of the recorded states"]
+    if r.condition_means is not None:
+        what = ", ".join(r.condition_names[:8]) + (", ..." if len(r.conditions) > 8 else "")
+        aligned = " aligned to each sequence's onset" if r.onsets is not None else ""
+        words.append(f"lines are the mean trajectories of {len(r.conditions)} conditions "
+                     f"({what}){aligned}; means hide the trial-to-trial spread around them")
+    note = (r.metadata or {}).get("labels_note")
+    if note:
+        words.append(note)
+    return "; ".join(words) + "."
 
 
 def _setting_lyapunov(results: Mapping[str, Any]) -> str:
@@ -485,15 +517,15 @@ _spec(
     arrays=lambda r: {"exponents": floats(r.exponents)},
     overlay=_overlay_lyapunov, drawings=_draw_lyapunov, setting=_setting_lyapunov)
 _spec(
-    "pca", "hiddenlens._analyses.pca:pca_trajectories",
+    "pca", "hiddenlens._analyses.pca:pca_analysis",
     title="PCA trajectories and effective dimension",
     key_figures=_figures_pca,
     figures={"participation_ratio": Figure("participation ratio")},
     caution="PCA axes are fitted to each run separately: axes of two runs are comparable only "
             "when both are projected into one basis.",
     budget=_budget_pca, phrases=_pca_words,
-    arrays=lambda r: {"explained_variance_ratio": floats(r.explained_variance_ratio)},
-    overlay=_overlay_pca, drawings=_draw_pca)
+    arrays=_arrays_pca, overlay=_overlay_pca, drawings=_draw_pca, setting=_setting_pca,
+    uses=("targets", "onsets"))
 _spec(
     "fixed_points", "hiddenlens._analyses.fixed_points:find_fixed_points",
     title="Fixed points and their stability",

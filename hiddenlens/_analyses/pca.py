@@ -16,7 +16,7 @@ from .._core.systems import RecurrentSystem
 from .._core.trace import Trace
 from .._core.validation import check_trace_fits
 
-__all__ = ["PCATrajectories", "pca_trajectories"]
+__all__ = ["MAX_CONDITIONS", "PCATrajectories", "pca_analysis", "pca_trajectories"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,6 +54,36 @@ class PCATrajectories(Result):
     pca : sklearn.decomposition.PCA
         The fitted scikit-learn estimator (do not refit it: the arrays above would no longer
         match it).
+    fit_mask : ndarray of shape (B, T), bool
+        The states the axes were fitted on (``fit_steps``, less padded steps); every state is
+        projected regardless.
+    fit_description : str
+        Those states in words: ``"all steps"``, ``"steps 20 to 59"``, ``"a mask of 300 of 1200
+        states"``.
+    variance_captured : float
+        Fraction of the variance of *all* states (not only the fitted ones) that lies along the
+        k axes; equal to ``explained_variance_ratio.sum()`` when the fit used every state.
+    labels : ndarray of shape (B,) or (B, T), or None
+        The labels given (one per sequence or one per step).
+    onsets : ndarray of shape (B,), int, or None
+        The event step of each sequence the condition means are aligned to.
+    label_kind : {"categorical", "ordered"} or None
+        How the labels are read and drawn: categories (a legend) or ordered values (a colour
+        map with a colour bar).
+    conditions : ndarray of shape (C,) or None
+        The distinct label values, sorted (None without labels, or with more than
+        ``MAX_CONDITIONS`` of them).
+    condition_names : tuple of str
+        ``conditions`` as text, for legends.
+    condition_means : ndarray of shape (C, L, k) or None
+        The mean projected state of each condition at each step of ``condition_steps``: over
+        the sequences (per-sequence labels) or the states (per-step labels) with that label
+        there. NaN where no state counts.
+    condition_counts : ndarray of shape (C, L), int, or None
+        How many states each mean averages.
+    condition_steps : ndarray of shape (L,), int, or None
+        The steps of ``condition_means``: 0 .. T-1, or steps relative to the onset (0 at the
+        event, negative before it) when ``onsets`` were given.
 
     Notes
     -----
@@ -79,6 +109,17 @@ class PCATrajectories(Result):
     state_size: int
     trace_parts: Mapping[str, slice]
     pca: Any
+    fit_mask: np.ndarray | None = None
+    fit_description: str = "all steps"
+    variance_captured: float | None = None
+    labels: np.ndarray | None = None
+    onsets: np.ndarray | None = None
+    label_kind: str | None = None
+    conditions: np.ndarray | None = None
+    condition_names: tuple[str, ...] = ()
+    condition_means: np.ndarray | None = None
+    condition_counts: np.ndarray | None = None
+    condition_steps: np.ndarray | None = None
 
     @property
     def n_components(self) -> int:
@@ -126,10 +167,27 @@ class PCATrajectories(Result):
             )
 
     # ------------------------------------------------------------------ tables
-    def to_frame(self):
-        """Long table of the projected trajectories: index (sample, step), columns PC1..PCk."""
+    def to_frame(self, *, conditions: bool = False):
+        """Long table of the projected trajectories: index (sample, step), columns PC1..PCk.
+
+        ``conditions=True`` gives the condition means instead: index (condition, step), with
+        the step relative to the onset when onsets were given, and a column ``n`` (states
+        averaged).
+        """
         import pandas as pd
 
+        if conditions:
+            if self.condition_means is None:
+                raise ValueError("this result has no condition means; pass labels= (one per "
+                                 "sequence or per step) to pca_trajectories")
+            C, L, k = self.condition_means.shape
+            idx = pd.MultiIndex.from_product([list(self.condition_names),
+                                              self.condition_steps.tolist()],
+                                             names=["condition", "step"])
+            df = pd.DataFrame(self.condition_means.reshape(C * L, k), index=idx,
+                              columns=[f"PC{i + 1}" for i in range(k)])
+            df["n"] = self.condition_counts.reshape(-1)
+            return df
         B, T, k = self.projected.shape
         idx = pd.MultiIndex.from_product([range(B), range(T)], names=["sample", "step"])
         return pd.DataFrame(self.projected.reshape(B * T, k), index=idx,
@@ -140,24 +198,38 @@ class PCATrajectories(Result):
         """``"PC1 (42.0%)"``: the label of component ``i`` (from 0) with its variance share."""
         return f"PC{i + 1} ({100 * self.explained_variance_ratio[i]:.1f}%)"
 
-    def plot(self, ax: Any = None, *, dims: int = 2, color_by: Any = "time", samples: Any = None,
-             steps: slice | None = None, others: Any = None):
-        """Draw the trajectories in the plane (or space) of the leading components.
+    def plot(self, ax: Any = None, *, dims: int = 2, color_by: Any = None, samples: Any = None,
+             steps: slice | None = None, others: Any = None, conditions: bool | None = None,
+             thin: int | None = None):
+        """Draw the trajectories, or the condition means, in the plane (or space) of the
+        leading components.
 
         Parameters
         ----------
         ax : matplotlib Axes, optional
             Where to draw (3-D axes for ``dims=3``); a new figure by default.
         dims : {2, 3}
-        color_by : "time", "sample" or array_like of shape (B,)
-            Colour segments by step, each sample in its own colour, or by a label per sample
-            (e.g. the class of each sequence).
+        color_by : "time", "sample", "label" or array_like of shape (B,) or (B, T), optional
+            How single trajectories are coloured: by step, each sample in its own colour, by
+            the result's labels, or by labels given here. Categorical labels get the
+            colour-blind-safe palette with a line style each and a legend; ordered (numeric)
+            ones a colour map and a colour bar. Default: "label" when the result has labels,
+            else "time".
         samples : int, sequence of int or slice, optional
-            Which samples to draw (all by default).
+            Which samples to draw (all by default). Over condition means, the chosen samples
+            are drawn faintly behind the means, in their condition's colour.
         steps : slice, optional
-            Which steps to draw (all by default).
+            The time window drawn, in steps: ``slice(100, 300)`` draws steps 100 to 299, a
+            slice step thins (``slice(0, None, 5)``). Over condition means aligned to onsets
+            the steps count from the onset (``slice(-5, 40)``).
         others : Trace, sequence of Trace or mapping name -> Trace, optional
             Further traces of the same model, projected into this basis and drawn dashed.
+        conditions : bool, optional
+            Draw the condition means (one line per label value) instead of every trajectory.
+            Default: True when the result has condition means and ``color_by`` is not given.
+        thin : int, optional
+            Draw every ``thin``-th step. Default: every step up to 400 drawn steps, beyond that
+            the smallest stride that draws at most 400.
 
         Returns
         -------
@@ -165,13 +237,16 @@ class PCATrajectories(Result):
 
         Notes
         -----
-        Circles mark where each trajectory starts, squares where it ends.
+        Circles mark where each line starts, squares where it ends, triangles the onset of
+        aligned condition means. The title says what is drawn: the window, the thinning and
+        the steps the axes were fitted on.
         """
         from .._plotting.pca import draw_trajectories
 
         projected = [(label, self.project(tr)) for label, tr in _as_named_traces(others)]
         return draw_trajectories(self, ax, dims=dims, color_by=color_by, samples=samples,
-                                 steps=steps, others=projected)
+                                 steps=steps, others=projected, conditions=conditions,
+                                 thin=thin)
 
     def plot_variance(self, ax: Any = None, *, max_components: int = 30):
         """Draw the variance share of each component and the cumulative curve (90%/95% marked)."""
@@ -181,9 +256,20 @@ class PCATrajectories(Result):
 
     def __repr__(self) -> str:
         B, T, k = self.projected.shape
+        extra = "" if self.conditions is None else f", conditions={len(self.conditions)}"
+        if self.fit_description != "all steps":
+            extra += f", fitted on {self.fit_description}"
         return (f"PCATrajectories(B={B}, T={T}, k={k}, D={self.columns.size}, "
                 f"participation_ratio={self.participation_ratio:.3g}, "
-                f"n_components_90={self.n_components_90})")
+                f"n_components_90={self.n_components_90}{extra})")
+
+
+#: Most distinct label values that get condition means (more: label values are not repeated
+#: enough to average; bin them first, e.g. with numpy.digitize).
+MAX_CONDITIONS = 64
+#: Most distinct integer values read as categories under ``label_kind="auto"`` (the size of the
+#: colour-blind-safe palette); more are read as ordered values.
+MAX_CATEGORIES = 8
 
 
 @analysis("pca_trajectories")
@@ -193,6 +279,10 @@ def pca_trajectories(
     *legacy: Any,
     k: int | None = None,
     parts: str | Sequence[str] | None = None,
+    labels: Any = None,
+    onsets: Any = None,
+    fit_steps: Any = None,
+    label_kind: str = "auto",
     svd_solver: str | None = None,
     seed: int | np.random.Generator = 0,
     threads: int | None = None,
@@ -201,7 +291,10 @@ def pca_trajectories(
     """Fit PCA to the recorded states and project the trajectories onto the leading components.
 
     Every (sample, step) state of the chosen parts is one observation: the (B, T, D) states are
-    reshaped to (B * T, D) and fitted with :class:`sklearn.decomposition.PCA` in float64.
+    reshaped to (B * T, D) and fitted with :class:`sklearn.decomposition.PCA` in float64, on
+    all states or on the window ``fit_steps``; every state is projected. With ``labels`` the
+    result also holds the condition-averaged trajectories (one per label value), aligned to
+    an event when ``onsets`` are given.
 
     Called as ``pca_trajectories(system, trace, k=3)`` like every analysis, or as
     ``pca_trajectories(trace)`` (PCA needs only the states).
@@ -224,6 +317,24 @@ def pca_trajectories(
         except for an LSTM (parts ``"layer<k>.h"`` and ``"layer<k>.c"``), where the h parts
         only: h and c have different scales, and mixing them lets the larger c dominate the
         axes. Pass both parts by name to fit them together.
+    labels : array_like of shape (B,) or (B, T), optional
+        A label per sequence (the cue of each trial) or per step (the task period, a value
+        that changes along the sequence): categories (str, bool, int) or ordered values
+        (numbers). NaN marks a step without a label. The result then holds the mean
+        trajectory of each label value (``condition_means``), and ``plot`` draws those means
+        by default.
+    onsets : array_like of int, shape (B,), optional
+        The step of an event in each sequence (a cue's onset): condition means are aligned
+        to it, over steps counted from the onset.
+    fit_steps : slice, array_like of int, or bool array of shape (T,) or (B, T), optional
+        The states the axes are fitted on: a window of steps (``slice(20, 60)``), a list of
+        steps, or a mask (per step, or per sequence and step, e.g. a task period after each
+        onset). Default: every state. The axes then describe that window; all states are
+        projected into them.
+    label_kind : {"auto", "categorical", "ordered"}, default "auto"
+        How labels are read: "auto" takes floats as ordered, text and bools as categories,
+        and integers as categories when there are at most 8 distinct values (ordered
+        otherwise).
     svd_solver : str, optional
         Passed to scikit-learn. By default "covariance_eigh" (an eigendecomposition of the
         D × D covariance, exact and fast when B·T >> D) where scikit-learn has it, else "full";
@@ -239,10 +350,13 @@ def pca_trajectories(
 
     Notes
     -----
-    With covariance eigenvalues λ_1 >= ... >= λ_D the participation ratio is
-    PR = (Σ λ_i)² / Σ λ_i² (Gao et al. 2017; Litwin-Kumar et al. 2017): D for isotropic states,
-    1 when all variance lies along one axis. The axes of two fits are not comparable; project
-    other traces with :meth:`PCATrajectories.project` to see them in one basis.
+    With covariance eigenvalues λ_1 >= ... >= λ_D of the fitted states the participation ratio
+    is PR = (Σ λ_i)² / Σ λ_i² (Gao et al. 2017; Litwin-Kumar et al. 2017): D for isotropic
+    states, 1 when all variance lies along one axis. The axes of two fits are not comparable;
+    project other traces with :meth:`PCATrajectories.project` to see them in one basis. The
+    condition mean of label c at step t is the mean of the projected states x_(b,t) with label
+    c at t (per-sequence labels: of the sequences with label c); aligned to onsets, t counts
+    from each sequence's onset. Means hide the trial-to-trial spread around them.
 
     References
     ----------
@@ -265,23 +379,34 @@ def pca_trajectories(
     except KeyError as err:  # an unknown part is a bad option value, as elsewhere
         raise ValueError(str(err.args[0])) from None
     B, T, _ = trace.states.shape
+    lab, kind = _check_labels(labels, B, T, label_kind)
+    starts = _check_onsets(onsets, B, T)
+    fit, fit_text = _fit_mask(fit_steps, B, T)  # (B, T)
     X = np.asarray(trace.states[:, :, cols], dtype=np.float64).reshape(B * T, cols.size)
     from .._core.record import valid_steps
 
     keep = valid_steps(trace)  # (B, T): padded steps of variable-length batches stay out
-    X_fit = X if keep is None else X[keep.reshape(-1)]
+    real = np.ones((B, T), bool) if keep is None else keep
+    fit &= real
+    if fit_steps is not None and fit.sum() < 2:
+        raise ValueError(f"fit_steps selects {int(fit.sum())} recorded state(s) ({fit_text}); "
+                         "PCA needs at least two: choose a wider window")
+    X_fit = X[fit.reshape(-1)]
     _check_data(X_fit, n_components)
     spectrum = _covariance_spectrum(X_fit)  # (D,)
     total = spectrum.sum()
     if not total > 0:
         raise ValueError("the selected states do not vary over samples and steps, so they have "
-                         "no principal components; record longer or more varied inputs")
+                         "no principal components; record longer or more varied inputs"
+                         + ("" if fit_steps is None else " (or fit on a wider fit_steps)"))
     if svd_solver is None:
         svd_solver = "covariance_eigh" if _has_covariance_eigh() and \
             X_fit.shape[0] >= X_fit.shape[1] else "full"
     pca = PCA(n_components=n_components, svd_solver=svd_solver, random_state=seed).fit(X_fit)
     cumulative = np.minimum(np.cumsum(spectrum) / total, 1.0)  # (D,)
     projected = pca.transform(X).reshape(B, T, n_components)  # (B, T, k)
+    captured = _captured(X[real.reshape(-1)], pca.components_)
+    groups = _condition_means(projected, lab, kind, starts, real) if lab is not None else {}
     return PCATrajectories(
         projected=readonly(projected),
         components=readonly(pca.components_),
@@ -298,7 +423,43 @@ def pca_trajectories(
         state_size=trace.state_size,
         trace_parts=frozen_mapping(trace.parts),
         pca=pca,
+        fit_mask=readonly(fit),
+        fit_description=fit_text,
+        variance_captured=captured,
+        labels=None if lab is None else readonly(lab.copy()),
+        onsets=None if starts is None else readonly(starts),
+        label_kind=kind,
+        **groups,
     )
+
+
+def pca_analysis(system: Any, trace: Trace, *, targets: Any = None, onsets: Any = None,
+                 **options: Any) -> PCATrajectories:
+    """:func:`pca_trajectories` in the analysis form, with the task context of
+    :func:`hiddenlens.run_analyses`: ``targets`` become the labels (unless ``labels=`` is
+    given), ``onsets`` the alignment of the condition means.
+
+    Targets that do not fit the trace (recorded on other trials) are not used; the result's
+    ``metadata["labels_note"]`` says so.
+    """
+    note = None
+    if options.get("labels") is None and targets is not None:
+        B, T = trace.batch_size, trace.n_steps
+        shape = np.shape(targets)
+        fits = shape in ((B,), (B, T)) and (onsets is None or np.shape(onsets) == (B,))
+        if fits:
+            options["labels"] = targets
+            if onsets is not None and options.get("onsets") is None:
+                options["onsets"] = onsets
+        else:
+            note = (f"the task targets (shape {shape}) do not fit the {B} recorded sequences "
+                    f"of {T} steps, so the trajectories are drawn without them")
+    res = pca_trajectories(system, trace, **options)
+    if note is None:
+        return res
+    import dataclasses
+
+    return dataclasses.replace(res, metadata={**dict(res.metadata), "labels_note": note})
 
 
 # ---------------------------------------------------------------------- computing
@@ -341,6 +502,131 @@ def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: 
             parts = positional[1]
     k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
     return given, (3 if k is None else k), parts
+def _check_labels(labels: Any, B: int, T: int, kind: str
+                  ) -> tuple[np.ndarray | None, str | None]:
+    """The labels as an array of shape (B,) or (B, T), and how they are read."""
+    if labels is None:
+        return None, None
+    if isinstance(labels, torch.Tensor):
+        labels = labels.detach().cpu().numpy()
+    lab = np.asarray(labels)
+    if lab.shape not in ((B,), (B, T)):
+        raise ValueError(f"labels must have shape ({B},), one per sequence, or ({B}, {T}), one "
+                         f"per step, got shape {lab.shape}; pass e.g. the cue of each sequence")
+    numeric = lab.dtype.kind in "iuf"
+    if kind == "ordered" and not numeric:
+        raise ValueError(f"label_kind='ordered' needs numeric labels, got {lab.dtype} values; "
+                         "pass numbers or label_kind='categorical'")
+    if lab.dtype.kind == "f" and np.isinf(lab).any():
+        raise ValueError("labels contain Inf; mark steps without a label with NaN")
+    if kind == "auto":
+        if lab.dtype.kind == "f":
+            kind = "ordered"
+        elif lab.dtype.kind in "iu":
+            kind = "categorical" if np.unique(lab).size <= MAX_CATEGORIES else "ordered"
+        else:
+            kind = "categorical"
+    return lab, kind
+
+
+def _check_onsets(onsets: Any, B: int, T: int) -> np.ndarray | None:
+    if onsets is None:
+        return None
+    if isinstance(onsets, torch.Tensor):
+        onsets = onsets.detach().cpu().numpy()
+    arr = np.asarray(onsets)
+    if arr.shape != (B,) or arr.dtype.kind not in "iu" and not (
+            arr.dtype.kind == "f" and np.all(arr == np.round(arr))):
+        raise ValueError(f"onsets must hold one integer step per sequence, shape ({B},), got "
+                         f"shape {arr.shape} of {arr.dtype}; pass e.g. the step of each cue")
+    arr = arr.astype(np.int64)
+    if arr.size and (arr.min() < 0 or arr.max() >= T):
+        raise ValueError(f"onsets must be steps from 0 to {T - 1} (the recorded steps), got "
+                         f"values from {arr.min()} to {arr.max()}")
+    return arr
+
+
+def _fit_mask(fit_steps: Any, B: int, T: int) -> tuple[np.ndarray, str]:
+    """The (B, T) mask of states to fit on, and the states in words."""
+    if fit_steps is None:
+        return np.ones((B, T), bool), "all steps"
+    if isinstance(fit_steps, slice):
+        steps = np.arange(T)[fit_steps]
+        if steps.size == 0:
+            raise ValueError(f"fit_steps={fit_steps!r} selects none of the {T} steps; pass a "
+                             "window inside them, e.g. slice(0, 50)")
+        mask = np.zeros((B, T), bool)
+        mask[:, steps] = True
+        stride = "" if fit_steps.step in (None, 1) else f" (every {fit_steps.step}th)"
+        return mask, f"steps {steps[0]} to {steps[-1]}{stride}"
+    if isinstance(fit_steps, torch.Tensor):
+        fit_steps = fit_steps.detach().cpu().numpy()
+    arr = np.asarray(fit_steps)
+    if arr.dtype == bool:
+        if arr.shape == (T,):
+            mask = np.broadcast_to(arr, (B, T)).copy()
+            return mask, f"{int(arr.sum())} of {T} steps"
+        if arr.shape == (B, T):
+            return arr.copy(), f"a mask of {int(arr.sum())} of {B * T} states"
+        raise ValueError(f"a fit_steps mask must have shape ({T},) or ({B}, {T}), got shape "
+                         f"{arr.shape}")
+    if arr.ndim == 1 and arr.size and arr.dtype.kind in "iu":
+        if arr.min() < -T or arr.max() >= T:
+            raise ValueError(f"fit_steps holds steps outside 0 to {T - 1}: {arr.min()} to "
+                             f"{arr.max()}")
+        mask = np.zeros((B, T), bool)
+        mask[:, arr] = True
+        return mask, f"{int(mask[0].sum())} chosen steps"
+    raise ValueError("fit_steps must be a slice of steps (e.g. slice(20, 60)), a list of steps, "
+                     f"or a bool mask of shape ({T},) or ({B}, {T}); got {type(fit_steps).__name__}"
+                     f" of shape {arr.shape}")
+
+
+def _captured(X: np.ndarray, components: np.ndarray) -> float:
+    """Fraction of the variance of the states X (N, D) along the (orthonormal) components."""
+    Xc = X - X.mean(axis=0)  # (N, D)
+    total = float(np.sum(Xc**2))
+    return float(np.sum((Xc @ components.T) ** 2) / total) if total > 0 else float("nan")
+
+
+def _condition_means(projected: np.ndarray, lab: np.ndarray, kind: str | None,
+                     onsets: np.ndarray | None, real: np.ndarray) -> dict[str, Any]:
+    """Condition means (C, L, k) of the projected states, grouped by label and (aligned) step."""
+    B, T, k = projected.shape
+    per_step = np.broadcast_to(lab[:, None], (B, T)) if lab.ndim == 1 else lab  # (B, T)
+    has = real.copy()
+    if per_step.dtype.kind == "f":
+        has &= ~np.isnan(per_step)
+    values = np.unique(per_step[has])
+    if values.size == 0 or values.size > MAX_CONDITIONS:
+        return {}
+    code = np.searchsorted(values, per_step[has])  # (n,)
+    t = np.broadcast_to(np.arange(T), (B, T))
+    rel = t - (onsets[:, None] if onsets is not None else 0)  # (B, T) steps from the event
+    first = int(rel[has].min()) if onsets is not None else 0
+    L = (int(rel[has].max()) - first + 1) if onsets is not None else T
+    where = code * L + (rel[has] - first)  # (n,) one bin per (condition, step)
+    C = values.size
+    counts = np.bincount(where, minlength=C * L)  # (C*L,)
+    P = projected[has]  # (n, k)
+    sums = np.stack([np.bincount(where, weights=P[:, j], minlength=C * L) for j in range(k)],
+                    axis=-1)  # (C*L, k)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = sums / counts[:, None]
+    means[counts == 0] = np.nan
+    names = tuple(_label_text(v) for v in values)
+    return {"conditions": readonly(values), "condition_names": names,
+            "condition_means": readonly(means.reshape(C, L, k)),  # (C, L, k)
+            "condition_counts": readonly(counts.reshape(C, L)),
+            "condition_steps": readonly(np.arange(first, first + L))}
+
+
+def _label_text(v: Any) -> str:
+    if isinstance(v, (float, np.floating)):
+        return f"{float(v):g}"
+    return str(v.item() if isinstance(v, np.generic) else v)
+
+
 def _default_parts(trace: Trace) -> tuple[str, ...] | None:
     """The h parts of an LSTM trace (which also holds c parts); None (all) otherwise."""
     names = list(trace.parts)

@@ -211,6 +211,7 @@ CONSTRAINTS: dict[str, dict[str, tuple[Constraint, ...]]] = {
     },
     "pca_trajectories": {
         "seed": SEED, "k": (Interval("int", 1, None),), "threads": THREADS,
+        "label_kind": (OneOf(("auto", "categorical", "ordered")),),
     },
     "find_fixed_points": {
         # n_starts and max_iter default to None: sized from the state (see find_fixed_points)

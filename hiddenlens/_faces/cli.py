@@ -601,13 +601,15 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     # the task variable: one crate per trial, its tag colour decoded at each step after the
     # flash, on trials of their own (no gate cue, so the tag must be kept to the end)
     trials = sorting_line.make_trials(*DEMO_TRIALS, seed=args.seed)
-    source += (f"; task-variable memory on {DEMO_TRIALS[0]} one-crate trials of "
-               f"{DEMO_TRIALS[1]} steps (tag colour from its flash)")
+    source += (f"; task-variable memory and the PCA trajectories on {DEMO_TRIALS[0]} one-crate "
+               f"trials of {DEMO_TRIALS[1]} steps (tag colour from its flash; the PCA draws the "
+               "mean trajectory of each tag colour, aligned to the flash)")
     task = _demo_task(runs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet,
                        title="hiddenlens demo: sorting-line runs compared", source=source,
-                       options={"task_memory": {"inputs": trials.inputs}},
+                       options={"task_memory": {"inputs": trials.inputs},
+                                "pca": {"inputs": trials.inputs}},
                        context={"targets": trials.colour, "onsets": trials.onset},
                        task=task)
     print(path)

@@ -6,68 +6,343 @@ from typing import Any
 
 import numpy as np
 
+#: Most steps drawn along one line before the drawing is thinned (``thin=None``).
+MAX_DRAWN_STEPS = 400
 
-def draw_trajectories(result, ax: Any = None, *, dims: int = 2, color_by: Any = "time",
-                      samples: Any = None, steps: slice | None = None, others: Any = None):
-    """Draw the trajectories in the plane (or space) of the leading components.
 
-    Parameters
-    ----------
-    ax : matplotlib Axes, optional
-        Where to draw (3-D axes for ``dims=3``); a new figure by default.
-    dims : {2, 3}
-    color_by : "time", "sample" or array_like of shape (B,)
-        Colour segments by step, each sample in its own colour, or by a label per sample
-        (e.g. the class of each sequence).
-    samples : int, sequence of int or slice, optional
-        Which samples to draw (all by default).
-    steps : slice, optional
-        Which steps to draw (all by default).
-    others : sequence of (name, array of shape (B', T', k)), optional
-        Further trajectories already projected into this basis, drawn dashed.
+def draw_trajectories(result, ax: Any = None, *, dims: int = 2, color_by: Any = None,
+                      samples: Any = None, steps: slice | None = None, others: Any = None,
+                      conditions: bool | None = None, thin: int | None = None):
+    """Draw the trajectories, or the condition means, in the plane (or space) of the leading
+    components (see :meth:`hiddenlens.PCATrajectories.plot` for the parameters).
 
-    Returns
-    -------
-    matplotlib Axes
-
-    Notes
-    -----
-    Circles mark where each trajectory starts, squares where it ends.
+    ``others`` holds further trajectories already projected into this basis, as a sequence of
+    (name, array of shape (B', T', k)), drawn dashed.
     """
     from .style import RUN_COLORS, get_axes
 
     dims = check_dims(dims, result.n_components)
     B, T, _ = result.projected.shape
+    means = _use_means(result, conditions, color_by)
     try:
         rows = np.atleast_1d(np.arange(B)[samples if samples is not None else slice(None)])
-        cols = np.arange(T)[steps if steps is not None else slice(None)]
     except (IndexError, TypeError) as err:
-        raise ValueError(f"samples must index the {B} samples and steps must be a slice of "
-                         f"the {T} steps ({err})") from None
-    if rows.size == 0 or cols.size == 0:
-        raise ValueError("samples/steps select nothing to draw; pass a non-empty selection")
-    P = result.projected[rows][:, cols, :dims]  # (b, t, dims)
-    colouring = _colouring(color_by, B, rows)
+        raise ValueError(f"samples must index the {B} samples ({err})") from None
+    if rows.size == 0:
+        raise ValueError("samples selects nothing to draw; pass a non-empty selection")
+    values = result.condition_steps if means else np.arange(T)
+    cols, stride = _window(values, steps, thin)  # indices into the time axis drawn
     ax = get_axes(ax, projection="3d" if dims == 3 else None)
-    handles = _draw_lines(ax, P, colouring, cols)
-    drawn = [P]
-    used = len(np.unique(colouring[1])) if colouring[0] == "labels" else 1
+    drawn: list[np.ndarray] = []
+    handles: list = []
+    if means:
+        keys = _condition_keys(result)
+        if samples is not None:  # the chosen trials, faint, behind the means
+            trial_cols, _ = _window(np.arange(T), None if result.onsets is not None else steps,
+                                    thin)
+            P = result.projected[rows][:, trial_cols, :dims]  # (b, t, dims)
+            _draw_trials(ax, P, _trial_colouring(result, "label", rows, trial_cols, keys),
+                         trial_cols, alpha=0.3, key=False)
+            drawn.append(P)
+        M = result.condition_means[:, cols, :dims]  # (C, t, dims)
+        handles += _draw_means(ax, M, keys, values[cols])
+        drawn.append(M)
+        what = f"means of {M.shape[0]} conditions"
+    else:
+        P = result.projected[rows][:, cols, :dims]  # (b, t, dims)
+        colouring = _trial_colouring(result, color_by, rows, cols, None)
+        handles += _draw_trials(ax, P, colouring, cols)
+        handles += _mark_ends(ax, [P])
+        drawn.append(P)
+        what = f"{rows.size} trajector{'y' if rows.size == 1 else 'ies'}"
+    used = len(result.conditions) if means else 1
     for i, (label, Q) in enumerate(others or ()):
         Q = Q[:, :, :dims]  # (B', T', dims)
         colour = RUN_COLORS[(used + i) % len(RUN_COLORS)]
-        handles += _draw_lines(ax, Q, ("single", colour), None, label=label,
-                               ls="--")
+        handles += _draw_trials(ax, Q, ("single", colour), None, label=label, ls="--")
+        _mark_ends(ax, [Q])  # its start and end, under the legend entries above
         drawn.append(Q)
-    handles += _mark_ends(ax, drawn)
     set_limits(ax, drawn, dims)
     ax.set_xlabel(result.axis_label(0))
     ax.set_ylabel(result.axis_label(1))
     if dims == 3:
         ax.set_zlabel(result.axis_label(2))
-    what = "all states" if result.parts is None else ", ".join(result.parts)
-    ax.set_title(f"PCA of {what}: participation ratio {result.participation_ratio:.1f}")
-    ax.legend(handles=handles, loc="best", fontsize="small")
+    ax.set_title(_title(result, what, values[cols], stride, aligned=means
+                        and result.onsets is not None), fontsize="medium")
+    if handles:
+        if ax.figure.get_layout_engine() is not None:  # room is made for a key outside
+            ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0),
+                      borderaxespad=0.0, fontsize="small")
+        else:  # fixed margins (a report page): keep the key inside the axes
+            ax.legend(handles=handles, loc="best", fontsize="small", framealpha=0.8)
     return ax
+
+
+def _use_means(result, conditions: Any, color_by: Any) -> bool:
+    if conditions is None:
+        return result.condition_means is not None and color_by is None
+    if conditions not in (True, False):
+        raise ValueError(f"conditions must be True, False or None, got {conditions!r}")
+    if conditions and result.condition_means is None:
+        raise ValueError("this result has no condition means; pass labels= (one per sequence "
+                         "or per step, with at most 64 distinct values) to pca_trajectories")
+    return bool(conditions)
+
+
+def _window(values: np.ndarray, steps: Any, thin: Any) -> tuple[np.ndarray, int]:
+    """Indices of the drawn steps: those of ``values`` inside the window, thinned."""
+    if steps is not None and not isinstance(steps, slice):
+        raise ValueError(f"steps must be a slice of steps, e.g. slice(100, 300), got "
+                         f"{type(steps).__name__}")
+    if thin is not None and (isinstance(thin, bool) or not isinstance(thin, (int, np.integer))
+                             or thin < 1):
+        raise ValueError(f"thin must be an int >= 1 (draw every thin-th step), got {thin!r}")
+    keep = np.ones(values.size, bool)
+    stride = 1
+    if steps is not None:
+        if steps.start is not None:
+            keep &= values >= steps.start
+        if steps.stop is not None:
+            keep &= values < steps.stop
+        if steps.step is not None:
+            if isinstance(steps.step, bool) or not isinstance(steps.step, (int, np.integer)) \
+                    or steps.step < 1:
+                raise ValueError(f"the step of steps= must be an int >= 1, got {steps.step!r}")
+            stride = int(steps.step)
+    idx = np.flatnonzero(keep)
+    if idx.size == 0:
+        raise ValueError(f"steps={steps!r} selects none of the steps {values[0]} to "
+                         f"{values[-1]}; pass a window inside them")
+    if thin is None:
+        thin = max(1, -(-idx[::stride].size // MAX_DRAWN_STEPS))
+    stride *= int(thin)
+    return idx[::stride], stride
+
+
+def _condition_keys(result) -> dict[str, Any]:
+    """Colour (and line style) of each condition: the palette with line styles for categories,
+    a colour map for ordered values."""
+    from .style import LINESTYLES, RUN_COLORS
+
+    C = len(result.conditions)
+    if result.label_kind == "ordered":
+        import matplotlib
+        from matplotlib.colors import Normalize
+
+        v = np.asarray(result.conditions, dtype=float)
+        norm = Normalize(float(v.min()), float(v.max()) if v.max() > v.min() else v.min() + 1)
+        cmap = matplotlib.colormaps["viridis"]
+        return {"kind": "ordered", "colors": [cmap(norm(x)) for x in v], "styles": ["-"] * C,
+                "norm": norm, "cmap": cmap, "values": v}
+    return {"kind": "categorical", "colors": [RUN_COLORS[i % len(RUN_COLORS)] for i in range(C)],
+            "styles": [LINESTYLES[(i // len(RUN_COLORS) + i) % len(LINESTYLES)]
+                       for i in range(C)],
+            "values": np.asarray(result.conditions)}
+
+
+def _colorbar(ax, keys, label: str = "label"):
+    from matplotlib.cm import ScalarMappable
+
+    sm = ScalarMappable(norm=keys["norm"], cmap=keys["cmap"])
+    return ax.figure.colorbar(sm, ax=ax, label=label, shrink=0.8,
+                              pad=0.12 if getattr(ax, "name", "") == "3d" else 0.04)
+
+
+def _draw_means(ax, M: np.ndarray, keys, steps: np.ndarray) -> list:
+    """One line per condition (C, t, dims), start/end and onset markers; legend handles."""
+    from matplotlib.lines import Line2D
+
+    from .style import plain_text
+
+    handles = []
+    names = []
+    ordered = keys["kind"] == "ordered"
+    for c in range(M.shape[0]):
+        line = M[c]  # (t, dims)
+        ok = np.isfinite(line).all(axis=1)
+        if not ok.any():
+            continue
+        colour, style = keys["colors"][c], keys["styles"][c]
+        ax.plot(*line.T, color=colour, ls=style, lw=1.8)
+        first, last = line[ok][0], line[ok][-1]
+        ax.scatter(*first[:, None], marker="o", facecolors="white", edgecolors=colour, s=26,
+                   zorder=3)
+        ax.scatter(*last[:, None], marker="s", color=colour, s=22, zorder=3)
+        at = np.flatnonzero(steps == 0)
+        if at.size and ok[at[0]]:
+            ax.scatter(*line[at[0]][:, None], marker="^", color=colour, edgecolors="black",
+                       s=40, zorder=4)
+        if not ordered:
+            names.append(c)
+            handles.append(Line2D([], [], color=colour, ls=style, lw=1.8,
+                                  label=plain_text(_name(keys, c))))
+    if ordered:
+        _colorbar(ax, keys, "label (condition)")
+    handles.append(Line2D([], [], marker="o", ls="", markerfacecolor="white",
+                          markeredgecolor="black", label="start"))
+    handles.append(Line2D([], [], marker="s", ls="", color="black", label="end"))
+    if (steps == 0).any():
+        handles.append(Line2D([], [], marker="^", ls="", color="0.5", markeredgecolor="black",
+                              label="onset"))
+    return handles
+
+
+def _name(keys, c: int) -> str:
+    v = keys["values"][c]
+    return f"{float(v):g}" if isinstance(v, (float, np.floating)) else str(
+        v.item() if isinstance(v, np.generic) else v)
+
+
+def _trial_colouring(result, color_by: Any, rows: np.ndarray, cols: np.ndarray, keys):
+    """What colours single trajectories: ("time"|"sample", None), ("single", colour) or
+    ("labels", (per-step label codes (b, t), keys))."""
+    B, T, _ = result.projected.shape
+    if color_by is None:
+        color_by = "label" if result.labels is not None else "time"
+    if isinstance(color_by, str):
+        if color_by == "label":
+            if result.labels is None:
+                raise ValueError("color_by='label' needs labels; pass labels= to "
+                                 "pca_trajectories or an array of labels as color_by")
+            lab, kind = result.labels, result.label_kind
+        elif color_by == "time":
+            return ("time", None)
+        elif color_by == "sample":
+            return ("sample", rows)
+        else:
+            raise ValueError(f"color_by must be 'time', 'sample', 'label' or an array of {B} "
+                             f"labels (one per sample) or ({B}, {T}) (one per step), got "
+                             f"{color_by!r}")
+    else:
+        lab = np.asarray(color_by)
+        if lab.shape not in ((B,), (B, T)):
+            raise ValueError(f"color_by labels must have shape ({B},), one per sample, or "
+                             f"({B}, {T}), one per step, got shape {lab.shape}")
+        kind = "ordered" if lab.dtype.kind == "f" else "categorical"
+        keys = None
+    per_step = np.broadcast_to(lab[:, None], (B, T)) if lab.ndim == 1 else lab
+    sel = per_step[rows][:, cols]  # (b, t)
+    if keys is None:
+        if kind == "ordered":
+            finite = sel[np.isfinite(sel)] if sel.dtype.kind == "f" else sel
+            uniq = np.unique(finite)
+        else:
+            uniq = np.unique(sel)
+        fake = type("Labels", (), {"conditions": uniq, "label_kind": kind})
+        keys = _condition_keys(fake)
+    if keys["kind"] == "ordered":
+        return ("labels", (np.asarray(sel, dtype=float), keys))
+    code = np.searchsorted(keys["values"], sel)
+    code = np.where((code < len(keys["values"])) & (keys["values"][np.minimum(
+        code, len(keys["values"]) - 1)] == sel), code, -1)
+    return ("labels", (code, keys))
+
+
+_TIME_PIECES = 128  # most colour bands drawn along one trajectory coloured by time
+
+
+def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = None,
+                 ls: str = "-", alpha: float = 1.0, key: bool = True) -> list:
+    """Draw trajectories P (b, t, dims) as one line collection; return legend handles."""
+    from matplotlib.collections import LineCollection
+    from matplotlib.lines import Line2D
+
+    from .style import plain_text
+
+    b, t, dims = P.shape
+    kind, extra = colouring
+    handles = []
+    if kind == "single":
+        handles.append(Line2D([], [], color=extra, ls=ls, label=label))
+    if t < 2:
+        return handles
+    per_sequence = False
+    if kind == "labels":
+        values, keys = extra
+        # one label per sequence: one piece per trajectory; per step: one piece per step
+        per_sequence = bool(np.all(values == values[:, :1]) or (
+            values.dtype.kind == "f" and np.all(np.isnan(values) | (values == values[:, :1]))))
+    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
+    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
+    # that matplotlib builds and strokes on every redraw).
+    if kind == "time":
+        m = -(-(t - 1) // _TIME_PIECES)
+    elif kind == "labels" and not per_sequence:
+        m = 1
+    else:
+        m = t - 1
+    firsts = np.arange(0, t - 1, m)  # first step of each piece
+    segs = [P[i, a:min(a + m, t - 1) + 1] for i in range(b) for a in firsts]  # (<= m+1, dims)
+    per_sample = firsts.size
+    kw: dict[str, Any] = {"linewidths": 1.0, "linestyles": ls, "alpha": alpha}
+    if kind == "single":
+        kw["colors"] = extra
+    elif kind == "sample":
+        from .style import LINESTYLES, RUN_COLORS
+
+        names = np.arange(b) if extra is None else extra
+        if b <= len(RUN_COLORS):  # a colour and a line style each, named in the legend
+            kw["colors"] = [RUN_COLORS[i] for i in range(b)]
+            kw["linestyles"] = [LINESTYLES[i] for i in range(b)]
+            handles += [Line2D([], [], color=RUN_COLORS[i], ls=LINESTYLES[i],
+                               label=f"sample {names[i]}") for i in range(b)]
+        else:
+            from .style import time_colors
+
+            kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
+    elif kind == "labels":
+        piece = values[:, firsts].reshape(-1)  # (b * pieces,) label at each piece's start
+        if keys["kind"] == "ordered":
+            kw["colors"] = [keys["cmap"](keys["norm"](v)) if np.isfinite(v) else (0.6,) * 3
+                            + (1.0,) for v in piece]
+        else:
+            grey = "#999999"
+            kw["colors"] = [keys["colors"][c] if c >= 0 else grey for c in piece]
+            if per_sequence:
+                kw["linestyles"] = [keys["styles"][c] if c >= 0 else "-" for c in piece]
+    if dims == 3:
+        from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
+    else:
+        Collection = LineCollection
+    coll = Collection(segs, **kw)
+    if kind == "time":
+        coll.set_array(np.tile(steps[firsts], b).astype(float))
+        coll.set_cmap("viridis")
+    ax.add_collection(coll)
+    if kind == "time":
+        ax.figure.colorbar(coll, ax=ax, label="step", shrink=0.8, pad=0.12 if dims == 3 else 0.04)
+    elif kind == "sample" and b > 8:
+        import matplotlib
+        from matplotlib.cm import ScalarMappable
+        from matplotlib.colors import Normalize
+
+        sm = ScalarMappable(norm=Normalize(float(names[0]), float(names[-1]) or 1.0),
+                            cmap=matplotlib.colormaps["turbo"])
+        ax.figure.colorbar(sm, ax=ax, label="sample", shrink=0.8,
+                           pad=0.12 if dims == 3 else 0.04)
+    elif kind == "labels" and key:
+        if keys["kind"] == "ordered":
+            _colorbar(ax, keys)
+        else:
+            handles += [Line2D([], [], color=keys["colors"][i], ls=keys["styles"][i]
+                               if per_sequence else "-", label=plain_text(_name(keys, i)))
+                        for i in range(len(keys["values"]))]
+    return handles
+
+
+def _title(result, what: str, shown: np.ndarray, stride: int, *, aligned: bool) -> str:
+    part = "all states" if result.parts is None else ", ".join(result.parts)
+    first = f"PCA of {part}: participation ratio {result.participation_ratio:.1f}"
+    if result.fit_description != "all steps":
+        first += f" (axes fitted on {result.fit_description})"
+    window = f"steps {shown[0]} to {shown[-1]}" + (" from the onset" if aligned else "")
+    every = "" if stride == 1 else f", every {_ordinal(stride)} step"
+    return f"{first}\n{what}, {window}{every}"
+
+
+def _ordinal(n: int) -> str:
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
 
 
 def draw_variance(result, ax: Any = None, *, max_components: int = 30):
@@ -102,69 +377,6 @@ def check_dims(dims: Any, k: int) -> int:
     return int(dims)
 
 
-def _colouring(color_by: Any, B: int, rows: np.ndarray):
-    if isinstance(color_by, str):
-        if color_by not in ("time", "sample"):
-            raise ValueError(f"color_by must be 'time', 'sample' or an array of {B} labels "
-                             f"(one per sample), got {color_by!r}")
-        return (color_by, None)
-    labels = np.asarray(color_by)
-    if labels.shape != (B,):
-        raise ValueError(f"color_by labels must have shape ({B},), one per sample, got shape "
-                         f"{labels.shape}")
-    return ("labels", labels[rows])
-
-
-_TIME_PIECES = 128  # most colour bands drawn along one trajectory coloured by time
-
-
-def _draw_lines(ax, P: np.ndarray, colouring, steps, *, label: str | None = None,
-                ls: str = "-") -> list:
-    """Draw trajectories P (b, t, dims) as one line collection; return legend handles."""
-    from matplotlib.collections import LineCollection
-    from matplotlib.lines import Line2D
-
-    b, t, dims = P.shape
-    kind, extra = colouring
-    handles = []
-    if kind == "single":
-        handles.append(Line2D([], [], color=extra, ls=ls, label=label))
-    if t < 2:
-        return handles
-    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
-    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
-    # that matplotlib builds and strokes on every redraw).
-    m = t - 1 if kind != "time" else -(-(t - 1) // _TIME_PIECES)
-    firsts = np.arange(0, t - 1, m)  # first step of each piece
-    segs = [P[i, a:min(a + m, t - 1) + 1] for i in range(b) for a in firsts]  # (<= m+1, dims)
-    per_sample = firsts.size
-    kw: dict[str, Any] = {"linewidths": 1.0, "linestyles": ls}
-    if kind == "single":
-        kw["colors"] = extra
-    elif kind == "sample":
-        from .style import time_colors
-
-        kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
-    elif kind == "labels":
-        uniq, code = np.unique(extra, return_inverse=True)
-        palette = np.array([f"C{i % 10}" for i in range(uniq.size)])
-        kw["colors"] = np.repeat(palette[code], per_sample)
-    if dims == 3:
-        from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
-    else:
-        Collection = LineCollection
-    coll = Collection(segs, **kw)
-    if kind == "time":
-        coll.set_array(np.tile(steps[firsts], b).astype(float))
-        coll.set_cmap("viridis")
-    ax.add_collection(coll)
-    if kind == "time":
-        ax.figure.colorbar(coll, ax=ax, label="step", shrink=0.8, pad=0.12 if dims == 3 else 0.04)
-    elif kind == "labels":
-        handles += [Line2D([], [], color=palette[i], label=str(u)) for i, u in enumerate(uniq)]
-    return handles
-
-
 def _mark_ends(ax, drawn: list[np.ndarray]) -> list:
     first = np.concatenate([P[:, 0] for P in drawn])  # (n, dims)
     last = np.concatenate([P[:, -1] for P in drawn])
@@ -177,6 +389,9 @@ def _mark_ends(ax, drawn: list[np.ndarray]) -> list:
 
 def set_limits(ax, drawn: list[np.ndarray], dims: int) -> None:
     pts = np.concatenate([P.reshape(-1, dims) for P in drawn])
+    pts = pts[np.isfinite(pts).all(axis=1)]  # condition means are NaN where no state counts
+    if pts.size == 0:
+        return
     lo, hi = pts.min(axis=0), pts.max(axis=0)
     span = hi - lo
     big = float(span.max()) or 1.0

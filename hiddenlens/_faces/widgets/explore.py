@@ -150,7 +150,8 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     h0 : Tensor or ndarray, optional
         Initial states as in :func:`hiddenlens.record` (zeros by default).
     labels : array_like of shape (B,), optional
-        A label per sequence; adds "colour by label" to the trajectories tab.
+        A label per sequence: the trajectories tab draws the mean trajectory of each label
+        by default (or the trials coloured by label).
     analyses : sequence of str, optional
         Which tabs to show, in order (default: every available analysis, trajectories first).
         Names: those of :func:`hiddenlens.analyses` ("pca", "spectra", "gradient_flow",

@@ -234,14 +234,40 @@ def _draw_lyapunov(result, axes, view, run, deps):
 
 def _color_by(view: View, run: Run) -> Any:
     how = view.extra.get("color_by", "time")
-    if how == "label":
+    if how in ("label", "means"):  # labels the result does not hold (or too many for means)
         return run.labels if run.labels is not None else "sample"
     return how
 
 
 def _draw_pca(result, axes, view, run, deps):
-    result.plot(ax=axes[0], dims=view.extra.get("dims", 2), color_by=_color_by(view, run),
-                samples=view.sample, steps=view.steps())
+    how = view.extra.get("color_by", "time")
+    kw = {"ax": axes[0], "dims": view.extra.get("dims", 2), "samples": view.sample,
+          "steps": view.steps()}
+    if how == "means" and result.condition_means is not None:
+        result.plot(conditions=True, **kw)  # the chosen sample drawn faintly behind
+        return
+    if how == "label" and result.labels is not None:
+        result.plot(conditions=False, color_by="label", **kw)
+        return
+    result.plot(conditions=False, color_by=_color_by(view, run), **kw)
+
+
+def _task_labels(run: Run) -> Any:
+    """The run's labels: those given to the widget, else task targets (per sequence or per
+    step) of its context that fit its trace."""
+    if run.labels is not None:
+        return run.labels
+    targets = (getattr(run, "context", None) or {}).get("targets")
+    B, T = run.trace.batch_size, run.trace.n_steps
+    return targets if targets is not None and np.shape(targets) in ((B,), (B, T)) else None
+
+
+def _pca_labels(run: Run, options: dict[str, Any]) -> dict[str, Any]:
+    # labels given to the widget label the PCA (condition means); task targets reach it
+    # through the context, as in run_analyses
+    if run.labels is not None:
+        options.setdefault("labels", run.labels)
+    return options
 
 
 def _draw_fixed_points(result, axes, view, run, deps):
@@ -278,9 +304,14 @@ def _dims(view: View) -> tuple[int, str | None]:
 _DIMS = Option("dims", "axes", lambda run: 2,
                choices=lambda run: [("2-D", 2), ("3-D", 3)] if run.trace.state_size >= 3
                else [("2-D", 2)], tip="draw the leading 2 or 3 components")
-_COLOR = Option("color_by", "colour by", lambda run: "time",
-                choices=lambda run: [("time", "time"), ("sample", "sample")]
-                + ([("label", "label")] if run.labels is not None else []))
+_COLOR = Option("color_by", "draw", lambda run: "means" if _task_labels(run) is not None
+                else "time",
+                choices=lambda run: ([("condition means", "means"), ("trials by label", "label")]
+                                     if _task_labels(run) is not None else [])
+                + [("trials by time", "time"), ("trials by sample", "sample")],
+                tip="the mean trajectory of each label value, or every trajectory coloured "
+                    "by its label, its step or its sample; over means aligned to onsets the "
+                    "step window counts from the onset")
 
 register(Analysis(
     "spectra", "Spectra", _draw_spectra,
@@ -307,6 +338,7 @@ register(Analysis(
 register(Analysis(
     "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
     uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims, per_run=True,
+    prepare=_pca_labels,
     overlay_row=True, run_title=lambda r: f"PR {r.participation_ratio:.1f}"))
 register(Analysis(
     "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
