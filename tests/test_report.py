@@ -298,3 +298,51 @@ def test_report_without_task_still_diagnoses_and_rejects_bad_task(results, tmp_p
         write_report(results, tmp_path / "x.html", task={"other": {"accuracy": 0.5}})
     with pytest.raises(TypeError, match="task must be a mapping"):
         write_report(results, tmp_path / "x.html", task=[0.5])
+
+
+def test_key_figure_table_gives_intervals_and_says_what_is_noise(tmp_path):
+    x = np.random.default_rng(3).standard_normal((12, 30, 3)).astype(np.float32)
+    runs = {"a": _module(torch.nn.RNN, 5, 1), "a again": _module(torch.nn.RNN, 5, 1),
+            "b": _module(torch.nn.LSTM, 4, 2)}
+    comp = compare_runs(runs, x, which=["lyapunov", "pca"])
+    path = write_report(comp, tmp_path / "cmp.html")
+    page = path.read_text(encoding="utf-8")
+    table = page[page.index('id="key-figures"'):]
+    table = table[:table.index("</section>")]
+    t = comp.table
+    from hiddenlens._analyses.figures import format_figure
+
+    for n in runs:
+        lo, hi = t.loc[n, "lyapunov_max low"], t.loc[n, "lyapunov_max high"]
+        assert (f"[{format_figure('lyapunov_max', lo)}, "
+                f"{format_figure('lyapunov_max', hi)}]") in table
+    # the same weights: every difference is zero and within noise, said in words
+    assert t.loc["a again", "\u0394 participation_ratio within noise"] is True
+    assert "(within noise)" in table and "90% bootstrap intervals" in table
+    doc = json.loads(path.with_suffix(".json").read_text())
+    assert doc["comparison"]["within_noise"]["a again"]["lyapunov_max"] is True
+    assert doc["comparison"]["within_noise"]["b"]["lyapunov_max"] == comp.noise(
+        "lyapunov_max", "b")
+    assert_allclose(doc["runs"]["b"]["intervals"]["figures"]["lyapunov_max"],
+                    [t.loc["b", "lyapunov_max low"], t.loc["b", "lyapunov_max high"]])
+
+
+def test_over_training_section_from_a_monitor(results, inputs, tmp_path):
+    import pandas as pd
+
+    from hiddenlens import Monitor
+    from hiddenlens._faces.timeline_report import timeline_section
+    from hiddenlens._training.timeline import as_timeline
+
+    mon = Monitor(inputs, figures=["lyapunov_max"])
+    mon._rows = [{"step": s, "figure": "lyapunov_max", "value": -0.1 * s, "low": -0.1 * s - 0.05,
+                  "high": -0.1 * s + 0.05} for s in (0, 50, 100)]
+    path = write_report(results, tmp_path / "r.html", timeline=mon)
+    page = path.read_text(encoding="utf-8")
+    assert 'href="#over-training"' in page and timeline_section(as_timeline(mon), heading=3) \
+        in page
+    doc = json.loads(path.with_suffix(".json").read_text())
+    assert pd.DataFrame(doc["runs"]["model"]["timeline"]["rows"]).value.tolist() == \
+        [0.0, -5.0, -10.0]
+    with pytest.raises(ValueError, match="not in the report"):
+        write_report(results, tmp_path / "r2.html", timeline={"other": mon})

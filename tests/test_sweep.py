@@ -57,6 +57,26 @@ def test_gain_sweep_on_dask_crosses_zero_near_one_and_matches_local():
     plt.close("all")
 
 
+def test_dask_engine_starts_beside_a_busy_default_port():
+    pytest.importorskip("dask.distributed")
+    import socket
+    import warnings
+
+    # another program holding 8787, dask's default HTTP port: the sweep must neither fail nor
+    # warn (warnings are errors here)
+    with socket.socket() as sock:
+        try:
+            sock.bind(("0.0.0.0", 8787))
+            sock.listen()
+        except OSError:
+            pass  # already held by someone else: the same situation
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            res = hl.sweep(_runs()[:2], INPUTS[:, :40], engine="dask",
+                           figures=["lyapunov_max"], n_boot=10, progress=False)
+    assert res.table.error.isna().all()
+
+
 def test_failing_run_is_reported_in_its_row():
     runs = _runs()[:2]
     runs.append({"name": "broken", "factory": "torch.nn:RNN", "kwargs": runs[0]["kwargs"],

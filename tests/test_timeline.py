@@ -78,3 +78,46 @@ def test_cli_writes_an_escaped_self_contained_page(tmp_path, capsys):
     assert main(["timeline", "--model", "no_such_mod:f", "--checkpoints", str(ck),
                  "--inputs", str(tmp_path / "x.npy")]) == 1
     assert "no_such_mod" in capsys.readouterr().err
+
+
+def test_report_reads_a_checkpoint_folder_as_one_run_over_time(tmp_path, capsys):
+    import json
+
+    ck = tmp_path / "gru-run"
+    ck.mkdir()
+    s = _states()
+    # saved out of order; the report must analyse the last in training order (gain 1.5)
+    torch.save(s[2], ck / "step_300.pt")
+    torch.save(s[0], ck / "step_100.pt")
+    torch.save(s[1], ck / "step_200.pt")
+    x = sl.make_inputs(4, 40, seed=1)
+    np.save(tmp_path / "x.npy", x)
+    out = tmp_path / "rep" / "report.html"
+    assert main(["report", "--model", FACTORY, "--checkpoints", str(ck), "--inputs",
+                 str(tmp_path / "x.npy"), "--analyses", "lyapunov", "-o", str(out), "-q"]) == 0
+    page = out.read_text()
+    assert 'id="over-training"' in page and 'href="#over-training"' in page
+    section = page[page.index('id="over-training"'):]
+    section = section[:section.index("</section>")]
+    # the page of its own draws the same charts: the drawing is shared, not copied
+    tl = hl.timeline(ck, FACTORY, x, progress=False)
+    from hiddenlens._faces.timeline_report import timeline_section
+
+    assert timeline_section(tl, heading=3) in section
+    assert section.count("<svg") == len(tl.figures)
+    assert "step_100.pt" in section and "do not cover a change of input distribution" in section
+    doc = json.loads(out.with_suffix(".json").read_text())
+    run = doc["runs"]["gru-run"]
+    assert [r["step"] for r in run["timeline"]["rows"]][::len(tl.figures)] == [100, 200, 300]
+    # the run analysed in full is the last checkpoint: the library's estimate of that net
+    model = sl.make_tanh_rnn()
+    model.load_state_dict(s[2])
+    ref = hl.run_analyses(model, x, which=["lyapunov"])
+    assert run["key_figures"]["lyapunov_max"] == pytest.approx(
+        hl.key_figures(ref)["lyapunov_max"], rel=1e-6)
+    assert main(["report", "--model", FACTORY, "--checkpoints", str(tmp_path / "none"),
+                 "-o", str(tmp_path / "r2")]) == 1
+    assert "not a folder" in capsys.readouterr().err
+    with pytest.raises(SystemExit):  # argparse: one of --weights, --checkpoints
+        main(["report", "--model", FACTORY, "--checkpoints", str(ck), "--weights", "a.pt"])
+    assert "not allowed with" in capsys.readouterr().err

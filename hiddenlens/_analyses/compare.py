@@ -13,11 +13,12 @@ from .._core.registry import analyses, analysis_spec
 from .._core.results import frozen_mapping, readonly
 from .._core.systems import RecurrentSystem
 from .._core.trace import Trace
+from .bootstrap import FigureIntervals, figure_intervals, within_noise
 from .figures import figure_rows, key_figures, summary_sentence
 from .runner import AnalysisResults, ModelLike, Sequences, run_analyses
 
 __all__ = ["RunComparison", "compare_runs", "comparison_of", "figure_table", "linear_cka",
-           "plot_overlay", "plot_cka"]
+           "plot_overlay", "plot_cka", "check_intervals", "run_intervals"]
 
 
 # ---------------------------------------------------------------------- linear CKA
@@ -118,6 +119,14 @@ class RunComparison:
         Per run, the key figures as a dict.
     cka_parts : str
         Which states entered CKA: ``"output"`` (each run's top-layer h) or ``"all"``.
+    intervals : Mapping[str, FigureIntervals] or None
+        Per run, the intervals of its key figures (see :func:`hiddenlens.figure_intervals`);
+        None when the comparison was made with ``intervals=False``. With intervals the
+        table also holds ``"<figure> low"`` and ``"<figure> high"`` after each figure that has
+        one, and ``"Δ <figure> within noise"`` after its difference: True when the paired
+        bootstrap interval of the difference from the first run contains 0 (see
+        :func:`hiddenlens.within_noise`), False when it does not, None where no interval could
+        be formed (and for the first run).
     """
 
     names: tuple[str, ...]
@@ -126,9 +135,12 @@ class RunComparison:
     cka: np.ndarray
     figures: Mapping[str, dict]
     cka_parts: str = "output"
+    intervals: Mapping[str, FigureIntervals] | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "names", tuple(self.names))
+        if self.intervals is not None:
+            object.__setattr__(self, "intervals", frozen_mapping(self.intervals))
         object.__setattr__(self, "cka", readonly(self.cka, dtype=np.float64))
         object.__setattr__(self, "results", frozen_mapping(self.results))
         object.__setattr__(self, "figures", frozen_mapping(self.figures))
@@ -137,6 +149,18 @@ class RunComparison:
     def traces(self) -> dict[str, Trace]:
         """Per run, the trace recorded on the shared inputs."""
         return {n: self.results[n].trace for n in self.names}
+
+    def noise(self, figure: str, run: str) -> bool | None:
+        """Whether ``run``'s difference from the first run in ``figure`` is within noise.
+
+        None when the comparison has no intervals, for the first run, or where no interval
+        of the difference could be formed.
+        """
+        if run not in self.names:
+            raise KeyError(f"no run {run!r}; the runs are {', '.join(self.names)}")
+        if self.intervals is None or run == self.names[0]:
+            return None
+        return within_noise(self.intervals[self.names[0]], self.intervals[run], figure)
 
     def summaries(self) -> dict[str, str]:
         """Per run, the key figures in plain words (see :func:`summary_sentence`)."""
@@ -189,6 +213,7 @@ def compare_runs(
     cka_parts: str = "output",
     on_error: str = "raise",
     context: Mapping[str, Any] | None = None,
+    intervals: bool | Mapping[str, Any] = True,
 ) -> RunComparison:
     """Analyse several runs on the same inputs and put their key figures side by side.
 
@@ -207,19 +232,34 @@ def compare_runs(
     cka_parts : {"output", "all"}, default "output"
         States entering CKA: each run's top-layer hidden state, or its whole flat state
         (including LSTM cell states).
+    intervals : bool or Mapping, default True
+        Put intervals on the key figures and mark each difference from the first run as
+        within noise or not (see :class:`RunComparison`). True: bootstrap over the B input
+        sequences at level 0.9 with 200 resamples, from the recordings already made (array
+        arithmetic, no analysis is rerun); the figures of the memory and fixed-point analyses,
+        which draw their own inputs, get no interval. A mapping sets ``level``, ``n_boot``
+        and ``n_draws`` (reruns of those two analyses with other seeds, which costs about
+        ``n_draws`` times their time), e.g. ``{"level": 0.95, "n_draws": 4}``. False: no
+        intervals.
 
     Returns
     -------
     RunComparison
-        ``.table``, ``.results``, ``.cka``, ``.plot(analysis)``, ``.to_frame()``.
+        ``.table``, ``.results``, ``.cka``, ``.intervals``, ``.plot(analysis)``,
+        ``.to_frame()``.
 
     Notes
     -----
+    Intervals say how much a figure moves with another batch of sequences from the same
+    distribution as ``inputs``; they do not cover other inputs. With fewer than about 10
+    sequences they are too narrow.
+
     CKA compares the runs' representations on these inputs only; other inputs can rank the
     runs differently.
     """
     if cka_parts not in ("output", "all"):
         raise ValueError(f"cka_parts must be 'output' or 'all', got {cka_parts!r}")
+    interval_options = check_intervals(intervals)
     systems = check_runs(runs)
     names = list(systems)
     which_list = None if which is None else ([which] if isinstance(which, str) else list(which))
@@ -236,7 +276,43 @@ def compare_runs(
     finally:
         if bar is not None:
             bar.close()
-    return comparison_of(results, systems, cka_parts=cka_parts)
+    return comparison_of(results, systems, cka_parts=cka_parts, intervals=interval_options,
+                         seed=seed, options=options)
+
+
+def check_intervals(intervals: Any) -> dict[str, Any] | None:
+    """The ``intervals=`` option as keyword arguments of the intervals (None: no intervals)."""
+    if intervals is False or intervals is None:
+        return None
+    if intervals is True:
+        return {}
+    if not isinstance(intervals, Mapping):
+        raise TypeError(f"intervals must be True, False or a mapping of level, n_boot, "
+                        f"n_draws (e.g. {{'level': 0.95}}), got {type(intervals).__name__}")
+    unknown = set(intervals) - {"level", "n_boot", "n_draws"}
+    if unknown:
+        raise ValueError(f"intervals has unknown keys {sorted(unknown)}; expected level, "
+                         "n_boot, n_draws")
+    return dict(intervals)
+
+
+def run_intervals(results: Mapping[str, AnalysisResults],
+                  systems: Mapping[str, RecurrentSystem], *, seed: int = 0,
+                  options: Mapping[str, Mapping[str, Any]] | None = None, level: float = 0.9,
+                  n_boot: int = 200, n_draws: int = 0) -> dict[str, FigureIntervals]:
+    """Per run, the intervals of its key figures, resampled with the same indices (paired)."""
+    from .bootstrap import bootstrap_figures
+
+    out = {}
+    for n, res in results.items():
+        if n_draws:
+            x = np.array(res.trace.inputs)  # a writable copy: the trace's array is read-only
+            out[n] = bootstrap_figures(systems[n], x, options=options,
+                                       level=level, n_boot=n_boot, n_draws=n_draws, seed=seed,
+                                       results=res)
+        else:
+            out[n] = figure_intervals(res, level=level, n_boot=n_boot, seed=seed)
+    return out
 
 
 def check_runs(runs: Mapping[str, ModelLike], **wrap_options: Any
@@ -287,7 +363,9 @@ class _Ticks:
 
 def comparison_of(results: Mapping[str, AnalysisResults],
                   systems: Mapping[str, RecurrentSystem], *,
-                  cka_parts: str = "output") -> RunComparison:
+                  cka_parts: str = "output", intervals: bool | Mapping[str, Any] = True,
+                  seed: int = 0, options: Mapping[str, Mapping[str, Any]] | None = None
+                  ) -> RunComparison:
     """The comparison of runs already analysed: key-figure table, Δ columns and CKA.
 
     Parameters
@@ -298,7 +376,14 @@ def comparison_of(results: Mapping[str, AnalysisResults],
         Run name -> the system the results came from.
     cka_parts : {"output", "all"}, default "output"
         As in :func:`compare_runs`.
+    intervals : bool or Mapping, default True
+        As in :func:`compare_runs`.
+    seed : int, default 0
+        Seed of the resampling (and of the reruns when ``n_draws`` is given).
+    options : Mapping, optional
+        Analysis options of the reruns when ``n_draws`` is given.
     """
+    interval_options = check_intervals(intervals)
     names = [str(n) for n in results]
     cka = np.eye(len(names))
     states = {}
@@ -316,14 +401,24 @@ def comparison_of(results: Mapping[str, AnalysisResults],
             cka[i, j] = cka[j, i] = v
 
     figures = {n: key_figures(results[n]) for n in names}
-    table = figure_table(names, systems, figures)
+    fis = None
+    if interval_options is not None:
+        fis = run_intervals({n: results[n] for n in names}, systems, seed=seed,
+                            options=options, **interval_options)
+    table = figure_table(names, systems, figures, intervals=fis)
     return RunComparison(names=tuple(names), table=table, results=dict(results), cka=cka,
-                         figures=figures, cka_parts=cka_parts)
+                         figures=figures, cka_parts=cka_parts, intervals=fis)
 
 
 def figure_table(names: Sequence[str], systems: Mapping[str, RecurrentSystem],
-                 figures: Mapping[str, Mapping[str, Any]]):
-    """One row per run: kind, state size, then each figure and its ``"Δ <figure>"``."""
+                 figures: Mapping[str, Mapping[str, Any]],
+                 intervals: Mapping[str, FigureIntervals] | None = None):
+    """One row per run: kind, state size, then each figure and its ``"Δ <figure>"``.
+
+    With ``intervals`` (run name -> FigureIntervals), a figure with an interval in some run is
+    followed by ``"<figure> low"`` and ``"<figure> high"``, and its difference by
+    ``"Δ <figure> within noise"`` (True, False or None).
+    """
     import pandas as pd
 
     rows: dict[str, dict[str, Any]] = {
@@ -332,9 +427,18 @@ def figure_table(names: Sequence[str], systems: Mapping[str, RecurrentSystem],
     for fr in figure_rows({n: figures[n] for n in names}):
         for n in names:
             rows[n][fr.key] = fr.values[n]
+            bounded = intervals is not None and fr.numeric and any(
+                _has_interval(intervals[m], fr.key) for m in names)
+            if bounded:
+                fi = intervals[n]
+                lo, hi = (fi[fr.key][1:] if fr.key in fi else (np.nan, np.nan))
+                rows[n][f"{fr.key} low"], rows[n][f"{fr.key} high"] = lo, hi
             if fr.numeric:
                 d = fr.deltas[n] if n != names[0] else (0 if fr.values[n] is not None else None)
                 rows[n][f"\u0394 {fr.key}"] = np.nan if d is None else d
+            if bounded:
+                rows[n][f"\u0394 {fr.key} within noise"] = None if n == names[0] else \
+                    within_noise(intervals[names[0]], intervals[n], fr.key)
         if fr.numeric and all(_is_int(v) for v in fr.values.values()):
             counts.append(fr.key)
     table = pd.DataFrame([rows[n] for n in names], index=pd.Index(names, name="run"))
@@ -342,6 +446,10 @@ def figure_table(names: Sequence[str], systems: Mapping[str, RecurrentSystem],
         table[k] = table[k].astype(int)
         table[f"\u0394 {k}"] = table[f"\u0394 {k}"].astype(int)
     return table
+
+
+def _has_interval(fi: FigureIntervals, figure: str) -> bool:
+    return figure in fi and bool(np.isfinite(fi[figure][1]))
 
 
 def _is_int(v: Any) -> bool:

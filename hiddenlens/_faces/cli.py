@@ -52,8 +52,14 @@ def build_parser() -> argparse.ArgumentParser:
                      help="importable factory that builds the model with no arguments, "
                           "e.g. mypackage.nets:make_model; it runs as Python code, so name "
                           "only code you trust (the working directory is searched for it)")
-    rep.add_argument("--weights", required=True, nargs="+", metavar="FILE",
-                     help="one or more state_dict files (torch.save(model.state_dict(), ...))")
+    what = rep.add_mutually_exclusive_group(required=True)
+    what.add_argument("--weights", nargs="+", metavar="FILE",
+                      help="one or more state_dict files (torch.save(model.state_dict(), ...))")
+    what.add_argument("--checkpoints", metavar="DIR",
+                      help="a folder of checkpoints of one run (.pt, .pth, .ckpt, .bin), read "
+                           "as one run over time: ordered by the step or epoch stored in each "
+                           "or in its file name, the last one analysed in full and the key "
+                           "figures of all of them shown in an 'Over training' section")
     rep.add_argument("--names", nargs="+", metavar="NAME",
                      help="a name per weights file (default: the file names without suffix)")
     src = rep.add_mutually_exclusive_group()
@@ -481,7 +487,8 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
                 seed: int, keep_going: bool, quiet: bool, title: str | None,
                 source: str, options: dict[str, dict[str, Any]] | None = None,
                 trace: Any = None, context: dict[str, Any] | None = None,
-                task: dict[str, dict[str, Any]] | None = None) -> Path:
+                task: dict[str, dict[str, Any]] | None = None,
+                timeline: dict[str, Any] | None = None) -> Path:
     from .._analyses.compare import compare_runs
     from .._analyses.figures import describe_inputs
     from .._analyses.runner import run_analyses
@@ -509,6 +516,11 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
         kwargs = {}
     if task:
         kwargs["task"] = task
+    if timeline:
+        kwargs["timeline"] = timeline
+        notes.append(f"{next(iter(timeline))}: the last checkpoint in training order is "
+                     "analysed in full; the 'Over training' section shows the key figures of "
+                     "every checkpoint on the same inputs.")
     say("writing the report")
     path = write_report(results, out, title=title, inputs_description=description,
                         notes=notes, progress=say, **kwargs)
@@ -516,10 +528,50 @@ def _run_report(runs: dict[str, Any], inputs: Any, *, out: Path, which: list[str
     return path
 
 
+def _checkpoint_timeline(args: argparse.Namespace, inputs: Any) -> tuple[Any, Any, str]:
+    """The timeline of ``--checkpoints`` (on ``inputs`` or the probe) and its last good file."""
+    from .._core.record import as_system
+    from .._training.timeline import timeline
+
+    if args.submodule or args.cell or args.front:
+        raise CommandError("--checkpoints reads the whole model the factory builds; "
+                           "--submodule, --cell and --front apply to --weights only")
+    folder = Path(args.checkpoints)
+    if not folder.is_dir():
+        raise CommandError(f"--checkpoints {args.checkpoints!r} is not a folder; pass the "
+                           "folder holding one run's checkpoint files")
+    if inputs is None:
+        n, t = args.probe or DEFAULT_PROBE
+        inputs = _probe(n, t, as_system(build_model(args.model)).input_size, args.seed)
+    if not args.quiet:
+        print(f"{PROG}: reading the checkpoints in {folder} in training order", file=sys.stderr)
+    tl = timeline(folder, args.model, inputs, seed=args.seed, progress=not args.quiet)
+    good = [c for c, e in zip(tl.checkpoints, tl.errors, strict=True) if e is None]
+    if not good:
+        raise CommandError(f"no checkpoint in {str(folder)!r} could be read and loaded: "
+                           f"{tl.errors[0]}")
+    if not args.quiet:
+        for c, e in zip(tl.checkpoints, tl.errors, strict=True):
+            if e is not None:
+                print(f"note: {c}: left out of the timeline: {e}", file=sys.stderr)
+    return tl, inputs, str(folder / good[-1])
+
+
 def _cmd_report(args: argparse.Namespace) -> int:
     which = _analyses(args.analyses)
     out = _output_paths(args.output, args.force)
-    weights = list(args.weights)
+    inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
+    over = None
+    if args.checkpoints is not None:
+        load_factory(args.model)  # a clear message for a bad --model before any work
+        if args.names is not None and len(args.names) != 1:
+            raise CommandError("--checkpoints is one run: give one name with --names")
+        over, inputs, last = _checkpoint_timeline(args, inputs)
+        weights = [last]
+        if args.names is None:
+            args.names = [Path(args.checkpoints).resolve().name or Path(last).stem]
+    else:
+        weights = list(args.weights)
     if args.names is not None:
         if len(args.names) != len(weights):
             raise CommandError(f"--names has {len(args.names)} names for {len(weights)} weights "
@@ -529,7 +581,6 @@ def _cmd_report(args: argparse.Namespace) -> int:
         names = [Path(w).stem for w in weights]
     if len(set(names)) != len(names):
         raise CommandError(f"run names must be distinct, got {', '.join(names)}; pass --names")
-    inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
     context = _context(args)
     runs: dict[str, Any] = {}
     for name, w in zip(names, weights, strict=True):
@@ -537,9 +588,10 @@ def _cmd_report(args: argparse.Namespace) -> int:
     from .._core.record import as_system
 
     input_size = as_system(next(iter(runs.values()))).input_size
-    if inputs is None:
+    if inputs is None or (over is not None and not args.inputs):
         n, t = args.probe or DEFAULT_PROBE
-        inputs = _probe(n, t, input_size, args.seed)
+        if inputs is None:
+            inputs = _probe(n, t, input_size, args.seed)
         source = (f"built-in probe: i.i.d. standard-normal inputs, {n} x {t} steps, "
                   f"seed {args.seed}")
     else:
@@ -551,7 +603,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
     options, trace = _user_options(args, runs, inputs)
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
                        keep_going=args.keep_going, quiet=args.quiet, title=args.title,
-                       source=source, options=options, trace=trace, context=context)
+                       source=source, options=options, trace=trace, context=context,
+                       timeline={names[0]: over} if over is not None else None)
     print(path)
     return 0
 

@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from .._analyses.bootstrap import FigureIntervals, figure_intervals, within_noise
 from .._analyses.compare import RunComparison, plot_cka, plot_overlay
 from .._analyses.diagnosis import Diagnosis, describe_figure, diagnose
 from .._analyses.figures import (
@@ -213,8 +214,10 @@ def report_data(results_or_runs: AnalysisResults | RunComparison
         ``inputs`` (``description``, ``shape``), ``analyses`` (names shown), ``runs``: per run
         ``model`` (class, kind, sizes, fingerprint), ``summary`` (a sentence),
         ``key_figures``, ``arrays`` (see :func:`hiddenlens._analyses.figures.array_summaries`),
-        ``skipped`` (analysis -> reason), ``options``, ``seconds``; and for several runs
-        ``comparison`` with ``names``, ``cka`` (R x R) and ``cka_parts``. Numbers that are not
+        ``skipped`` (analysis -> reason), ``options``, ``seconds``, ``intervals`` (``level``
+        and figure -> [low, high]) where intervals were made; and for several runs
+        ``comparison`` with ``names``, ``cka`` (R x R), ``cka_parts`` and ``within_noise``
+        (run -> figure -> true / false / null, against the first run). Numbers that are not
         finite are written as the strings ``"nan"``, ``"inf"`` and ``"-inf"``.
     """
     runs, comp = _as_runs(results_or_runs, name)
@@ -245,9 +248,16 @@ def report_data(results_or_runs: AnalysisResults | RunComparison
             "options": dict(getattr(res, "options", {}) or {}),
             "seconds": dict(getattr(res, "seconds", {}) or {}),
         }
+    for n, fi in _run_intervals(runs, comp).items():
+        doc["runs"][n]["intervals"] = {"level": fi.level, "figures": {
+            f: [fi.low[i], fi.high[i]] for i, f in enumerate(fi.figures)}}
     if comp is not None:
         doc["comparison"] = {"names": list(comp.names), "cka": comp.cka,
                              "cka_parts": comp.cka_parts}
+        if comp.intervals:
+            doc["comparison"]["within_noise"] = {
+                n: {f: comp.noise(f, n) for f in comp.intervals[n].figures
+                    if f in comp.intervals[comp.names[0]]} for n in comp.names[1:]}
     return _jsonable(doc)
 
 
@@ -262,21 +272,75 @@ def _esc(v: Any) -> str:
     return html.escape(str(v), quote=True)
 
 
-def _figures_table(runs: Mapping[str, Mapping[str, Any]]) -> str:
+def _run_intervals(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None
+                   ) -> dict[str, FigureIntervals]:
+    """The intervals to show: the comparison's, or those of a single run's recording."""
+    if comp is not None:
+        return dict(comp.intervals or {})
+    if len(runs) != 1:
+        return {}
+    name, res = next(iter(runs.items()))
+    if getattr(res, "trace", None) is None:
+        return {}
+    try:
+        return {name: figure_intervals(res)}
+    except (TypeError, ValueError, KeyError):
+        return {}
+
+
+def _with_interval(key: str, value: Any, fi: FigureIntervals | None) -> str:
+    text = format_figure(key, value)
+    if fi is not None and key in fi:
+        _, lo, hi = fi[key]
+        if math.isfinite(lo) and math.isfinite(hi):
+            text += f" [{format_figure(key, lo)}, {format_figure(key, hi)}]"
+    return text
+
+
+def _noise_words(noise: bool | None) -> str:
+    if noise is True:
+        return " (within noise)"
+    if noise is False:
+        return " (beyond noise)"
+    return ""
+
+
+def _figures_table(runs: Mapping[str, Mapping[str, Any]],
+                   intervals: Mapping[str, FigureIntervals] | None = None) -> str:
     rows = figure_rows({n: key_figures(r) for n, r in runs.items()})
     if not rows:
         return "<p>No key figures: no analysis ran.</p>"
+    intervals = intervals or {}
     names = list(runs)
     others = names[1:]
+    paired = bool(others) and all(n in intervals for n in names)
     head = ('<tr><th class="text">figure</th>' + "".join(f"<th>{_esc(n)}</th>" for n in names)
             + "".join(f"<th>\u0394 {_esc(n)}</th>" for n in others) + "</tr>")
     body = []
     for fr in rows:
-        cells = "".join(f"<td>{_esc(format_figure(fr.key, fr.values[n]))}</td>" for n in names)
-        cells += "".join(f"<td>{_esc(format_delta(fr.key, fr.deltas[n]))}</td>" for n in others)
+        cells = "".join(
+            f"<td>{_esc(_with_interval(fr.key, fr.values[n], intervals.get(n)))}</td>"
+            for n in names)
+        for n in others:
+            text = format_delta(fr.key, fr.deltas[n])
+            if paired and fr.numeric and fr.deltas[n] is not None:
+                text += _noise_words(within_noise(intervals[names[0]], intervals[n], fr.key))
+            cells += f"<td>{_esc(text)}</td>"
         body.append(f'<tr><td class="text">{_esc(fr.text)}</td>{cells}</tr>')
-    note = (f"<p class=\"meta\">\u0394 columns: difference from the first run, "
-            f"<b>{_esc(names[0])}</b>.</p>") if others else ""
+    notes = []
+    if others:
+        notes.append(f"\u0394 columns: difference from the first run, <b>{_esc(names[0])}</b>.")
+    if intervals:
+        level = next(iter(intervals.values())).level
+        notes.append(
+            f"Brackets: {level:.0%} bootstrap intervals over the input sequences (figures of "
+            "analyses that draw their own inputs have none unless reruns were asked for).")
+        if paired:
+            notes.append(
+                "A difference is <i>within noise</i> when the paired bootstrap interval of the "
+                "difference contains zero, <i>beyond noise</i> when it does not; both speak of "
+                "these inputs only, not of another input distribution.")
+    note = "".join(f'<p class="meta">{t}</p>' for t in notes)
     return f"<table>{head}{''.join(body)}</table>{note}"
 
 
@@ -425,10 +489,40 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
     return out, n_img
 
 
+def _check_timelines(timeline: Any, runs: Mapping[str, Any]) -> dict[str, Any]:
+    """``timeline`` as run name -> Timeline (one Timeline, Monitor or table: the first run's)."""
+    from .._training.timeline import as_timeline
+
+    if timeline is None:
+        return {}
+    if isinstance(timeline, Mapping):
+        unknown = [str(k) for k in timeline if k not in runs]
+        if unknown:
+            raise ValueError(f"timeline names runs that are not in the report: "
+                             f"{', '.join(unknown)}; the runs are {', '.join(runs)}")
+        return {str(k): as_timeline(v) for k, v in timeline.items() if v is not None}
+    return {next(iter(runs)): as_timeline(timeline)}
+
+
+def _timeline_section(timelines: Mapping[str, Any], multi: bool) -> str:
+    from .timeline_report import timeline_section
+
+    parts = ['<section id="over-training"><h2>Over training</h2>']
+    for n, tl in timelines.items():
+        where = (f"{len(tl.checkpoints)} checks from step {int(tl.x[0])} to {int(tl.x[-1])}"
+                 if len(tl.checkpoints) else "no checks")
+        parts.append((f"<h3>{_esc(n)}</h3>" if multi or len(timelines) > 1 else "")
+                     + f"<p>Key figures of <b>{_esc(n)}</b> against training step: {where}; "
+                     "bands are the intervals recorded at each check.</p>")
+        parts.append(timeline_section(tl, heading=4 if multi or len(timelines) > 1 else 3))
+    parts.append("</section>")
+    return "".join(parts)
+
+
 def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | None, *,
                 title: str, inputs_description: str | None, notes: Iterable[str],
-                progress: Any, task: Mapping[str, Mapping[str, Any]] | None = None
-                ) -> tuple[str, int]:
+                progress: Any, task: Mapping[str, Mapping[str, Any]] | None = None,
+                timelines: Mapping[str, Any] | None = None) -> tuple[str, int]:
     names = list(runs)
     multi = len(names) > 1
     skipped = {n: dict(getattr(r, "skipped", {}) or {}) for n, r in runs.items()}
@@ -472,7 +566,7 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                + "</section>")
     # key figures
     out.append('<section id="key-figures"><h2>Key figures</h2>'
-               f"{_figures_table(runs)}</section>")
+               f"{_figures_table(runs, _run_intervals(runs, comp))}</section>")
     # similarity
     if comp is not None and multi:
         width = max(len(n) for n in comp.names)
@@ -493,6 +587,9 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                    + "; the values are in the table above")
             + "</section>"
         )
+    # over training
+    if timelines:
+        out.append(_timeline_section(timelines, multi))
     # analyses
     for spec in registered():
         section, n = _analysis_section(spec, runs, skipped, progress)
@@ -508,6 +605,8 @@ def _build_html(runs: Mapping[str, Mapping[str, Any]], comp: RunComparison | Non
                ("key-figures", "Key figures")]
     if comp is not None and multi:
         entries.append(("similarity", "Representational similarity"))
+    if timelines:
+        entries.append(("over-training", "Over training"))
     entries += [(f"analysis-{spec.name}", spec.title) for spec in registered()
                 if any(f'<section id="analysis-{_esc(spec.name)}">' in o for o in out)]
     entries += [("cautions", "Reading these numbers with care"), ("options", "Options used")]
@@ -527,6 +626,7 @@ def write_report(
     json_path: str | os.PathLike | bool = True,
     progress: Any = None,
     task: Mapping[str, Mapping[str, Any]] | None = None,
+    timeline: Any = None,
 ) -> Path:
     """Write a self-contained HTML report and (by default) a JSON file of its figures.
 
@@ -557,6 +657,11 @@ def write_report(
         ``r2``, ``n_eval``, ``horizon``: see :func:`hiddenlens._analyses.diagnosis.diagnose`); for a
         single run one metrics mapping may be given directly. The diagnosis at the top of the
         page reads each run's figures against them.
+    timeline : Timeline, Monitor, DataFrame or Mapping, optional
+        Key figures over training (from :func:`hiddenlens.timeline`, a
+        :class:`hiddenlens.Monitor` or its ``.timeline`` table) shown in an "Over training"
+        section: one chart per figure against step, with its interval band, and a table. One
+        timeline belongs to the first run; a mapping gives run name -> timeline.
 
     Returns
     -------
@@ -570,6 +675,7 @@ def write_report(
     """
     runs, comp = _as_runs(results_or_runs, name)
     task_map = _check_task_map(task, runs)
+    timelines = _check_timelines(timeline, runs)
     path = Path(path)
     title = title or _default_title(runs)
     plt = sys.modules.get("matplotlib.pyplot")
@@ -577,7 +683,7 @@ def write_report(
     try:
         page, _ = _build_html(runs, comp, title=title, inputs_description=inputs_description,
                               notes=[notes] if isinstance(notes, str) else list(notes),
-                              progress=progress, task=task_map)
+                              progress=progress, task=task_map, timelines=timelines)
     finally:
         _close_stray_pyplot_figures(before)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -588,6 +694,9 @@ def write_report(
                           inputs_description=inputs_description)
         for n, d in _diagnoses(runs, task_map).items():
             doc["runs"][n]["diagnosis"] = _jsonable(d.to_dict())
+        for n, tl in timelines.items():
+            doc["runs"][n]["timeline"] = _jsonable(
+                {"level": tl.level, "rows": tl.table.to_dict(orient="records")})
         _atomic_write(jp, json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
     return path
 

@@ -10,9 +10,9 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["write_timeline_page"]
+__all__ = ["write_timeline_page", "timeline_section", "CAUTION"]
 
-_CAUTION = ("Figures are finite-time estimates on one fixed probe batch; the bands are "
+CAUTION = ("Figures are finite-time estimates on one fixed probe batch; the bands are "
             "bootstrap intervals over its sequences and do not cover a change of input "
             "distribution. Exponents and rates of a model in training change with the inputs "
             "as well as with the weights.")
@@ -53,24 +53,21 @@ def _svg(x: np.ndarray, v: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> str:
     return "".join(parts)
 
 
-def write_timeline_page(result: Any, path: str | os.PathLike, *, title: str = "Over training",
-                        source: str = "") -> Path:
-    """Write ``result`` (a :class:`hiddenlens.Timeline`) as one HTML file; returns its path."""
+def timeline_section(result: Any, *, heading: int = 2) -> str:
+    """The caution, one chart per figure and the table of ``result`` (a Timeline), as HTML.
+
+    ``heading`` is the level of the figures' headings (2 on the page of its own, 3 inside a
+    section of the main report).
+    """
     from .summary import FIGURES, format_figure
 
-    p = Path(path)
-    if p.suffix != ".html":
-        p = p / "timeline.html"
-    p.parent.mkdir(parents=True, exist_ok=True)
     e = html.escape
     x = np.asarray(result.x, dtype=float)
-    body = [f"<h1>{e(title)}</h1>"]
-    if source:
-        body.append(f"<p>{e(source)}</p>")
-    body.append(f'<p class="caution">{e(_CAUTION)}</p>')
+    body = [f'<p class="caution">{e(CAUTION)}</p>']
     for j, f in enumerate(result.figures):
         label = FIGURES.get(f, (f,))[0]
-        body.append(f"<h2>{e(label)} <small>({e(f)}, {result.level:.0%} band)</small></h2>")
+        body.append(f"<h{heading}>{e(label)} <small>({e(f)}, {result.level:.0%} band)</small>"
+                    f"</h{heading}>")
         body.append(_svg(x, result.values[:, j], result.low[:, j], result.high[:, j]))
     head = "".join(f"<th>{e(c)}</th>" for c in ["checkpoint", "step", *result.figures, "error"])
     rows = []
@@ -83,6 +80,21 @@ def write_timeline_page(result: Any, path: str | os.PathLike, *, title: str = "O
         cells.append(e(result.errors[i] or ""))
         rows.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
     body.append(f"<table><tr>{head}</tr>{''.join(rows)}</table>")
+    return "".join(body)
+
+
+def write_timeline_page(result: Any, path: str | os.PathLike, *, title: str = "Over training",
+                        source: str = "") -> Path:
+    """Write ``result`` (a :class:`hiddenlens.Timeline`) as one HTML file; returns its path."""
+    p = Path(path)
+    if p.suffix != ".html":
+        p = p / "timeline.html"
+    p.parent.mkdir(parents=True, exist_ok=True)
+    e = html.escape
+    body = [f"<h1>{e(title)}</h1>"]
+    if source:
+        body.append(f"<p>{e(source)}</p>")
+    body.append(timeline_section(result, heading=2))
     style = ("body{font-family:sans-serif;max-width:900px;margin:2em auto}"
              "table{border-collapse:collapse;font-size:12px}td,th{border:1px solid #ccc;"
              "padding:2px 6px}.caution{background:#fff5e6;padding:6px}")

@@ -8,8 +8,13 @@ from typing import Any
 import numpy as np
 
 
-def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None = None):
-    """Draw a (step, figure, value, low, high) table: one panel per figure, against step."""
+def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None = None,
+                  label: str | None = None, color: Any = None, bands: bool = True):
+    """Draw a (step, figure, value, low, high) table: one panel per figure, against step.
+
+    ``ax`` may hold one Axes per figure (draw several runs on the same panels, each with its
+    ``label`` and ``color``); ``bands=False`` leaves out the interval bands.
+    """
     import matplotlib.pyplot as plt
 
     names = list(figures) if figures is not None else list(dict.fromkeys(table["figure"]))
@@ -18,13 +23,15 @@ def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None =
                                  sharex=True, squeeze=False)
         axes = list(axes[:, 0])
     else:
-        axes = list(np.atleast_1d(ax))
+        axes = list(np.ravel(np.asarray(ax, dtype=object)))
         if len(axes) != len(names):
             raise ValueError(f"ax must hold one Axes per figure ({len(names)}), got {len(axes)}")
     for a, name in zip(axes, names, strict=True):
         d = table[table["figure"] == name].sort_values("step")
-        a.plot(d["step"], d["value"], marker="o", ms=3)
-        a.fill_between(d["step"], d["low"], d["high"], alpha=0.25)
+        line = a.plot(d["step"], d["value"], marker="o", ms=3, label=label, color=color)[0]
+        if bands:
+            a.fill_between(d["step"], d["low"], d["high"], alpha=0.25,
+                           color=line.get_color())
         a.set_ylabel(name, fontsize=8)
     axes[-1].set_xlabel("training step")
     return axes if len(axes) > 1 else axes[0]

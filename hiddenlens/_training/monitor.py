@@ -284,9 +284,12 @@ class Monitor:
         return m
 
     # ------------------------------------------------------------------ drawing
-    def plot(self, ax: Any = None, *, figures: Sequence[str] | None = None):
-        """Each figure against step with its interval band; one panel per figure."""
-        return plot_timeline(self.timeline, ax=ax, figures=figures)
+    def plot(self, ax: Any = None, *, figures: Sequence[str] | None = None, **kw: Any):
+        """Each figure against step with its interval band; one panel per figure.
+
+        ``label=``, ``color=`` and ``bands=False`` are passed to the drawing.
+        """
+        return plot_timeline(self.timeline, ax=ax, figures=figures, **kw)
 
     def lightning_callback(self):
         """A PyTorch Lightning callback that calls :meth:`step` after every training batch."""
@@ -298,11 +301,15 @@ class Monitor:
                 f"{len({r['step'] for r in self._rows})} checks)")
 
 
-def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None = None):
-    """Draw a (step, figure, value, low, high) table: one panel per figure, against step."""
+def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None = None,
+                  **kw: Any):
+    """Draw a (step, figure, value, low, high) table: one panel per figure, against step.
+
+    Keywords ``label``, ``color`` and ``bands`` as in the plotting layer's ``plot_timeline``.
+    """
     from .._plotting.training import plot_timeline
 
-    return plot_timeline(table, ax, figures=figures)
+    return plot_timeline(table, ax, figures=figures, **kw)
 
 
 def _lightning_callback(monitor: Monitor):

@@ -186,8 +186,10 @@ def _run_dask(specs, args, address, progress):
 
     cluster = None
     if address is None:
+        # ":0": the scheduler's HTTP server (started even without a dashboard) takes a free
+        # port instead of 8787, which another cluster on this machine may hold
         cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                               dashboard_address=None)
+                               dashboard_address=":0")
         client = Client(cluster)
     else:
         client = Client(address)

@@ -19,7 +19,7 @@ import numpy as np
 
 from .monitor import DEFAULT_FIGURES, check_figures, plot_timeline, probe_figures
 
-__all__ = ["timeline", "Timeline", "checkpoint_order", "SUFFIXES"]
+__all__ = ["timeline", "Timeline", "as_timeline", "checkpoint_order", "SUFFIXES"]
 
 SUFFIXES = (".pt", ".pth", ".ckpt", ".bin")
 _STEP = re.compile(r"(?:global_step|step|iter|iteration)[=_\-]?(\d+)", re.IGNORECASE)
@@ -91,12 +91,61 @@ class Timeline:
         """The same as :attr:`table`."""
         return self.table
 
-    def plot(self, ax: Any = None, *, figures: Sequence[str] | None = None):
-        """Each figure against step with its interval band, one panel per figure."""
-        return plot_timeline(self.table, ax=ax, figures=figures)
+    def plot(self, ax: Any = None, *, figures: Sequence[str] | None = None, **kw: Any):
+        """Each figure against step with its interval band, one panel per figure.
+
+        ``ax`` may hold one Axes per figure; ``label=``, ``color=`` and ``bands=False`` are
+        passed to the drawing (several runs on the same panels).
+        """
+        return plot_timeline(self.table, ax=ax, figures=figures, **kw)
 
     def __repr__(self) -> str:
         return f"Timeline({len(self.checkpoints)} checkpoints, {len(self.figures)} figures)"
+
+
+def as_timeline(source: Any, *, level: float | None = None) -> Timeline:
+    """A :class:`Timeline` from a Timeline, a :class:`hiddenlens.Monitor` or a timeline table.
+
+    Parameters
+    ----------
+    source : Timeline, Monitor or pandas.DataFrame
+        A table needs the columns step, figure, value, low, high (as ``Monitor.timeline`` or
+        ``Timeline.table`` give them; ``epoch`` and ``checkpoint`` are used when present).
+    level : float, optional
+        Nominal coverage of the intervals of a table (default: the monitor's, else 0.9).
+    """
+    if isinstance(source, Timeline):
+        return source
+    if hasattr(source, "timeline") and hasattr(source, "figures") \
+            and hasattr(source, "level"):  # a Monitor
+        return as_timeline(source.timeline, level=source.level if level is None else level)
+    if not (hasattr(source, "columns") and hasattr(source, "groupby")):
+        raise TypeError(f"expected a Timeline, a Monitor or a timeline table (a DataFrame with "
+                        f"step, figure, value, low, high), got {type(source).__name__}")
+    need = ["step", "figure", "value", "low", "high"]
+    missing = [c for c in need if c not in source.columns]
+    if missing:
+        raise ValueError(f"the timeline table lacks the columns {missing}; expected "
+                         f"{', '.join(need)} as Monitor.timeline gives them")
+    if len(source) == 0:
+        raise ValueError("the timeline table is empty: nothing was recorded yet")
+    figures = tuple(dict.fromkeys(str(f) for f in source["figure"]))
+    steps = sorted({int(s) for s in source["step"]})
+    where = {s: i for i, s in enumerate(steps)}
+    C, F = len(steps), len(figures)
+    vals, lows, highs = (np.full((C, F), math.nan) for _ in range(3))
+    epochs = np.full(C, -1)
+    names = [f"step {s}" for s in steps]
+    for r in source.itertuples(index=False):
+        i, j = where[int(r.step)], figures.index(str(r.figure))
+        vals[i, j], lows[i, j], highs[i, j] = float(r.value), float(r.low), float(r.high)
+        if "epoch" in source.columns:
+            epochs[i] = int(r.epoch)
+        if "checkpoint" in source.columns:
+            names[i] = str(r.checkpoint)
+    return Timeline(checkpoints=tuple(names), steps=np.array(steps), epochs=epochs,
+                    figures=figures, values=vals, low=lows, high=highs, errors=(None,) * C,
+                    level=0.9 if level is None else float(level))
 
 
 # ---------------------------------------------------------------------- ordering

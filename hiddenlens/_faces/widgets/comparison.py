@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Hashable, Mapping, Sequence
 from concurrent.futures import Executor
 from typing import Any
@@ -25,6 +26,7 @@ from ..._plotting.style import RUN_COLORS
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses, row
 from .jobs import Step
+from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
 
 __all__ = ["Comparison", "compare"]
@@ -48,9 +50,10 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  task: Mapping[str, Mapping[str, Any]] | None = None,
-                 **wrap_options: Any) -> None:
+                 timelines: Any = None, **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
+        checked_timelines = check_timelines(timelines, names)
         if task is not None:
             if not isinstance(task, Mapping) or not all(
                     v is None or isinstance(v, Mapping) for v in task.values()):
@@ -105,9 +108,16 @@ class Comparison(Board):
         title = (f"<div style='font-size:15px'><b>Comparing {len(names)} runs</b> "
                  f"<span style='color:#4a5568'>· {_render.esc(', '.join(names))} · {B} "
                  f"sequence{'s' if B != 1 else ''} × {T} steps</span></div>")
+        #: the "Over training" tab (None without timelines)
+        self.over_training = OverTraining(checked_timelines, self._colors) \
+            if checked_timelines else None
+        extra = [(_TABLE_TAB, table_box)]
+        if self.over_training is not None:
+            extra.append((TAB_TITLE, self.over_training.box))
         self._build(tabs, title=title, background=background, executor=executor,
-                    extra_tabs=[(_TABLE_TAB, table_box)],
-                    shared=[shown_box, self._sample, self._window, self._part])
+                    extra_tabs=extra, shared=[shown_box, self._sample, self._window, self._part])
+        if self.over_training is not None:
+            self.over_training.observe(lambda: self._guard(self.over_training.show))
         for box in self._shown.values():
             box.observe(lambda _: self._guard(self._on_shared), names="value")
 
@@ -199,6 +209,9 @@ class Comparison(Board):
         return []  # compute_all already covers every analysis of every shown run
 
     def _show_extra(self, index: int) -> None:
+        if index == 1 and self.over_training is not None:
+            self.over_training.show()
+            return
         steps = self._table_steps()
         missing = [s for s in steps if s.key not in self._cache]
         if missing:
@@ -227,7 +240,8 @@ class Comparison(Board):
             res.trace = run.trace
             res.options = {n: dict(self._key(n, run)[2]) for n in self._panels}
             results[run.name] = res
-        self.comparison = comparison_of(results, {r.name: r.system for r in runs})
+        self.comparison = comparison_of(results, {r.name: r.system for r in runs},
+                                        seed=runs[0].seed)
         names = list(self.comparison.names)
         self._table.value = _table_html(self.comparison, self._colors)
         size = min(1.6 + 0.7 * len(runs), 6.0)
@@ -235,15 +249,23 @@ class Comparison(Board):
         plot_cka(self.comparison.cka, names, ax=axes[0])
         self._cka.value = _render.png_bytes(fig)
         self._cka.layout.display = None
+        level = next(iter(self.comparison.intervals.values())).level \
+            if self.comparison.intervals else None
+        bounds = (f" Brackets: {level:.0%} bootstrap intervals over the input sequences; a "
+                  "difference is within noise when the paired interval of the difference "
+                  "holds zero (on these inputs only)." if level is not None else "")
         self._table_message.value = _render.note_box(
-            f"Differences (Δ) are against the first run shown, {names[0]}. CKA compares the "
-            "top-layer states on these inputs only.")
+            f"Differences (Δ) are against the first run shown, {names[0]}.{bounds} CKA "
+            "compares the top-layer states on these inputs only.")
 
     def _static_extra(self) -> list[str]:
-        if self.comparison is None:
-            return []
-        return [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
-                _table_html(self.comparison, self._colors)]
+        out = []
+        if self.comparison is not None:
+            out = [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
+                   _table_html(self.comparison, self._colors)]
+        if self.over_training is not None:
+            out += self.over_training.static_html()
+        return out
 
 
 def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
@@ -256,10 +278,19 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
         cells = []
         for n in names:
             text = _render.esc(format_figure(fr.key, fr.values[n]))
+            fi = (comparison.intervals or {}).get(n)
+            if fr.numeric and fi is not None and fr.key in fi:
+                _, lo, hi = fi[fr.key]
+                if math.isfinite(lo) and math.isfinite(hi):
+                    text += (f" <span style='color:#718096;font-size:11.5px'>"
+                             f"[{_render.esc(format_figure(fr.key, lo))}, "
+                             f"{_render.esc(format_figure(fr.key, hi))}]</span>")
             delta = fr.deltas[n]
             if delta is not None and fr.numeric:
+                noise = comparison.noise(fr.key, n)
+                said = {True: ", within noise", False: ", beyond noise"}.get(noise, "")
                 text += (f" <span style='color:#718096;font-size:11.5px'>(Δ "
-                         f"{_render.esc(format_delta(fr.key, delta))})</span>")
+                         f"{_render.esc(format_delta(fr.key, delta))}{said})</span>")
             cells.append(f"<td style='text-align:right;padding:2px 10px'>{text}</td>")
         rows.append(f"<tr><td style='padding:2px 10px'>{_render.esc(fr.text)}</td>"
                     f"{''.join(cells)}</tr>")
@@ -271,7 +302,7 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
             task: Mapping[str, Mapping[str, Any]] | None = None,
-            **wrap_options: Any) -> Comparison:
+            timelines: Any = None, **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
     Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
@@ -292,6 +323,10 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
     task : Mapping[str, Mapping], optional
         Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
         diagnosis line per run at the top.
+    timelines : Mapping[str, Timeline | Monitor | DataFrame], optional
+        Run name -> its key figures over training (see :func:`hiddenlens.explore`'s
+        ``timeline``); one timeline alone belongs to the first run. Adds an "Over training"
+        tab with every run's figures against step on shared panels, in the runs' colours.
 
     Returns
     -------
@@ -300,4 +335,5 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         ``.comparison`` holds the :class:`~hiddenlens.RunComparison` once the table is shown.
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
-                      executor=executor, seed=seed, task=task, **wrap_options)
+                      executor=executor, seed=seed, task=task, timelines=timelines,
+                      **wrap_options)

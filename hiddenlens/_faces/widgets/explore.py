@@ -15,6 +15,7 @@ from ..._core.validation import as_sequences
 from ..summary import key_figures, summary_sentence
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses
+from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
 
 __all__ = ["Explorer", "explore"]
@@ -46,7 +47,8 @@ class Explorer(Board):
     def __init__(self, model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
-                 task: Mapping[str, Any] | None = None, **wrap_options: Any) -> None:
+                 task: Mapping[str, Any] | None = None, timeline: Any = None,
+                 **wrap_options: Any) -> None:
         names = check_analyses(analyses)
         if task is not None and not isinstance(task, Mapping):
             raise TypeError("task must be a mapping of the model's task metrics (e.g. "
@@ -57,6 +59,7 @@ class Explorer(Board):
         trace = record(system, x, h0)
         run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
                   seed)
+        timelines = check_timelines(timeline, [run.name])
         super().__init__()  # only once the arguments are known to be good
         self._runs = {run.name: run}
         self._task = {run.name: dict(task)} if task else {}
@@ -82,8 +85,13 @@ class Explorer(Board):
         title = (f"<div style='font-size:15px'><b>{_render.esc(run.name)}</b> "
                  f"<span style='color:#4a5568'>· {system.kind} · {size} · {B} sequence"
                  f"{'s' if B != 1 else ''} × {T} steps</span></div>")
+        #: the "Over training" tab (None without a timeline)
+        self.over_training = OverTraining(timelines) if timelines else None
+        extra = [(TAB_TITLE, self.over_training.box)] if self.over_training else []
         self._build(names, title=title, background=background, executor=executor,
-                    shared=[self._sample, self._window, self._part])
+                    extra_tabs=extra, shared=[self._sample, self._window, self._part])
+        if self.over_training is not None:
+            self.over_training.observe(lambda: self._guard(self.over_training.show))
 
     # ------------------------------------------------------------------ hooks
     @property
@@ -115,6 +123,13 @@ class Explorer(Board):
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
         return fig
 
+    def _show_extra(self, index: int) -> None:
+        if self.over_training is not None and index == 0:
+            self.over_training.show()
+
+    def _static_extra(self) -> list[str]:
+        return self.over_training.static_html() if self.over_training is not None else []
+
     def _summary_html(self) -> str:
         results = {n: self._results(n, self.run) for n in self._panels}
         present = {n: r for n, r in results.items() if r is not None}
@@ -134,7 +149,8 @@ class Explorer(Board):
 def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
-            task: Mapping[str, Any] | None = None, **wrap_options: Any) -> Explorer:
+            task: Mapping[str, Any] | None = None, timeline: Any = None,
+            **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
     The model is recorded once on ``inputs``; each tab shows one analysis and is computed only
@@ -169,6 +185,11 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
         ``n_eval``, ``horizon``; see :func:`hiddenlens.diagnose`): a diagnosis line
         at the top reads the key figures against them.
+    timeline : Timeline, Monitor or DataFrame, optional
+        The model's key figures over training (from :func:`hiddenlens.timeline`, a
+        :class:`hiddenlens.Monitor` or its ``.timeline`` table): adds an "Over training" tab
+        drawing each figure against step with its interval band (a figure chooser and a
+        bands switch; nothing is computed).
 
     Returns
     -------
@@ -184,4 +205,4 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    task=task, **wrap_options)
+                    task=task, timeline=timeline, **wrap_options)
