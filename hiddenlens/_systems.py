@@ -209,6 +209,19 @@ class RecurrentSystem:
             inp = h_new  # within one step, layer l reads layer l-1's new state
         return torch.cat(new, dim=-1)
 
+    def without_front(self) -> RecurrentSystem:
+        """This system reading the recurrent part's own inputs (B, T, I): no front end.
+
+        Analyses that draw probe inputs of their own (the memory probe) feed the recurrent
+        part directly; the weight copies are shared, never changed.
+        """
+        if self.front is None:
+            return self
+        core = copy.copy(self)
+        core.front = None
+        core.front_name = None
+        return core
+
     def zeros(self, batch: int) -> torch.Tensor:
         """Zero initial states (B, S) in the system's dtype."""
         return torch.zeros(batch, self.state_size, dtype=self.dtype)
