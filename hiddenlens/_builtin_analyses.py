@@ -90,7 +90,11 @@ def _budget_lyapunov(system: Any, trace: Any, seed: int) -> dict[str, Any]:
 
 
 def _budget_pca(system: Any, trace: Any, seed: int) -> dict[str, Any]:
-    return {"k": min(3, trace.state_size, trace.batch_size * trace.n_steps)}
+    from ._pca import _default_parts
+
+    # the units PCA reads by default (an LSTM's h parts: proj_size units each with projection)
+    units = trace.columns(_default_parts(trace)).size
+    return {"k": min(3, units, trace.batch_size * trace.n_steps)}
 
 
 def _budget_fixed_points(system: Any, trace: Any, seed: int) -> dict[str, Any]:
