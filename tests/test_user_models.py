@@ -629,3 +629,27 @@ def test_embedding_into_bidirectional_stack(gen):
         ref = model.rnn(model.embed(ids))[0][..., 5:].flip(1)
     assert np.abs(tr.part("layer1.h") - ref.numpy()).max() <= 1e-6
     assert tr.metadata["front"].startswith("embed + layers 0..0")
+
+
+def test_cli_token_ids_need_the_front_end(tmp_path):
+    from hiddenlens import cli
+
+    path = tmp_path / "ids.npz"
+    np.savez(path, tokens=np.zeros((2, 5), dtype=np.int64))
+    with pytest.raises(cli.CommandError, match="integer token ids are read with --front"):
+        cli.load_inputs(f"{path}:tokens")
+    assert cli.load_inputs(f"{path}:tokens", raw=True).shape == (2, 5)
+    with pytest.raises(cli.CommandError, match=r"expected \(B, T\) or \(T,\) integers"):
+        np.save(tmp_path / "bad.npy", np.zeros((2, 5, 1), dtype=np.int64))
+        cli.load_inputs(str(tmp_path / "bad.npy"), raw=True)
+
+
+def test_loss_gradient_norms_through_the_lower_layers(gen):
+    # reference by hand: for L = sum of the top backward layer's final state squared,
+    # dL/ds_T = 2 s_T at the last step (raw inputs pass through the lower layers first)
+    m = fill(nn.GRU(3, 4, num_layers=2, bidirectional=True, batch_first=True), gen)
+    sys = hl.wrap(m, direction="backward")
+    x = randn(gen, 2, 6, 3)
+    res = hl.loss_gradient_norms(sys, x, lambda s: s.pow(2).sum(), steps=[-1])
+    last = hl.record(sys, x).states[:, -1]  # the backward state after reading x[:, 0]
+    assert np.allclose(res.norms[:, -1], np.linalg.norm(2 * last, axis=1), rtol=1e-6)
