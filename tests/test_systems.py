@@ -205,9 +205,13 @@ def test_bidirectional_refusals(make, gen):
     with pytest.raises(ValueError, match="bidirectional; pick"):
         hl.wrap(single, direction="both")
     deep = module(make, gen, "gru", L=2, bidirectional=True)
-    with pytest.raises(ValueError, match=r"bidirectional with num_layers=2.*single-layer "
-                                         r"bidirectional module with direction="):
-        hl.wrap(deep, direction="forward")
+    with pytest.raises(ValueError, match=r"bidirectional; pick the direction.*layer=k "
+                                         r"\(default: the top layer, 1"):
+        hl.wrap(deep)
+    top = hl.wrap(deep, direction="forward")  # one layer and one direction: the top layer
+    assert top.layer_index == 1 and list(top.parts) == ["layer1.h"] and top.front is not None
+    with pytest.raises(ValueError, match=r"layer must be an integer in 0 \.\. 1"):
+        hl.wrap(deep, direction="forward", layer=2)
     with pytest.raises(ValueError, match=r"not bidirectional; direction='backward'"):
         hl.wrap(module(make, gen, "gru"), direction="backward")
     assert not hl.wrap(module(make, gen, "gru"), direction="forward").time_reversed

@@ -559,3 +559,95 @@ def test_leaky_cell_inside_a_model_by_name_uses_the_closed_form(gen):
     plain = fill(PlainCell(3, 5), gen)
     plain.hidden_size, plain.input_size = 5, 3
     assert hl.wrap(plain, order="input_first").order == "input_first"
+
+
+# ---------------------------------------------------------------------- bidirectional stacks
+@pytest.mark.parametrize("cls, kw", [(nn.GRU, {}), (nn.LSTM, {}), (nn.LSTM, {"proj_size": 3}),
+                                     (nn.RNN, {"nonlinearity": "relu"})])
+def test_bidirectional_stack_one_layer_one_direction(gen, cls, kw, snapshot):
+    # references: the module's own forward (float32, 1e-6; a stack of the first l + 1 layers
+    # for lower layers) and torch.func.jacrev (float64, 1e-10)
+    m = fill(cls(3, 5, num_layers=3, bidirectional=True, batch_first=True, **kw), gen)
+    snap = snapshot(m)
+    x = randn(gen, 2, 7, 3)
+    for layer in range(3):
+        sub = cls(3, 5, num_layers=layer + 1, bidirectional=True, batch_first=True,
+                  device="meta", **kw).to_empty(device="cpu")  # no draw from the global RNG
+        sub.load_state_dict({k: v for k, v in m.state_dict().items()
+                             if int(k.split("_l")[1][0]) <= layer})
+        with torch.no_grad():
+            out = sub(x)[0]
+        H = out.shape[-1] // 2
+        for d in ("forward", "backward"):
+            sys = hl.wrap(m, direction=d, layer=layer)
+            h = hl.record(sys, x).part(f"layer{layer}.h")
+            ref = out[..., :H] if d == "forward" else out[..., H:].flip(1)
+            assert np.abs(h - ref.numpy()).max() <= 1e-6
+            s64 = hl.wrap(m, direction=d, layer=layer, dtype=torch.float64)
+            s = randn(gen, 4, s64.state_size, dtype=torch.float64)
+            u = randn(gen, 4, s64.input_size, dtype=torch.float64)
+            Jr = vmap(jacrev(_per_sample(s64), argnums=0))(s, u)
+            Kr = vmap(jacrev(_per_sample(s64), argnums=1))(s, u)
+            assert (step_jacobians(s64, s, u) - Jr).abs().max() <= 1e-10
+            assert (input_jacobians(s64, s, u) - Kr).abs().max() <= 1e-10
+    snap.assert_unchanged()
+
+
+def test_bidirectional_stack_with_lengths_equals_packed_forward(gen):
+    # reference: the module's own forward on a packed batch (float32, 1e-6); the backward
+    # direction reads each sequence from its own last real step
+    m = fill(nn.LSTM(3, 5, num_layers=2, bidirectional=True, batch_first=True), gen)
+    x = randn(gen, 3, 8, 3)
+    n = [8, 3, 5]
+    packed = nn.utils.rnn.pack_padded_sequence(x, torch.tensor(n), batch_first=True,
+                                               enforce_sorted=False)
+    with torch.no_grad():
+        out = nn.utils.rnn.pad_packed_sequence(m(packed)[0], batch_first=True)[0]
+    for d in ("forward", "backward"):
+        tr = hl.record(m, x, lengths=n, direction=d)
+        assert tr.metadata["direction"] == d and tr.metadata["layer"] == 1
+        h = tr.part("layer1.h")
+        for b, nb in enumerate(n):
+            mine = h[b, :nb] if d == "forward" else h[b, :nb][::-1]
+            ref = out[b, :nb, :5] if d == "forward" else out[b, :nb, 5:]
+            assert np.abs(mine - ref.numpy()).max() <= 1e-6
+
+
+def test_embedding_into_bidirectional_stack(gen):
+    # reference: the model's own embedding and stack (float32, 1e-6)
+    class Net(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.embed = nn.Embedding(9, 4)
+            self.rnn = nn.GRU(4, 5, num_layers=2, bidirectional=True, batch_first=True)
+
+    model = fill(Net(), gen)
+    ids = torch.randint(0, 9, (2, 6), generator=gen)
+    tr = hl.record(model, ids, front="embed", direction="backward")
+    with torch.no_grad():
+        ref = model.rnn(model.embed(ids))[0][..., 5:].flip(1)
+    assert np.abs(tr.part("layer1.h") - ref.numpy()).max() <= 1e-6
+    assert tr.metadata["front"].startswith("embed + layers 0..0")
+
+
+def test_cli_token_ids_need_the_front_end(tmp_path):
+    from hiddenlens._faces import cli
+    path = tmp_path / "ids.npz"
+    np.savez(path, tokens=np.zeros((2, 5), dtype=np.int64))
+    with pytest.raises(cli.CommandError, match="integer token ids are read with --front"):
+        cli.load_inputs(f"{path}:tokens")
+    assert cli.load_inputs(f"{path}:tokens", raw=True).shape == (2, 5)
+    with pytest.raises(cli.CommandError, match=r"expected \(B, T\) or \(T,\) integers"):
+        np.save(tmp_path / "bad.npy", np.zeros((2, 5, 1), dtype=np.int64))
+        cli.load_inputs(str(tmp_path / "bad.npy"), raw=True)
+
+
+def test_loss_gradient_norms_through_the_lower_layers(gen):
+    # reference by hand: for L = sum of the top backward layer's final state squared,
+    # dL/ds_T = 2 s_T at the last step (raw inputs pass through the lower layers first)
+    m = fill(nn.GRU(3, 4, num_layers=2, bidirectional=True, batch_first=True), gen)
+    sys = hl.wrap(m, direction="backward")
+    x = randn(gen, 2, 6, 3)
+    res = hl.loss_gradient_norms(sys, x, lambda s: s.pow(2).sum(), steps=[-1])
+    last = hl.record(sys, x).states[:, -1]  # the backward state after reading x[:, 0]
+    assert np.allclose(res.norms[:, -1], np.linalg.norm(2 * last, axis=1), rtol=1e-6)

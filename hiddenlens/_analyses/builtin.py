@@ -81,13 +81,23 @@ def _budget_gradient_flow(system: Any, trace: Any, seed: int) -> dict[str, Any]:
     return {"seed": seed, "progress": False}
 
 
+def _shortest(trace: Any) -> int:
+    """Steps of the shortest sequence (the real ones of a trace recorded with lengths)."""
+    lengths = trace.metadata.get("lengths")
+    return int(min(lengths)) if lengths else trace.n_steps
+
+
 def _budget_lyapunov(system: Any, trace: Any, seed: int) -> dict[str, Any]:
-    return {"k": _k(trace), "warmup": min(100, trace.n_steps // 4), "seed": seed,
+    return {"k": _k(trace), "warmup": min(100, _shortest(trace) // 4), "seed": seed,
             "progress": False}
 
 
 def _budget_pca(system: Any, trace: Any, seed: int) -> dict[str, Any]:
-    return {"k": min(3, trace.state_size, trace.batch_size * trace.n_steps)}
+    from .pca import _default_parts
+
+    # the units PCA reads by default (an LSTM's h parts: proj_size units each with projection)
+    units = trace.columns(_default_parts(trace)).size
+    return {"k": min(3, units, trace.batch_size * trace.n_steps)}
 
 
 def _budget_fixed_points(system: Any, trace: Any, seed: int) -> dict[str, Any]:

@@ -193,7 +193,14 @@ def describe_inputs(inputs: Any, *, source: str | None = None) -> str:
     a = inputs.inputs if isinstance(inputs, Trace) else inputs
     if hasattr(a, "detach"):
         a = a.detach().cpu().numpy()
-    a = np.asarray(a, dtype=float)
+    a = np.asarray(a)
+    if np.issubdtype(a.dtype, np.integer) and a.ndim <= 2 and a.size:
+        ids = a.reshape(1, -1) if a.ndim < 2 else a  # (B, T) token ids for a front end
+        B, T = ids.shape
+        text = (f"{B} sequence{'s' if B != 1 else ''} of {T} token ids (values "
+                f"{int(ids.min())}..{int(ids.max())}, {np.unique(ids).size} distinct)")
+        return f"{text}; {source}" if source else text
+    a = a.astype(float)
     if a.ndim == 2:
         a = a[None]
     B, T, I = a.shape

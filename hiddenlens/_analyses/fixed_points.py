@@ -548,7 +548,22 @@ def _mean_input(x: Any, trace: Any, I: int) -> Any:
         raise ValueError(f"{how} with integer steps 0 <= t0 < t1 <= {T} (the trace's length), "
                          f"got {x!r}")
     window = np.asarray(trace.inputs[:, t0:t1], dtype=np.float64)  # (B, t1-t0, I)
+    real = _real_rows(trace)
+    if real is not None:  # the mean over real steps only
+        inside = real.reshape(trace.batch_size, -1)[:, t0:t1]  # (B, t1-t0)
+        if not inside.any():
+            raise ValueError(f"x={x!r}: every step of that window is padding (see the trace's "
+                             "lengths); pass a window inside the sequences")
+        return window[inside].mean(axis=0)
     return window.reshape(-1, window.shape[2]).mean(axis=0)
+
+
+def _real_rows(trace: Any) -> np.ndarray | None:
+    """(B*T,) True on the real (not padded) steps of a trace recorded with lengths, or None."""
+    from .._core.record import valid_steps
+
+    real = valid_steps(trace) if isinstance(trace, Trace) else None
+    return None if real is None else real.reshape(-1)
 
 
 def _reach(P: torch.Tensor, trace: Any) -> dict[str, Any]:
@@ -558,6 +573,9 @@ def _reach(P: torch.Tensor, trace: Any) -> dict[str, Any]:
     if trace is None or not hasattr(trace, "states"):
         return {}
     X = np.asarray(trace.states, dtype=np.float64).reshape(-1, trace.state_size)  # (B*T, S)
+    real = _real_rows(trace)
+    if real is not None:
+        X = X[real]  # (N, S) the real steps
     pts = np.asarray(P.detach().cpu().numpy(), dtype=np.float64)  # (m, S)
     if pts.shape[0] == 0 or X.shape[1] != pts.shape[1]:
         return {}
@@ -639,7 +657,11 @@ def _starts(trace, starts, system, n_starts, noise, seed, dt) -> torch.Tensor:
                 or n_starts < 1:
             raise ValueError(f"n_starts must be an integer >= 1, got {n_starts!r}")
         flat = trace.states.reshape(-1, S)  # (B*T, S), a view
-        finite = np.nonzero(np.isfinite(flat).all(axis=1))[0]  # exploded states cannot start
+        usable = np.isfinite(flat).all(axis=1)  # exploded states cannot start
+        real = _real_rows(trace)
+        if real is not None:
+            usable &= real  # nor padded ones
+        finite = np.nonzero(usable)[0]
         N = finite.size
         if N == 0:
             raise ValueError("the trace has no finite state to start from; record a trace "

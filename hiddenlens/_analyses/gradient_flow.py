@@ -160,7 +160,10 @@ def gradient_flow(
         Largest lag (default: ``end``, i.e. every lag back to the first recorded state; up to
         ``end + 1`` reaches back to ``trace.initial``).
     end : int, optional
-        Step index of the final state s_T (default: the last step, T - 1).
+        Step index of the final state s_T (default: the last step, T - 1). For a trace
+        recorded with ``lengths``, each sequence ends at its own last real step (or at
+        ``end``, whichever is earlier); lags past a sequence's start have NaN norms there and
+        the pooled rate averages the sequences that reach each lag.
     samples : int or sequence of int, optional
         Which samples to analyse (default: all).
     parts : str or sequence of str, optional
@@ -200,10 +203,17 @@ def gradient_flow(
     system = system_for_trace(system, trace)
     prev, x = trace_tensors(system, trace)  # (B, T, S), (B, T, I)
     B_all, T, S = prev.shape
+    from .._core.record import valid_steps
+
+    real = valid_steps(trace)  # (B, T) or None: right-padded sequences end at their length
+    sel = _check_samples(samples, B_all)
     end = _check_index(end, T, "end", T - 1)
+    if real is not None:
+        # each sequence ends at its own last real step (or at end=, whichever comes first)
+        ends_all = np.minimum(real.sum(axis=1) - 1, end)  # (B,)
+        end = int(ends_all[sel.numpy()].max())
     max_lag = _check_index(max_lag, end + 2, "max_lag", max(end, 1), low=1)
     rows = _part_columns(trace, parts)
-    sel = _check_samples(samples, B_all)
     if not (isinstance(threshold, (int, float, np.integer, np.floating))
             and not isinstance(threshold, bool) and 0 <= threshold < math.inf):
         raise ValueError(f"threshold must be a number >= 0 (natural log per step), got "
@@ -220,9 +230,16 @@ def gradient_flow(
     B = prev.shape[0]
     # overflow or NaN in the states must not reach the products (an inf state gives a zero or
     # NaN Jacobian, which would read as "vanishing"): fit on the finite part before it
+    states_sel = trace.states[sel.numpy()]
+    if real is not None:  # padded states take no part in the products: not checked either
+        states_sel = np.where(real[sel.numpy()][:, :, None], states_sel, 0.0)
     end, max_lag, lo_fit, hi_fit, blowup = _finite_window(
-        trace.states[sel.numpy()], trace.initial[sel.numpy()], x, end, max_lag, lo_fit, hi_fit,
+        states_sel, trace.initial[sel.numpy()], x, end, max_lag, lo_fit, hi_fit,
         sel.numpy(), fit_lags is not None)
+    # the step of each sample's final state: one for all, or each sequence's own
+    ends = torch.full((B,), end, dtype=torch.int64) if real is None else \
+        torch.from_numpy(np.minimum(ends_all[sel.numpy()], end)).to(torch.int64)
+    rows_b = torch.arange(B)[:, None]
     if chunk is None:
         chunk = max(1, _CHUNK_ELEMENTS // max(B * S * S, 1))
     gen = torch.Generator().manual_seed(int(seed))
@@ -240,14 +257,18 @@ def gradient_flow(
     L = 0
     with torch.no_grad(), bar, _threads_for(2.0 * B * S**3), step_errors(system):
         while L < max_lag:
-            # Jacobians J_t for t = end - L, end - L - 1, ... (the next factors), newest first
-            t_hi = end - L + 1
-            t_lo = max(t_hi - chunk, end - max_lag + 1)
-            n = t_hi - t_lo
-            lin = linearize(system, prev[:, t_lo:t_hi].reshape(B * n, S),
-                            x[:, t_lo:t_hi].reshape(B * n, -1), dtype=torch.float64)
+            # Jacobians J_t for t = end - L, end - L - 1, ... (the next factors), newest first;
+            # a sequence shorter than the lag has no factor there (identity, norm left NaN)
+            n = min(chunk, max_lag - L)
+            t = ends[:, None] - L - torch.arange(n)[None, :]  # (B, n) step of each factor
+            has = t >= 0
+            t = t.clamp(min=0)
+            lin = linearize(system, prev[rows_b, t].reshape(B * n, S),
+                            x[rows_b, t].reshape(B * n, -1), dtype=torch.float64)
             J = lin.dense().to(torch.float64).reshape(B, n, S, S)
-            for j in range(n - 1, -1, -1):
+            if not bool(has.all()):
+                J[~has] = torch.eye(S, dtype=torch.float64)
+            for j in range(n):
                 P = torch.bmm(P, J[:, j])
                 f = torch.linalg.matrix_norm(P)  # (B,) Frobenius
                 alive = torch.isfinite(f) & (f > 0)
@@ -261,6 +282,9 @@ def gradient_flow(
                 with np.errstate(divide="ignore"):
                     log_f[:, L] = (log_scale + sub_f.log()).numpy()
                     log_n[:, L] = (log_scale + sigma.log()).numpy()
+                gone = ~has[:, j].numpy()
+                log_f[gone, L] = np.nan
+                log_n[gone, L] = np.nan
                 L += 1
                 bar.update(1)
     if blowup is not None and blowup["excluded"]:
@@ -292,6 +316,8 @@ def gradient_flow(
         notes.append(f"{counted} finite lag{'s' if counted != 1 else ''}: no rate can be fitted"
                      " (need at least 2; raise max_lag)")
     meta = dict(trace.metadata, counted_lags=counted, fit_lags=[int(lo_fit), int(hi_fit)])
+    if real is not None:
+        meta["ends"] = ends.tolist()  # each sample's final step (its own length)
     if notes:
         meta["verdict_note"] = "; ".join(notes)
     if blowup is not None:
@@ -718,6 +744,10 @@ def _system_loss_gradients(system, inputs, loss_fn, targets, steps) -> LossGradi
     if not callable(loss_fn):
         raise TypeError(f"loss_fn must be callable as loss_fn(states, targets) -> scalar "
                         f"tensor, got {type(loss_fn).__name__}")
+    if system.front is not None:  # the model's raw inputs, through its front end (no grad)
+        from .._core.record import _through_front
+
+        inputs = _through_front(system, inputs)
     x = as_sequences(inputs, system.input_size, torch.float64 if system.is_module
                      else system.dtype, what=f"the {system.source} system")  # (B, T, I)
     if system.time_reversed:

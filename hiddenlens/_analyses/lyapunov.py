@@ -394,7 +394,12 @@ def lyapunov_spectrum(
     B, T, _ = x.shape
     S = system.state_size
     k = _check_k(k, S)
-    warmup = _check_warmup(warmup, T)
+    from .._core.record import valid_steps
+
+    real = valid_steps(trace) if recorded else None
+    lengths = None if real is None else real.sum(axis=1)  # (B,) steps of each sequence
+    # padded sequences: each counts its own real steps after the shared warm-up
+    warmup = _check_warmup(warmup, T if lengths is None else int(lengths.min()))
     qr_every = _check_positive_int(qr_every, "qr_every", "re-orthonormalise every step: 1")
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")
@@ -420,14 +425,18 @@ def lyapunov_spectrum(
         _check_trajectory(states, system)
         with _threads_for(frame_flops):
             sums, running, running_steps = _qr_sweep(
-                system, x, s0, states, k, warmup, qr_every, chosen, int(seed), progress)
+                system, x, s0, states, k, warmup, qr_every, chosen, int(seed), progress,
+                lengths)
 
-    per_sample = sums / (T - warmup)  # (B, k)
+    counts = np.full(B, T - warmup) if lengths is None else lengths - warmup  # (B,)
+    per_sample = sums / counts[:, None]  # (B, k)
     exponents = per_sample.mean(axis=0)
     std = per_sample.std(axis=0, ddof=1) if B > 1 else np.full(k, np.nan)
     meta: dict[str, Any] = {"source": system.source, "kind": system.kind, "batch_size": B,
                             "input_steps": T, "seed": int(seed),
                             "fingerprint": system.fingerprint, "counted_steps": T - warmup}
+    if lengths is not None:
+        meta["counted_steps"] = counts.tolist()  # per sequence: its own length - warmup
     cautions = []
     still = _stationary(states, s0, warmup)
     if still:
@@ -435,8 +444,9 @@ def lyapunov_spectrum(
         warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
                       "start from another h0 (e.g. a small random state) or drive the system",
                       StationaryTrajectoryWarning, stacklevel=2)
-    if T - warmup < MIN_COUNTED_STEPS:
-        cautions.append(f"from only {T - warmup} counted step{'s' if T - warmup != 1 else ''} "
+    fewest = int(counts.min())
+    if fewest < MIN_COUNTED_STEPS:
+        cautions.append(f"from only {fewest} counted step{'s' if fewest != 1 else ''} "
                         f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
     if cautions:
         meta["caution"] = "; ".join(cautions)
@@ -453,7 +463,8 @@ def lyapunov_spectrum(
     return LyapunovSpectrum(
         exponents=exponents, per_sample=per_sample, std=std, running=running,
         running_steps=running_steps, kaplan_yorke=kaplan_yorke_dimension(exponents, S),
-        state_size=S, n_steps=T - warmup, warmup=warmup, method=chosen, qr_every=qr_every,
+        state_size=S, n_steps=int(counts.max()), warmup=warmup, method=chosen,
+        qr_every=qr_every,
         dtype=str(dt).replace("torch.", ""),
         metadata=meta,
     )
@@ -509,8 +520,12 @@ def _autonomous_inputs(system: RecurrentSystem, inputs: Any, steps: Any, h0: Any
 
 
 # ---------------------------------------------------------------------- the sweep
-def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress):
+def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress,
+              lengths=None):
     """Carry the frame along the trajectory; return per-sample log sums and the curve.
+
+    ``lengths`` (B,): real steps of right-padded sequences; logs of later steps are not
+    counted, and a QR is due at each sequence's last real step.
 
     Returns
     -------
@@ -523,6 +538,13 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     B, T, S = states.shape
     dt = states.dtype
     n_counted = T - warmup
+    last_steps: set[int] = set()
+    if lengths is not None:
+        n_counted = int(lengths.max()) - warmup
+        last_steps = {int(n) - 1 for n in lengths}
+        n_b = torch.as_tensor(lengths)  # (B,)
+        counts_b = (n_b - warmup).to(torch.float64)
+        carry_b = torch.zeros(B, k, dtype=torch.float64)
     # s_{t-1} and x_t, time first so that each step's block is contiguous
     prev = torch.cat([s0.unsqueeze(1), states[:, :-1]], dim=1).transpose(0, 1).contiguous()
     xt = x.transpose(0, 1).contiguous()  # (T, B, I)
@@ -566,7 +588,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
                     Q = torch.matmul(J[j], Q)  # (B, S, k)
                 else:
                     Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
-                if _qr_due(t, warmup, qr_every, T):
+                if _qr_due(t, warmup, qr_every, T) or t in last_steps:
                     if householder:
                         reflectors = torch.geqrf(Q)  # R on and above the diagonal of A
                         diag[j] = reflectors[0].diagonal(dim1=-2, dim2=-1)
@@ -574,17 +596,28 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
                         Q, R = torch.linalg.qr(Q)
                         diag[j] = R.diagonal(dim1=-2, dim2=-1)
             logs = diag[:C].to(torch.float64).abs_().log_()  # (C, B, k)
+            if lengths is not None:  # padded steps count nothing (their frame is not used)
+                pad = torch.arange(t0, t1)[:, None] >= n_b[None, :]  # (C, B)
+                logs[pad] = 0.0
             _check_logs(logs, t0, system)
             c0 = max(t0, warmup)
             if c0 < t1:
                 counted = logs[c0 - t0:]  # (Cc, B, k)
                 sums += counted.sum(dim=0)
-                csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
-                carry = csum[-1].clone()
                 n_lo, n_hi = c0 - warmup + 1, t1 - warmup  # counted-step numbers in chunk
+                if lengths is None:
+                    csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
+                    carry = csum[-1].clone()
+                else:  # each sequence's running mean over its own counted steps so far
+                    csum_b = counted.cumsum(dim=0) + carry_b  # (Cc, B, k)
+                    carry_b = csum_b[-1].clone()
                 while p_next < points.shape[0] and points[p_next] <= n_hi:
                     n = int(points[p_next])
-                    running[p_next] = (csum[n - n_lo] / n).numpy()
+                    if lengths is None:
+                        running[p_next] = (csum[n - n_lo] / n).numpy()
+                    else:
+                        per = csum_b[n - n_lo] / counts_b.clamp(max=n)[:, None]  # (B, k)
+                        running[p_next] = per.mean(dim=0).numpy()
                     p_next += 1
             bar.update(C)
     return sums.numpy(), running, points

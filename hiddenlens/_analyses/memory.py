@@ -19,7 +19,7 @@ import torch
 from .._core.guard import grad_restored
 from .._core.jacobians import input_jacobians, step_jacobians
 from .._core.options import analysis, check_options, int_seed, progress_bar
-from .._core.record import as_system, record
+from .._core.record import as_system, record, valid_steps
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
 from .._core.systems import RecurrentSystem
@@ -465,7 +465,8 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
             x = np.eye(I)[tokens] * opts["scale"]  # (B, T, I)
         else:
             x = rng.standard_normal((B, T, I)) * opts["scale"]  # (B, T, I)
-        trace = record(system, x, h0, progress=progress)
+        # probe inputs feed the recurrent part itself, never a front end
+        trace = record(system.without_front(), x, h0, progress=progress)
         _check_bounded(trace, "probe inputs", "lower scale=")
         std = np.full(I, opts["scale"]) if not opts["categorical"] else trace.inputs.reshape(
             -1, I).std(axis=0)
@@ -473,7 +474,9 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
     # a given trace is the data (the one path that records is probe mode, above)
     trace = inputs if isinstance(inputs, Trace) else record(system, inputs, h0, progress=progress)
     _check_bounded(trace, "inputs", "scale the inputs down")
-    x = trace.inputs.reshape(-1, I).astype(np.float64)  # (B*T, I)
+    real = valid_steps(trace)  # padded steps of variable-length sequences are no data
+    x = (trace.inputs.reshape(-1, I) if real is None else trace.inputs[real]).astype(
+        np.float64)  # (N, I) the real steps
     if opts["categorical"] is None:
         opts["categorical"] = bool(I >= 2 and _is_one_hot(x))
     elif opts["categorical"] and not _is_one_hot(x):
@@ -491,6 +494,9 @@ def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: A
 def _check_bounded(trace: Trace, what: str, fix: str) -> None:
     """Refuse states that overflowed or became NaN, naming the first step and sample."""
     st = trace.states
+    real = valid_steps(trace)
+    if real is not None:
+        st = np.where(real[:, :, None], st, 0.0)  # padded states are not analysed
     if np.isfinite(st.max()) and np.isfinite(st.min()):
         return
     finite = np.isfinite(st).all(axis=2)  # (B, T)
@@ -500,6 +506,14 @@ def _check_bounded(trace: Trace, what: str, fix: str) -> None:
     raise ValueError(f"the states {kind} at step t={t} of sample {b} on these {what}: the "
                      f"dynamics explode, and a memory curve needs bounded states; {fix} or "
                      "analyse a stable model")
+
+
+def _lengths(trace: Trace) -> np.ndarray:
+    """Real steps of each sequence (B,): the trace's lengths, or its n_steps for all."""
+    real = valid_steps(trace)
+    if real is None:
+        return np.full(trace.batch_size, trace.n_steps)
+    return real.sum(axis=1)
 
 
 def _is_one_hot(x: np.ndarray) -> bool:
@@ -515,7 +529,9 @@ def _span(adjusted: np.ndarray, threshold: float) -> int:
 # ====================================================================== decoding
 def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[str, Any],
               progress: bool | None) -> MemoryCurve:
-    B, T = trace.batch_size, trace.n_steps
+    B, T_all = trace.batch_size, trace.n_steps
+    n_b = _lengths(trace)  # (B,) real steps of each sequence
+    T = int(n_b.max())
     K = opts["max_lag"]
     t_start = max(opts["washout"], K)
     if T - t_start < 2 * opts["n_folds"]:
@@ -524,18 +540,21 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
             f"max(washout, max_lag) = {t_start}; decoding needs at least {2 * opts['n_folds']}: "
             "pass longer sequences, a smaller max_lag or a smaller washout"
         )
-    states = trace.states[:, t_start:, cols].astype(np.float64)  # (B, T', S)
-    X = states.reshape(B * (T - t_start), -1)  # (N, S)
     b_idx = np.repeat(np.arange(B), T - t_start)
     t_idx = np.tile(np.arange(t_start, T), B)
+    keep = t_idx < n_b[b_idx]  # rows on real steps only
+    b_idx, t_idx = b_idx[keep], t_idx[keep]
+    X = trace.states[b_idx, t_idx][:, cols].astype(np.float64)  # (N, S)
     folds, split = _folds(b_idx, t_idx, B, t_start, T, opts["n_folds"], gap=K)
     inputs = trace.inputs.astype(np.float64)  # (B, T, I)
+    span_real = (np.arange(T_all)[None, :] >= t_start - K) & (
+        np.arange(T_all)[None, :] < n_b[:, None])  # (B, T) every target step
     categorical = bool(opts["categorical"])
     lags = np.arange(K + 1)
     chance = None
     if categorical:
         tokens = inputs.argmax(axis=2)  # (B, T)
-        classes = np.unique(tokens[:, t_start - K:])  # every target step
+        classes = np.unique(tokens[span_real])  # every target step
         target = _Targets(tokens, b_idx, t_idx, classes=classes)
         chance = 1.0 / classes.size
     else:
@@ -546,7 +565,7 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
     adjusted = scores if chance is None else (scores - chance) / (1.0 - chance)
     weighted = None
     if not categorical:
-        var = inputs[:, t_start - K:].reshape(-1, inputs.shape[2]).var(axis=0)  # (I,)
+        var = inputs[span_real].var(axis=0)  # (I,) over every target step
         if var.sum() > 0:
             weighted = feature_scores @ var / var.sum()  # (K + 1,)
         if np.nanmin(scores) < -1:
@@ -767,12 +786,15 @@ def _impulse_times(T: int, washout: int, K: int, probe: bool) -> np.ndarray:
 def _perturbation(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std: np.ndarray,
                   opts: dict[str, Any], meta: dict[str, Any]) -> MemoryCurve:
     K, I = opts["max_lag"], trace.input_size
-    t0s = _impulse_times(trace.n_steps, opts["washout"], K, opts["mode"] == "probe")
+    n_b = _lengths(trace)  # (B,)
+    t0s = _impulse_times(int(n_b.max()), opts["washout"], K, opts["mode"] == "probe")
     if not np.any(in_std > 0):
         raise ValueError("the inputs are constant, so an impulse sized by their standard "
                          "deviation is zero; pass inputs that vary or use mode='probe'")
     b_idx = np.repeat(np.arange(trace.batch_size), t0s.size)
     t_idx = np.tile(t0s, trace.batch_size)
+    inside = t_idx + K < n_b[b_idx]  # the impulse and its K steps lie on real steps
+    b_idx, t_idx = b_idx[inside], t_idx[inside]
     P = b_idx.size
     steps = t_idx[:, None] + np.arange(K + 1)[None, :]  # (P, K+1)
     x = trace.inputs[b_idx[:, None], steps]  # (P, K+1, I)
@@ -794,7 +816,9 @@ def _perturbation(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_st
                              "curve cannot be normalised by it; pass normalize='spread' or "
                              "'none', or other parts")
     elif opts["normalize"] == "spread":
-        states = trace.states[:, :, cols].reshape(-1, cols.size).astype(np.float64)
+        real = valid_steps(trace)
+        states = (trace.states[:, :, cols].reshape(-1, cols.size) if real is None
+                  else trace.states[real][:, cols]).astype(np.float64)
         reference = float(np.sqrt(states.var(axis=0).sum()))
         if not reference > 0:
             raise ValueError("the states do not vary, so normalize='spread' has nothing to "
@@ -853,7 +877,9 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
     """
 
     K, I, S = opts["max_lag"], trace.input_size, trace.state_size
-    B, T = trace.batch_size, trace.n_steps
+    B = trace.batch_size
+    n_b = _lengths(trace)  # (B,)
+    T = int(n_b.max())  # steps past every sequence's end are never needed
     L = K + 1
     t_a = opts["washout"]
     t_b = T - K  # sources tau in [t_a, t_b): every lag 0..K is observed
@@ -905,7 +931,9 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
             else:
                 part = torch.linalg.vector_norm(Q[:, cols_t][:, :, ok], dim=(1, 3))
                 lognorm[:, src[ok] - t_a, lag[ok]] = torch.log(part) + logc[:, ok]
-    flat = lognorm.reshape(B * n_src, K + 1)  # (B*n_src, K+1)
+    # sources whose K later steps all lie on real steps of their sequence
+    whole = (np.arange(t_a, t_b)[None, :] < (n_b - K)[:, None]).reshape(-1)  # (B*n_src,)
+    flat = lognorm.reshape(B * n_src, K + 1)[torch.from_numpy(whole)]  # (N_src, K+1)
     log_mean = torch.logsumexp(flat, dim=0) - math.log(flat.shape[0])  # (K+1,)
     if opts["normalize"] == "lag0":
         log_ref = float(log_mean[0])
@@ -917,7 +945,7 @@ def _sensitivity(system: RecurrentSystem, trace: Trace, cols: np.ndarray, in_std
         log_ref = 0.0
     samples = torch.exp(flat - log_ref).numpy()
     scores = torch.exp(log_mean - log_ref).numpy()
-    meta.update(n_sources=int(B * n_src), first_source_step=t_a, input_std=in_std.tolist(),
+    meta.update(n_sources=int(flat.shape[0]), first_source_step=t_a, input_std=in_std.tolist(),
                 normalize=opts["normalize"], log_reference=log_ref)
     with np.errstate(over="ignore", invalid="ignore"):
         spread = samples.std(axis=0)

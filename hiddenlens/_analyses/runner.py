@@ -116,6 +116,8 @@ def run_analyses(
     on_error: str = "raise",
     trace: Trace | None = None,
     context: Mapping[str, Any] | None = None,
+    lengths: Any = None,
+    mask: Any = None,
 ) -> AnalysisResults:
     """Record a model once on ``inputs`` and run the chosen analyses with modest budgets.
 
@@ -149,6 +151,9 @@ def run_analyses(
         Data some analyses need besides the trace, e.g. ``{"targets": y, "onsets": t}``. An
         analysis receives the keys it declares (``needs``) as keyword options; one whose keys
         are absent is skipped with the reason in ``.skipped``.
+    lengths, mask : optional
+        Real lengths (B,) of right-padded ``inputs``, or a (B, T) mask of real steps, as in
+        :func:`hiddenlens.record`: every analysis leaves the padded steps out.
 
     Returns
     -------
@@ -171,9 +176,16 @@ def run_analyses(
     specs, skipped = _chosen(which)
     options = _check_options(options)
     context = dict(context or {})
-    x = as_sequences(inputs, system.input_size, system.dtype, what=f"the {system.source} model")
+    if system.front is not None:
+        x = inputs  # the model's raw inputs (token ids, features): its front end reads them
+    else:
+        x = as_sequences(inputs, system.input_size, system.dtype,
+                         what=f"the {system.source} model")
     if trace is None:
-        trace = record(system, x)
+        trace = record(system, x, lengths=lengths, mask=mask)
+    elif lengths is not None or mask is not None:
+        raise ValueError("lengths= and mask= apply when run_analyses records; a given trace "
+                         "carries its own lengths (record it with lengths=)")
     out = AnalysisResults()
     out.trace = trace
     out.skipped.update(skipped)
@@ -188,7 +200,8 @@ def run_analyses(
         out.options[spec.name] = analysis_options(spec, system, trace, seed,
                                                   {**extra, **options.get(spec.name, {})})
         ready.append(spec)
-    _run_each(ready, system, trace, out, progress, on_error)
+    # the trace holds what the recurrent part received: the analyses run on that part alone
+    _run_each(ready, system.without_front(), trace, out, progress, on_error)
     return out
 
 

@@ -240,6 +240,10 @@ def jacobian_spectra(
         per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
         chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
     gen = torch.Generator().manual_seed(int(seed))
+    from .._core.record import valid_steps
+
+    real = valid_steps(trace)  # (B, T) or None: padded steps are left out (NaN rows)
+    real_t = None if real is None else torch.from_numpy(real)
 
     sv_out = np.empty((B, T, k), dtype=np.float64)
     rad_out = np.empty((B, T), dtype=np.float64) if want_radius else None
@@ -256,8 +260,9 @@ def jacobian_spectra(
             n = t1 - t0
             lin = linearize(system, prev[:, t0:t1].reshape(B * n, S),
                             x[:, t0:t1].reshape(B * n, I), dtype=work)
-            sv, rad, low, ok = _chunk_spectra(lin, k, method, tol, gen, want_radius, work,
-                                              want_bounds and k == S)
+            sv, rad, low, ok = _chunk_spectra(
+                lin, k, method, tol, gen, want_radius, work, want_bounds and k == S,
+                None if real_t is None else real_t[:, t0:t1].reshape(B * n))
             sv_out[:, t0:t1] = sv.reshape(B, n, k).numpy()
             finite[:, t0:t1] = ok.reshape(B, n).numpy()
             if rad_out is not None:
@@ -280,17 +285,23 @@ def jacobian_spectra(
         singular_values=readonly(sv_out), spectral_radius=None if rad_out is None
         else readonly(rad_out), quantile_levels=readonly(levels), quantiles=readonly(q),
         median=readonly(med), radius_quantiles=None if rq is None else readonly(rq),
-        method=method, state_size=S, tol=float(tol), metadata=frozen_mapping(trace.metadata),
+        method=method, state_size=S, tol=float(tol),
+        metadata=frozen_mapping({**trace.metadata, **_padding_note(real)}),
         radius_bounds=None if bounds is None else readonly(bounds),
         excluded=readonly(excluded.astype(np.int64)),
     )
 
 
+def _padding_note(real: np.ndarray | None) -> dict[str, Any]:
+    return {} if real is None else {"padded_steps": int((~real).sum())}
+
+
 def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
                    gen: torch.Generator, want_radius: bool, work: torch.dtype,
-                   want_low: bool):
+                   want_low: bool, real: torch.Tensor | None = None):
     """Top-k singular values (N, k), exact radii (N,) or None, the lower radius bound (N,) or
-    None, and the finite mask (N,) of one chunk; NaN where the trajectory is not finite."""
+    None, and the finite mask (N,) of one chunk; NaN where the trajectory is not finite and on
+    padded steps (``real`` False: not computed, and not counted as non-finite)."""
     N, S = lin.new_state.shape
     ok = torch.isfinite(lin.new_state).all(1)
     J = None
@@ -301,10 +312,12 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
         sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
         if sus.numel():
             ok[sus] &= torch.isfinite(J[sus]).all(2).all(1)
+    if real is not None:
+        ok |= ~real  # a padded step is never reported as non-finite
     sv = torch.full((N, k), float("nan"), dtype=torch.float64)
     rad = torch.full((N,), float("nan"), dtype=torch.float64) if want_radius else None
     low = torch.full((N,), float("nan"), dtype=torch.float64) if want_low else None
-    idx = ok.nonzero().squeeze(1)
+    idx = (ok if real is None else ok & real).nonzero().squeeze(1)
     if idx.numel() == 0:
         return sv, rad, low, ok
     full = idx.numel() == N

@@ -466,14 +466,23 @@ def _check(trace: Trace, targets: Any, onsets: Any, max_lag: Any, categorical: A
         for n in names:
             trace.columns(n)  # KeyError naming the parts
         parts = names
-    if not np.all(np.isfinite(trace.states[..., trace.columns(parts)])):
+    from .._core.record import valid_steps
+
+    real = valid_steps(trace)
+    n_real = np.full(B, T) if real is None else real.sum(axis=1)  # (B,) real steps
+    if real is not None and np.any(on >= n_real):
+        b = int(np.flatnonzero(on >= n_real)[0])
+        raise ValueError(f"onset {int(on[b])} of sequence {b} lies in its padding (its length "
+                         f"is {int(n_real[b])}); pass onsets inside each sequence")
+    st = trace.states[..., trace.columns(parts)]
+    if not np.all(np.isfinite(st if real is None else st[real])):
         raise ValueError("the trace holds NaN or inf states; decode a finite window "
                          "(trace.select(steps=...)) or fix the recording")
     return {"codes": codes, "classes": classes, "categorical": bool(categorical),
             "per_step": per_step, "onsets": on, "max_lag": max_lag, "n_folds": n_folds,
             "alphas": alphas, "C": float(C), "parts": parts,
             "max_rows": _int("max_rows", max_rows, 2 * n_folds),
-            "max_iter": _int("max_iter", max_iter, 1), "seed": seed}
+            "max_iter": _int("max_iter", max_iter, 1), "seed": seed, "lengths": n_real}
 
 
 def _rows(trace: Trace, cols: np.ndarray, opts: dict[str, Any], perms: np.ndarray,
@@ -491,7 +500,7 @@ def _rows(trace: Trace, cols: np.ndarray, opts: dict[str, Any], perms: np.ndarra
     codes = opts["codes"]
     if not opts["per_step"]:
         t = on[None, :] + np.arange(L)[:, None]  # (L, B)
-        present = t < T
+        present = t < opts["lengths"][None, :]  # a lag past a sequence's real end: no row
         X = states[np.arange(B)[None, :], np.minimum(t, T - 1)]  # (L, B, S)
         Y = codes[perms].T  # (B, R)
         Y = np.broadcast_to(Y[None, :, None, :], (L, B, 1, Y.shape[1]))
@@ -499,7 +508,7 @@ def _rows(trace: Trace, cols: np.ndarray, opts: dict[str, Any], perms: np.ndarra
                 torch.as_tensor(present), np.arange(B))
     b_idx, t_idx = [], []
     for b in range(B):
-        ts = np.arange(on[b] + L - 1, T)
+        ts = np.arange(on[b] + L - 1, opts["lengths"][b])  # real steps only
         b_idx.append(np.full(ts.size, b))
         t_idx.append(ts)
     b_idx, t_idx = np.concatenate(b_idx), np.concatenate(t_idx)

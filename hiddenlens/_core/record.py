@@ -144,8 +144,9 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         Show a progress bar (default: only for long step-function runs).
     lengths : array of shape (B,), optional
         Real lengths of right-padded sequences. The system still runs over the padding (its
-        states are kept), but ``metadata["lengths"]`` marks it so that analyses pooling over
-        steps leave it out (see docs/recording.md for which ones do).
+        states are kept), but ``metadata["lengths"]`` marks it and every analysis leaves the
+        padded steps out. Lower layers of a stack wrapped with ``layer=`` run each sequence on
+        its own length (as a packed batch does).
     mask : bool array of shape (B, T), optional
         The same as a mask, True on real steps (a prefix of each sequence).
 
@@ -162,16 +163,21 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
         When states become NaN or Inf; they are kept, as exploding states are a finding.
     """
     system = as_system(model_or_system, **wrap_options)
+    n_real = None
     if system.front is not None:
-        inputs = _through_front(system, inputs)
+        if lengths is not None or mask is not None:
+            shape = tuple(getattr(inputs, "shape", ()))
+            if len(shape) < 2:
+                raise ValueError(f"lengths= and mask= need batched raw inputs (B, T, ...) for "
+                                 f"the front end {system.front_name!r}, got {describe(inputs)}")
+            n_real = _check_lengths(lengths, mask, shape[0], shape[1])
+        inputs = _through_front(system, inputs, n_real)
     x = as_sequences(inputs, system.input_size, system.dtype,
                      what=f"the {system.source} system")  # (B, T, I)
+    if n_real is None:
+        n_real = _check_lengths(lengths, mask, x.shape[0], x.shape[1])
     if system.time_reversed:
-        x = x.flip(1)
-    n_real = _check_lengths(lengths, mask, x.shape[0], x.shape[1])
-    if n_real is not None and system.time_reversed:
-        raise ValueError("lengths= with the backward direction of a bidirectional module is not "
-                         "supported: the padding would come first; record each length alone")
+        x = reverse_prefixes(x, n_real)
     s0 = initial_states(system, h0, x.shape[0])  # (B, S)
     states = system.run(x, s0, progress=progress)  # (B, T, S)
     arrays = {"states": states.numpy(), "initial": s0.numpy(), "inputs": x.numpy()}
@@ -186,7 +192,19 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
     return Trace(**arrays, parts=system.parts, metadata=meta)
 
 
-def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
+def reverse_prefixes(x: torch.Tensor, lengths: list[int] | None) -> torch.Tensor:
+    """Each sequence (B, T, .) read backward over its real steps; padding stays at the end."""
+    if lengths is None:
+        return x.flip(1)
+    T = x.shape[1]
+    t = torch.arange(T)
+    n = torch.as_tensor(lengths)[:, None]  # (B, 1)
+    idx = torch.where(t[None, :] < n, n - 1 - t[None, :], t[None, :])  # (B, T)
+    return torch.gather(x, 1, idx[:, :, None].expand(-1, -1, x.shape[2]))
+
+
+def _through_front(system: RecurrentSystem, inputs: Any, lengths: list[int] | None = None
+                   ) -> torch.Tensor:
     """The recurrent part's inputs (B, T, I) from the model's raw inputs (token ids included)."""
     raw = inputs
     if isinstance(raw, np.ndarray):
@@ -201,9 +219,17 @@ def _through_front(system: RecurrentSystem, inputs: Any) -> torch.Tensor:
         p = next(system.front.parameters(), None)
         if p is not None:
             raw = raw.to(p.dtype)
+    from .systems import LowerLayers
+
+    front = system.front
     try:
         with torch.no_grad():
-            out = system.front(raw)
+            if isinstance(front, LowerLayers):
+                out = front(raw, lengths)
+            elif isinstance(front, torch.nn.Sequential) and isinstance(front[-1], LowerLayers):
+                out = front[-1](front[0](raw), lengths)
+            else:
+                out = front(raw)
     except Exception as err:  # noqa: BLE001 - the front end's own error, with the context
         raise ValueError(f"the front end {system.front_name!r} failed on inputs of shape "
                          f"{tuple(raw.shape)} ({type(err).__name__}: {err}); pass what the "
@@ -244,6 +270,8 @@ def trace_metadata(system: RecurrentSystem, shape: tuple[int, ...]) -> dict[str,
         "n_steps": T,
         "output_part": system.output_part,
         "time_reversed": system.time_reversed,
+        "direction": getattr(system, "direction", None),
+        "layer": getattr(system, "layer_index", None),
         "dt": system.dt,
         "fingerprint": system.fingerprint,
         "dtype": str(system.dtype).replace("torch.", ""),

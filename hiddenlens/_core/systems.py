@@ -178,7 +178,13 @@ class RecurrentSystem:
         self.front_name: str | None = None
         # kept for analyses that must call the whole user model (they guard it); never mutated
         self.model = model
-        self.output_part = f"layer{len(self.layers) - 1}.h" if self.layers else next(iter(parts))
+        self.output_part = next(iter(parts))
+        if self.layers:  # the top layer's h, whichever layer of the module it is
+            top = self.layers[-1].h
+            self.output_part = next((n for n, sl in self.parts.items()
+                                     if n.endswith(".h") and sl == top), self.output_part)
+        self.direction: str | None = None  # "forward" / "backward" of a bidirectional module
+        self.layer_index: int | None = None  # the module's layer when one layer was wrapped
 
     @property
     def dt(self) -> float | None:
@@ -202,6 +208,19 @@ class RecurrentSystem:
                 new.append(h_new)
             inp = h_new  # within one step, layer l reads layer l-1's new state
         return torch.cat(new, dim=-1)
+
+    def without_front(self) -> RecurrentSystem:
+        """This system reading the recurrent part's own inputs (B, T, I): no front end.
+
+        Analyses that draw probe inputs of their own (the memory probe) feed the recurrent
+        part directly; the weight copies are shared, never changed.
+        """
+        if self.front is None:
+            return self
+        core = copy.copy(self)
+        core.front = None
+        core.front_name = None
+        return core
 
     def zeros(self, batch: int) -> torch.Tensor:
         """Zero initial states (B, S) in the system's dtype."""
@@ -393,6 +412,7 @@ def wrap(
     submodule: str | None = None,
     cell: str | None = None,
     direction: str | None = None,
+    layer: int | None = None,
     state_size: int | None = None,
     input_size: int | None = None,
     parts: Mapping[str, slice] | None = None,
@@ -419,7 +439,15 @@ def wrap(
         ``cell(input, hidden)``; its sizes come from its ``hidden_size`` / ``input_size``
         attributes or from ``state_size`` / ``input_size``.
     direction : {"forward", "backward"}, optional
-        Which direction of a single-layer bidirectional module to analyse.
+        Which direction of a bidirectional module to analyse (required for one).
+    layer : int, optional
+        One layer of a stacked ``nn.RNN``/``GRU``/``LSTM`` as the system, fed by the layers
+        below it: they become the system's front end (a private copy run by torch over the
+        whole sequence, both directions for a bidirectional stack), so :func:`record` still
+        takes the module's own inputs. Default: the whole stack; for a bidirectional stack of
+        several layers, the top layer (each layer above the first reads both directions of
+        the layer below over the whole sequence, so only one layer and one direction at a time
+        is a recurrent system).
     state_size, input_size : int
         Required for a step function (and a cell without ``hidden_size`` / ``input_size``
         attributes); ``input_size=0`` for an autonomous map.
@@ -461,10 +489,14 @@ def wrap(
     if front is not None:
         front_module = _front_of(obj, front)
         system = wrap(obj, dtype=dtype, submodule=submodule, cell=cell, direction=direction,
-                      state_size=state_size, input_size=input_size, parts=parts, order=order,
-                      name=name)
-        system.front = front_module
-        system.front_name = front
+                      layer=layer, state_size=state_size, input_size=input_size, parts=parts,
+                      order=order, name=name)
+        if system.front is not None:  # the user's front end, then the stack's lower layers
+            system.front = nn.Sequential(front_module, system.front).eval()
+            system.front_name = f"{front} + {system.front_name}"
+        else:
+            system.front = front_module
+            system.front_name = front
         return system
     dt = as_dtype(dtype)
     if isinstance(obj, RecurrentSystem):
@@ -479,6 +511,9 @@ def wrap(
         if submodule is not None:
             raise ValueError("give either submodule= (a built-in recurrent module) or cell= "
                              "(a cell of your own), not both")
+        if layer is not None or direction is not None:
+            raise ValueError("layer= and direction= apply to nn.RNN/GRU/LSTM stacks, not to a "
+                             "cell of your own (drop them)")
         target = _named_submodule(obj, cell)
         label = name or f"{type(obj).__name__}.{cell}"
         if _is_leaky_module(target) and state_size is None and order is None:
@@ -489,19 +524,20 @@ def wrap(
         if module is None:  # obj itself is a cell of the user's own
             return _wrap_cell_module(obj, dt, state_size, input_size, parts, order, name)
         if _is_leaky_module(module):
-            if direction is not None:
-                raise ValueError("a leaky RNN has one direction; drop direction=")
+            if direction is not None or layer not in (None, 0):
+                raise ValueError("a leaky RNN has one direction and one layer; drop direction= "
+                                 "and layer=")
             return _wrap_leaky_module(module, dt, source=name or type(obj).__name__,
                                       model=obj)
         return _wrap_module(module, dt, direction, source=name or type(obj).__name__,
-                            path=path, model=obj)
+                            path=path, model=obj, layer=layer)
     if isinstance(obj, nn.Module):
-        if submodule is not None or direction is not None:
-            raise ValueError("submodule= and direction= apply to built-in recurrent modules, not "
-                             "to a cell wrapped with state_size=")
+        if submodule is not None or direction is not None or layer is not None:
+            raise ValueError("submodule=, direction= and layer= apply to built-in recurrent "
+                             "modules, not to a cell wrapped with state_size=")
         return _wrap_cell_module(obj, dt, state_size, input_size, parts, order, name)
     if callable(obj):
-        for arg, val in (("submodule", submodule), ("direction", direction)):
+        for arg, val in (("submodule", submodule), ("direction", direction), ("layer", layer)):
             if val is not None:
                 raise ValueError(f"{arg}= applies to recurrent modules, not to step functions")
         return _wrap_callable(obj, dt, state_size, input_size, parts, name, order)
@@ -980,7 +1016,7 @@ def _module_kind(module: nn.Module) -> str:
                      "nn.GRU, nn.LSTM, nn.RNNCell, nn.GRUCell, nn.LSTMCell (scripted too)")
 
 
-def _wrap_module(module, dtype, direction, *, source, path, model):
+def _wrap_module(module, dtype, direction, *, source, path, model, layer=None):
     kind = _module_kind(module)
     label = f"{_class_name(module)}" + (f" '{path}'" if path else "")
     if isinstance(module, torch.jit.ScriptModule):
@@ -988,36 +1024,45 @@ def _wrap_module(module, dtype, direction, *, source, path, model):
     if _class_name(module).endswith("Cell"):
         if direction is not None:
             raise ValueError(f"{label} is a cell, which has one direction; drop direction=")
+        if layer not in (None, 0):
+            raise ValueError(f"{label} is a cell, which has one layer; drop layer=")
         names = [("weight_ih", "weight_hh", "bias_ih", "bias_hh")]
-        num_layers, suffix = 1, ""
+        layer_ids, suffix = [0], ""
     else:
         num_layers = module.num_layers
         suffix = ""
+        if layer is not None and (isinstance(layer, bool) or not isinstance(layer, int)
+                                  or not -num_layers <= layer < num_layers):
+            raise ValueError(f"layer must be an integer in 0 .. {num_layers - 1} (the layers of "
+                             f"{label}), got {layer!r}")
+        if layer is not None:
+            layer %= num_layers
         if module.bidirectional:
-            if num_layers > 1:
-                raise ValueError(
-                    f"{label} is bidirectional with num_layers={num_layers}: each upper layer "
-                    "reads both directions of the layer below over the whole sequence, so no "
-                    "single direction is a recurrent system; analyse a single-layer "
-                    "bidirectional module with direction='forward' or 'backward'"
-                )
             if direction not in ("forward", "backward"):
+                which = "" if num_layers == 1 else (
+                    f" and, for its {num_layers} layers, the layer with layer=k (default: the "
+                    f"top layer, {num_layers - 1}; each layer above the first reads both "
+                    "directions of the layer below, which a front end of the lower layers "
+                    "computes)")
                 raise ValueError(
                     f"{label} is bidirectional; pick the direction to analyse with "
                     "wrap(model, direction='forward') or direction='backward' (the backward "
-                    "direction runs from the last step to the first)"
+                    f"direction runs from the last step to the first){which}"
                 )
             suffix = "_reverse" if direction == "backward" else ""
+            if layer is None and num_layers > 1:
+                layer = num_layers - 1
         elif direction not in (None, "forward"):
             raise ValueError(f"{label} is not bidirectional; direction={direction!r} does not "
                              "apply (drop it)")
+        layer_ids = list(range(num_layers)) if layer is None else [layer]
         names = [(f"weight_ih_l{k}{suffix}", f"weight_hh_l{k}{suffix}",
-                  f"bias_ih_l{k}{suffix}", f"bias_hh_l{k}{suffix}") for k in range(num_layers)]
+                  f"bias_ih_l{k}{suffix}", f"bias_hh_l{k}{suffix}") for k in layer_ids]
     has_bias = bool(module.bias)
     H = module.hidden_size
     P = int(getattr(module, "proj_size", 0) or 0)  # LSTM projection: h has P units, c has H
     layers, parts, start = [], {}, 0
-    for k, (wi, wh, bi, bh) in enumerate(names):
+    for k, (wi, wh, bi, bh) in zip(layer_ids, names, strict=True):
         h = slice(start, start + (P or H))
         start += P or H
         c = None
@@ -1034,11 +1079,68 @@ def _wrap_module(module, dtype, direction, *, source, path, model):
         parts[f"layer{k}.h"] = h
         if c is not None:
             parts[f"layer{k}.c"] = c
-    return RecurrentSystem(
-        state_size=start, input_size=module.input_size, parts=parts, dtype=dtype, kind=kind,
+    system = RecurrentSystem(
+        state_size=start, input_size=layers[0].input_size, parts=parts, dtype=dtype, kind=kind,
         source=source, fingerprint=fingerprint(model), layers=tuple(layers),
         time_reversed=suffix == "_reverse", model=model,
     )
+    system.direction = direction if direction is not None else (
+        "forward" if getattr(module, "bidirectional", False) else None)
+    system.layer_index = layer_ids[0] if len(layer_ids) == 1 and layer is not None else None
+    if layer_ids[0] > 0:
+        # the layers below, run by torch over the whole sequence, feed this one
+        system.front = _lower_layers(module, kind, layer_ids[0], dtype)
+        system.front_name = f"layers 0..{layer_ids[0] - 1} of {label}"
+    return system
+
+
+class LowerLayers(nn.Module):
+    """The first layers of a stacked module (both directions), returning their output (B, T, .).
+
+    The front end of one layer of a stack: a private copy built from the module's weights, in
+    eval mode, batch first, in the analysis' precision.
+    """
+
+    def __init__(self, stack: nn.Module) -> None:
+        super().__init__()
+        self.stack = stack
+
+    def forward(self, x: torch.Tensor, lengths: list[int] | None = None) -> torch.Tensor:
+        p = next(self.stack.parameters())
+        x = x.to(p.dtype)
+        with warnings.catch_warnings():
+            # torch notes that its oneDNN path lacks projections and takes its own: no action
+            warnings.filterwarnings("ignore", message=".*projections is not supported.*")
+            if lengths is None:
+                return self.stack(x)[0]
+            # each sequence on its own length: the backward direction starts at its last real
+            # step, as for a packed batch (padded steps come out as zeros)
+            packed = nn.utils.rnn.pack_padded_sequence(
+                x, torch.as_tensor(lengths), batch_first=True, enforce_sorted=False)
+            out = self.stack(packed)[0]
+            return nn.utils.rnn.pad_packed_sequence(out, batch_first=True,
+                                                    total_length=x.shape[1])[0]
+
+
+def _lower_layers(module: nn.Module, kind: str, n: int, dtype: torch.dtype) -> nn.Module:
+    name = _class_name(module)
+    cls = {"LSTM": nn.LSTM, "GRU": nn.GRU, "RNN": nn.RNN}[name]
+    kw: dict[str, Any] = {"num_layers": n, "bias": bool(module.bias), "batch_first": True,
+                          "bidirectional": bool(module.bidirectional), "dtype": dtype}
+    if name == "RNN":
+        kw["nonlinearity"] = "relu" if kind == "rnn_relu" else "tanh"
+    if name == "LSTM" and int(getattr(module, "proj_size", 0) or 0):
+        kw["proj_size"] = int(module.proj_size)
+    # built on the meta device, so no initialisation draws from torch's global generator
+    stack = cls(module.input_size, module.hidden_size, device="meta", **kw).to_empty(
+        device="cpu")
+    with torch.no_grad():
+        for pname, p in stack.named_parameters():
+            p.copy_(_weight(module, pname, dtype))
+    stack.eval()
+    for p in stack.parameters():
+        p.requires_grad_(False)
+    return LowerLayers(stack).eval()
 
 
 def _wrap_callable(fn, dtype, state_size, input_size, parts, name, order=None, is_cell=False):

@@ -318,8 +318,12 @@ def _split_spec(spec: str) -> tuple[str, str | None]:
     return spec, None
 
 
-def load_inputs(spec: str) -> Any:
-    """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything)."""
+def load_inputs(spec: str, *, raw: bool = False) -> Any:
+    """Read inputs from ``file.npy`` or ``file.npz[:key]`` (never unpickling anything).
+
+    ``raw``: the inputs go to the model's front end (``--front``), so integer token ids of
+    shape (B, T) or (T,) are accepted besides float features.
+    """
     import numpy as np
 
     path, key = _split_spec(spec)
@@ -330,9 +334,17 @@ def load_inputs(spec: str) -> Any:
     # our own handle, closed however numpy fails on a damaged file
     with open(path, "rb") as fh:
         arr = _read_array(np, fh, path, key)
+    if raw and np.issubdtype(arr.dtype, np.integer) and not np.issubdtype(arr.dtype, np.bool_):
+        if arr.ndim not in (1, 2):
+            raise CommandError(f"token ids in {spec!r} have shape {arr.shape}; expected (B, T) "
+                               "or (T,) integers for the front end")
+        return arr[None] if arr.ndim == 1 else arr  # (B, T) token ids
     if not np.issubdtype(arr.dtype, np.floating):
+        hint = ("integer token ids are read with --front naming the embedding"
+                if np.issubdtype(arr.dtype, np.integer) else
+                "one-hot encode tokens and save as float32")
         raise CommandError(f"inputs in {spec!r} have dtype {arr.dtype}; expected floating-point "
-                           "numbers (one-hot encode tokens and save as float32)")
+                           f"numbers ({hint})")
     if arr.ndim not in (2, 3):
         raise CommandError(f"inputs in {spec!r} have shape {arr.shape}; expected (B, T, I) or "
                            "(T, I)")
@@ -401,7 +413,13 @@ def _model_options(rep: argparse.ArgumentParser) -> None:
                      help="a submodule that is a cell of your own, called as cell(input, hidden)")
     rep.add_argument("--front", metavar="NAME",
                      help="a submodule that turns the raw --inputs into the recurrent part's "
-                          "inputs (a linear encoder)")
+                          "inputs (an embedding fed integer token ids (B, T), or a linear "
+                          "encoder)")
+    rep.add_argument("--direction", choices=("forward", "backward"),
+                     help="the direction of a bidirectional recurrent module")
+    rep.add_argument("--layer", type=int, metavar="K",
+                     help="one layer of a stacked module, fed by the layers below (default for "
+                          "a bidirectional stack: the top layer)")
     rep.add_argument("--lengths", metavar="FILE[:KEY]",
                      help="real lengths (B,) of padded --inputs, from .npy or .npz")
     rep.add_argument("--targets", metavar="FILE[:KEY]",
@@ -449,8 +467,9 @@ def _user_run(args: argparse.Namespace, weights: str, *, quiet: bool) -> Any:
         print(f"note: {weights}: keys not used by the model: {', '.join(loaded.extra_keys)}",
               file=sys.stderr)
     model = loaded.model.eval()
-    if args.submodule or args.cell or args.front:
-        return wrap(model, submodule=args.submodule, cell=args.cell, front=args.front)
+    if args.submodule or args.cell or args.front or args.direction or args.layer is not None:
+        return wrap(model, submodule=args.submodule, cell=args.cell, front=args.front,
+                    direction=args.direction, layer=args.layer)
     return model
 
 
@@ -560,7 +579,11 @@ def _checkpoint_timeline(args: argparse.Namespace, inputs: Any) -> tuple[Any, An
 def _cmd_report(args: argparse.Namespace) -> int:
     which = _analyses(args.analyses)
     out = _output_paths(args.output, args.force)
-    inputs = load_inputs(args.inputs) if args.inputs else None  # before the slow part
+    if args.front and not args.inputs:
+        raise CommandError("--front needs --inputs: the raw inputs (token ids or features) the "
+                           "front end turns into the recurrent part's inputs")
+    # before the slow part
+    inputs = load_inputs(args.inputs, raw=bool(args.front)) if args.inputs else None
     over = None
     if args.checkpoints is not None:
         load_factory(args.model)  # a clear message for a bad --model before any work
@@ -586,8 +609,14 @@ def _cmd_report(args: argparse.Namespace) -> int:
     for name, w in zip(names, weights, strict=True):
         runs[name] = _user_run(args, w, quiet=args.quiet)
     from .._core.record import as_system
+    from .._core.systems import LowerLayers
 
-    input_size = as_system(next(iter(runs.values()))).input_size
+    first = as_system(next(iter(runs.values())))
+    input_size = first.input_size
+    if isinstance(first.front, LowerLayers):  # one layer of a stack: the module's own inputs
+        input_size = first.front.stack.input_size
+    elif first.front is not None:
+        input_size = None  # a front end of the user's: its raw inputs are not checked here
     if inputs is None or (over is not None and not args.inputs):
         n, t = args.probe or DEFAULT_PROBE
         if inputs is None:
@@ -595,7 +624,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
         source = (f"built-in probe: i.i.d. standard-normal inputs, {n} x {t} steps, "
                   f"seed {args.seed}")
     else:
-        if inputs.shape[-1] != input_size and not args.front:
+        if input_size is not None and inputs.shape[-1] != input_size:
             raise CommandError(
                 f"inputs in {args.inputs!r} have {inputs.shape[-1]} features but the model "
                 f"expects {input_size}; pass an array of shape (B, T, {input_size})")

@@ -8,6 +8,7 @@ from typing import Any
 
 import ipywidgets as widgets
 import numpy as np
+import torch
 
 from ..._analyses.runner import ModelLike, Sequences
 from ..._core.record import as_system, record
@@ -54,9 +55,18 @@ class Explorer(Board):
             raise TypeError("task must be a mapping of the model's task metrics (e.g. "
                             f"{{'accuracy': 0.97, 'chance': 0.5}}), got {type(task).__name__}")
         system = as_system(model_or_system, **wrap_options)
-        x = as_sequences(inputs, system.input_size, system.dtype,
-                         what=f"the {system.source} system")  # (B, T, I)
-        trace = record(system, x, h0)
+        if system.front is None:
+            x = as_sequences(inputs, system.input_size, system.dtype,
+                             what=f"the {system.source} system")  # (B, T, I)
+            trace = record(system, x, h0)
+        else:
+            # raw inputs (token ids, features) go through the front end once; the tabs work
+            # on the recurrent part and the inputs it received, in the module's time order
+            trace = record(system, inputs, h0)
+            x = torch.from_numpy(np.array(trace.inputs))  # (B, T, I)
+            if system.time_reversed:
+                x = x.flip(1)
+            system = system.without_front()
         run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
                   seed)
         timelines = check_timelines(timeline, [run.name])
