@@ -745,9 +745,9 @@ def _system_loss_gradients(system, inputs, loss_fn, targets, steps) -> LossGradi
         raise TypeError(f"loss_fn must be callable as loss_fn(states, targets) -> scalar "
                         f"tensor, got {type(loss_fn).__name__}")
     if system.front is not None:  # the model's raw inputs, through its front end (no grad)
-        from .._core.record import _through_front
+        from .._core.record import through_front
 
-        inputs = _through_front(system, inputs)
+        inputs = through_front(system, inputs)
     x = as_sequences(inputs, system.input_size, torch.float64 if system.is_module
                      else system.dtype, what=f"the {system.source} system")  # (B, T, I)
     if system.time_reversed:

@@ -171,7 +171,7 @@ def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool 
                 raise ValueError(f"lengths= and mask= need batched raw inputs (B, T, ...) for "
                                  f"the front end {system.front_name!r}, got {describe(inputs)}")
             n_real = _check_lengths(lengths, mask, shape[0], shape[1])
-        inputs = _through_front(system, inputs, n_real)
+        inputs = through_front(system, inputs, n_real)
     x = as_sequences(inputs, system.input_size, system.dtype,
                      what=f"the {system.source} system")  # (B, T, I)
     if n_real is None:
@@ -203,7 +203,7 @@ def reverse_prefixes(x: torch.Tensor, lengths: list[int] | None) -> torch.Tensor
     return torch.gather(x, 1, idx[:, :, None].expand(-1, -1, x.shape[2]))
 
 
-def _through_front(system: RecurrentSystem, inputs: Any, lengths: list[int] | None = None
+def through_front(system: RecurrentSystem, inputs: Any, lengths: list[int] | None = None
                    ) -> torch.Tensor:
     """The recurrent part's inputs (B, T, I) from the model's raw inputs (token ids included)."""
     raw = inputs
