@@ -9,6 +9,7 @@ loss at every step.
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -247,7 +248,7 @@ def gradient_flow(
         raise ValueError(f"tol must be a number in (0, 1) (relative tolerance of the power "
                          f"iteration), got {tol!r}")
     lo_fit, hi_fit = _check_fit_lags(fit_lags, max_lag)
-    if isinstance(max_iter, bool) or not isinstance(max_iter, int) or max_iter < 1:
+    if isinstance(max_iter, bool) or not isinstance(max_iter, numbers.Integral) or max_iter < 1:
         raise ValueError(f"max_iter must be a positive integer, got {max_iter!r}")
     chunk = check_chunk(chunk)
     prev, x = prev[sel], x[sel]

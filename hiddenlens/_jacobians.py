@@ -16,7 +16,7 @@ import torch
 import torch.nn.functional as F
 from torch.func import jacrev, jvp, vjp, vmap
 
-from ._systems import LayerWeights, RecurrentSystem
+from ._systems import LayerWeights, RecurrentSystem, refuse_random_steps
 from ._threads import single_thread
 from ._validation import as_dtype
 
@@ -584,6 +584,9 @@ def _trace_tensors(system: RecurrentSystem, trace: Any) -> tuple[torch.Tensor, t
         )
     prev = torch.from_numpy(np.ascontiguousarray(trace.previous_states())).to(system.dtype)
     x = torch.from_numpy(np.array(trace.inputs, dtype=prev.numpy().dtype))  # writable copy
+    # a trace recorded elsewhere may meet a random step function here first: refuse it before
+    # any step runs outside vmap (which would draw from the user's global generator)
+    refuse_random_steps(system, prev[:1, 0], x[:1, 0])
     return prev, x
 
 

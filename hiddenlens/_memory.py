@@ -22,9 +22,9 @@ from ._options import analysis, check_options, int_seed, progress_bar
 from ._record import as_system, record
 from ._results import Result, frozen_mapping, readonly
 from ._stepcheck import step_errors
-from ._systems import RecurrentSystem
+from ._systems import RecurrentSystem, refuse_random_steps
 from ._trace import Trace
-from ._validation import check_trace_fits
+from ._validation import check_trace_finite, check_trace_fits
 
 __all__ = ["MemoryCurve", "memory_curve"]
 
@@ -358,6 +358,7 @@ def memory_curve(
     inputs = trace
     if isinstance(trace, Trace):
         check_trace_fits(system, trace, "memory_curve")
+        check_trace_finite(trace, "memory_curve", ("inputs",))  # the decoded sources
         if h0 is not None:
             raise ValueError("h0 was given with a trace, which holds its own initial states; "
                              "drop h0, or record with hiddenlens.record(system, inputs, h0)")
@@ -367,6 +368,9 @@ def memory_curve(
             "memory_curve(system, hiddenlens.record(system, inputs, h0))",
             DeprecationWarning, stacklevel=3)
     opts = _check_options(system, inputs, locals())
+    if isinstance(trace, Trace) and opts["method"] != "decoding":
+        check_trace_finite(trace, "memory_curve", ("initial",))  # the steps start there
+        refuse_random_steps(system, trace.initial[:1], trace.inputs[:1, 0])  # before any draw
     with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
