@@ -224,6 +224,8 @@ def _gradient_words(f: Mapping[str, Any]) -> list[str]:
 
 def _spectra_words(f: Mapping[str, Any]) -> list[str]:
     top = f.get("top_singular_value_median")
+    if isinstance(top, float) and math.isnan(top):
+        return ["one-step stretch could not be measured (no step had finite states)"]
     if _gradient_words(f) or not finite(top):
         return []  # the gradient figures say more about stretching over many steps
     return [f"one step stretches states by up to {top:.3g}x (median)"]

@@ -118,6 +118,8 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
     parts: list[str] = []
     for spec in registered():
         parts += spec.phrases(figures)
+    if not parts and any(isinstance(v, float) and math.isnan(v) for v in figures.values()):
+        return "no key figure could be measured (their values are NaN: the states were not finite)"
     return "; ".join(parts)
 
 

@@ -677,3 +677,17 @@ def test_numpy_scalar_options_are_numbers_everywhere():
     hl.Monitor(inputs(), every=np.int64(5), figures=["participation_ratio"])
     assert hl.wrap(calm, state_size=np.int64(2), input_size=np.int64(2)).parts["state"] == \
         slice(0, 2)
+
+
+def test_summary_says_so_when_no_figure_could_be_measured():
+    # NaN in a recurrent weight: every state is NaN from t=0; the summary must not be empty
+    m = _seeded(lambda: nn.GRU(2, 4, batch_first=True))
+    with torch.no_grad():
+        m.weight_hh_l0[0, 0] = float("nan")
+    with pytest.warns(hl.NonFiniteStateWarning), pytest.warns(RuntimeWarning, match="non-finite"):
+        res = hl.run_analyses(m, inputs(), which=["spectra", "gradient_flow"], on_error="skip")
+    assert "before any finite lag" in res.skipped["gradient_flow"]
+    words = hl.summary_sentence(hl.key_figures(res))
+    assert words == "one-step stretch could not be measured (no step had finite states)"
+    assert hl.summary_sentence({"participation_ratio": math.nan}).startswith(
+        "no key figure could be measured")
