@@ -503,7 +503,11 @@ def _check_samples(samples: Any, B: int) -> torch.Tensor:
     if not ok:
         raise ValueError(f"samples must be sample indices in [0, {B}), e.g. samples=[0, 2], got "
                          f"{samples!r}")
-    return torch.from_numpy(np.where(idx < 0, idx + B, idx).astype(np.int64))
+    idx = np.where(idx < 0, idx + B, idx).astype(np.int64)
+    if np.unique(idx).size != idx.size:
+        raise ValueError(f"samples must be distinct sample indices (each counted once in the "
+                         f"rate), got {samples!r}")
+    return torch.from_numpy(idx)
 
 
 def _part_columns(trace: Any, parts: Any) -> torch.Tensor | None:

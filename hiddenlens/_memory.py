@@ -437,6 +437,10 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
     if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
             or not math.isfinite(threshold):
         raise ValueError(f"threshold must be a finite number, got {threshold!r}")
+    if method == "decoding" and not 0 < threshold <= 1:
+        # R^2 and chance-adjusted accuracy never exceed 1: no lag could reach the level
+        raise ValueError(f"threshold must be in (0, 1] for decoding scores (R^2 or "
+                         f"chance-adjusted accuracy), got {threshold!r}")
     alphas = check_alphas(given["alphas"])
     normalize = given["normalize"]
     if method == "decoding":

@@ -120,7 +120,13 @@ class Trace:
         """Indices into the flat state covered by ``parts`` (all of the state when None)."""
         if parts is None:
             return np.arange(self.state_size)
-        names = [parts] if isinstance(parts, str) else list(parts)
+        if isinstance(parts, str):
+            names = [parts]
+        elif isinstance(parts, (list, tuple)) and all(isinstance(n, str) for n in parts):
+            names = list(parts)
+        else:
+            raise TypeError(f"parts must be a part name or a list of names (this trace has "
+                            f"{', '.join(map(repr, self.parts))}), got {parts!r}")
         if not names:
             raise ValueError("parts is empty; name at least one part or pass None for all")
         return np.concatenate([np.arange(self.state_size)[self._slice(n)] for n in names])

@@ -371,6 +371,9 @@ CASES = {
                                                                      threshold=math.nan),
     ("`gradient_flow`", "`samples=[7]` on B = 3"): lambda: hl.gradient_flow(gru(), trace(),
                                                                             samples=[7]),
+    ("`gradient_flow`", "`parts=3`"): lambda: hl.gradient_flow(gru(), trace(), parts=3),
+    ("`gradient_flow`", "`samples=[0, 0]`"): lambda: hl.gradient_flow(gru(), trace(),
+                                                                      samples=[0, 0]),
     ("`gradient_flow`", "a random step function on a trace recorded elsewhere"):
         rng_kept(lambda: hl.gradient_flow(noisy_system(), foreign_trace())),
     ("`loss_gradient_norms`", "a loss that is not callable"): lambda: hl.loss_gradient_norms(
@@ -433,6 +436,8 @@ CASES = {
         gru(), hl.record(gru(), np.ones((3, 60, 2), np.float32)), max_lag=5, washout=2),
     ("`memory_curve`", "`max_lag=-1`"): lambda: hl.memory_curve(gru(), max_lag=-1),
     ("`memory_curve`", "`method=\"x\"`"): lambda: hl.memory_curve(gru(), method="x"),
+    ("`memory_curve`", "`threshold=2` with decoding"): lambda: hl.memory_curve(gru(),
+                                                                               threshold=2),
     ("`memory_curve`", "NaN in the trace's inputs"): lambda: hl.memory_curve(
         gru(), with_states(inputs_=np.full((3, 30, 2), np.nan, np.float32)), max_lag=5,
         washout=2),
