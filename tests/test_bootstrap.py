@@ -93,7 +93,8 @@ def test_within_noise_separates_real_changes_from_input_draws():
     assert within_noise(a, c, "lyapunov_max") is False
     assert within_noise(a, c, "lyapunov_max", method="overlap") is False
     assert within_noise(a, b, "lyapunov_max", method="overlap") is True
-    assert within_noise(a, b, "no_such_figure") is None
+    with pytest.raises(ValueError, match="no figure named 'no_such_figure'"):
+        within_noise(a, b, "no_such_figure")  # a misspelt name is an error, not "no interval"
     table = compare_intervals(a, c)
     assert table.loc[table.figure == "lyapunov_max", "within_noise"].item() is False
 

@@ -10,6 +10,7 @@ other seeds instead.
 from __future__ import annotations
 
 import math
+import numbers
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -136,7 +137,7 @@ class FigureIntervals:
 
 # ---------------------------------------------------------------------- checks
 def _check_level(level: Any) -> float:
-    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0 < level < 1:
+    if isinstance(level, bool) or not isinstance(level, numbers.Real) or not 0 < level < 1:
         raise ValueError(f"level must be a number strictly between 0 and 1 (the nominal "
                          f"coverage, e.g. 0.9), got {level!r}")
     return float(level)
@@ -435,6 +436,9 @@ def bootstrap_figures(
     from .runner import run_analyses
 
     n_draws = _check_count(n_draws, "n_draws", 0, 4)
+    if results is not None and not isinstance(results, Mapping):
+        raise TypeError(f"results must be the mapping run_analyses returned (analysis name -> "
+                        f"result), got {type(results).__name__}")
     if results is None:
         results = run_analyses(model_or_system, inputs, which=which, options=options,
                                seed=seed)
@@ -475,6 +479,12 @@ def within_noise(a: FigureIntervals, b: FigureIntervals, figure: str, *,
             raise TypeError(f"{name} must be a FigureIntervals (from figure_intervals or "
                             f"bootstrap_figures), got {type(r).__name__}")
     if figure not in a or figure not in b:
+        from .figures import figure_labels
+
+        known = set(figure_labels()) | set(a.figures) | set(b.figures)
+        if figure not in known:
+            raise ValueError(f"no figure named {figure!r}; these intervals hold "
+                             f"{', '.join(dict.fromkeys(a.figures + b.figures)) or 'none'}")
         return None
     ra, rb = a.replicates.get(figure), b.replicates.get(figure)
     paired = (ra is not None and rb is not None and ra.shape == rb.shape

@@ -160,6 +160,9 @@ def _figures_lyapunov(r: Any) -> dict[str, Any]:
         out["kaplan_yorke_dimension"] = float(r.kaplan_yorke)
     if isinstance(getattr(r, "n_steps", None), (int, np.integer)):
         out["lyapunov_steps"] = int(r.n_steps)
+    growth = (getattr(r, "metadata", None) or {}).get("state_growth")
+    if growth is not None:
+        out["lyapunov_state_growth"] = float(growth)
     return out
 
 
@@ -234,6 +237,8 @@ def _gradient_words(f: Mapping[str, Any]) -> list[str]:
 
 def _spectra_words(f: Mapping[str, Any]) -> list[str]:
     top = f.get("top_singular_value_median")
+    if isinstance(top, float) and math.isnan(top):
+        return ["one-step stretch could not be measured (no step had finite states)"]
     if _gradient_words(f) or not finite(top):
         return []  # the gradient figures say more about stretching over many steps
     return [f"one step stretches states by up to {top:.3g}x (median)"]
@@ -243,8 +248,16 @@ def _lyapunov_words(f: Mapping[str, Any]) -> list[str]:
     lam = f.get("lyapunov_max")
     if not finite(lam):
         return []
-    kind = "chaotic on these inputs" if lam > 0.01 else (
-        "near the edge of chaos" if lam > -0.01 else "contracting")
+    from .lyapunov import is_unbounded
+
+    growth = f.get("lyapunov_state_growth")
+    if is_unbounded(growth, f.get("lyapunov_steps")):
+        # a positive exponent of an unbounded trajectory is divergence, not chaos
+        kind = (f"the states grow without bound, ~x{math.exp(growth):.3g} per step: "
+                "divergence, not chaos")
+    else:
+        kind = "chaotic on these inputs" if lam > 0.01 else (
+            "near the edge of chaos" if lam > -0.01 else "contracting")
     n = f.get("lyapunov_steps")
     if n is not None and n < LYAPUNOV_MIN_STEPS:
         kind += f"; from only {n} counted step{'s' if n != 1 else ''}, not conclusive"
@@ -271,7 +284,11 @@ def _fixed_point_words(f: Mapping[str, Any]) -> list[str]:
     words = [", ".join(found) + f" {noun}"
              + (f" ({n_out:.0f} outside the recorded states, not counted)" if n_out else "")]
     if finite(f.get("slow_set_dimension")) and f["slow_set_dimension"] > 0:
-        words.append(f"slow set of dimension {f['slow_set_dimension']:.0f}")
+        # points along a line or sheet of fixed points sample a continuum: their number is
+        # the number of starts that reached it, not a count of separate points
+        words.append(f"slow set of dimension {f['slow_set_dimension']:.0f}"
+                     + (" (the marginal points sample a continuum; their count follows "
+                        "n_starts)" if f.get("fixed_points_marginal") else ""))
     return words
 
 
@@ -519,7 +536,8 @@ _spec(
     key_figures=_figures_lyapunov,
     figures={"lyapunov_max": Figure("largest Lyapunov exponent", "per step"),
              "kaplan_yorke_dimension": Figure("Kaplan-Yorke dimension"),
-             "lyapunov_steps": Figure("Lyapunov counted steps", "steps")},
+             "lyapunov_steps": Figure("Lyapunov counted steps", "steps"),
+             "lyapunov_state_growth": Figure("state norm growth (last half)", "log per step")},
     caution="Finite-time Lyapunov exponents of an input-driven network depend on the input "
             "statistics and on the number of steps; they are estimates, not properties of the "
             "weights alone.",

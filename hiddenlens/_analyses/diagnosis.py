@@ -4,6 +4,7 @@ key figures of the analyses, in plain words (no printing, no plotting)."""
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -77,10 +78,20 @@ def _plural(n: float, word: str) -> str:
     return f"{word}" if n == 1 else f"{word}s"
 
 
+def _pair(interval: Any) -> tuple[float, float]:
+    """``interval`` as (low, high) floats, or a ValueError saying what an interval is."""
+    try:
+        lo, hi = (float(x) for x in interval)
+    except (TypeError, ValueError):
+        raise ValueError(f"interval must be a pair (low, high) of numbers, got "
+                         f"{interval!r}") from None
+    return lo, hi
+
+
 def _interval_words(interval: Sequence[float] | None, fmt=_num) -> str:
     if interval is None:
         return ""
-    lo, hi = (float(x) for x in interval)
+    lo, hi = _pair(interval)
     if not (math.isfinite(lo) and math.isfinite(hi)):
         return ""
     return f" (95% interval {fmt(lo)} to {fmt(hi)})"
@@ -271,7 +282,7 @@ def _check_task(task: Any) -> dict[str, Any]:
         out["loss"] = out.pop("eval_loss")
     for k in ("accuracy", "chance"):
         v = out.get(k)
-        if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float))
+        if v is not None and (isinstance(v, bool) or not isinstance(v, numbers.Real)
                               or not 0.0 <= float(v) <= 1.0):
             raise ValueError(f"task[{k!r}] must be a fraction in [0, 1], got {v!r}; "
                              "pass e.g. 0.93 for 93%")
@@ -282,7 +293,7 @@ def _check_task(task: Any) -> dict[str, Any]:
                              f"got {ci!r}")
         out["accuracy_interval"] = (float(ci[0]), float(ci[1]))
     n = out.get("n_eval")
-    if n is not None and (isinstance(n, bool) or not isinstance(n, int) or n <= 0):
+    if n is not None and (isinstance(n, bool) or not isinstance(n, numbers.Integral) or n <= 0):
         raise ValueError(f"task['n_eval'] must be a positive int (evaluated decisions), got {n!r}")
     return out
 
@@ -416,13 +427,18 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
     if horizon is None:
         horizon = t.get("horizon")
     if horizon is not None:
-        if isinstance(horizon, bool) or not isinstance(horizon, (int, float)) \
+        if isinstance(horizon, bool) or not isinstance(horizon, numbers.Real) \
                 or not math.isfinite(horizon) or horizon <= 0:
             raise ValueError(f"horizon must be a positive number of steps, got {horizon!r}; "
                              "pass e.g. the task's longest delay")
         horizon = float(horizon)
     if name is not None and not isinstance(name, str):
         raise TypeError(f"name must be a str, got {type(name).__name__}")
+    if settings is not None and not (isinstance(settings, Mapping) and all(
+            isinstance(v, Mapping) for v in settings.values())):
+        raise TypeError("settings must be a mapping analysis name -> options used (e.g. "
+                        "{'lyapunov': {'warmup': 50}}), got "
+                        f"{type(settings).__name__}")
     settings = dict(settings or {})
 
     task_level, score, interval, task_words = _task_outcome(t)
@@ -437,6 +453,16 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
         reasons.append(g_clause)
 
     lam = _finite(figures.get("lyapunov_max"))
+    growth = _finite(figures.get("lyapunov_state_growth"))
+    from .lyapunov import is_unbounded
+
+    unbounded = lam is not None and is_unbounded(growth, figures.get("lyapunov_steps"))
+    if unbounded:
+        # chaos needs a bounded trajectory; a positive exponent along growing states is not it
+        reasons.append(f"the states grow without bound along these inputs (~x"
+                       f"{math.exp(growth):.3g} per step; largest Lyapunov exponent "
+                       f"{lam:+.3g} per step: divergence, not chaos)")
+        lam = None  # no "chaotic" reading below
     if lam is not None and lam > _EDGE:
         reasons.append(f"chaotic on these inputs (largest Lyapunov exponent {lam:+.3g} per step)")
 
@@ -466,7 +492,7 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
     if solved and lam is not None and lam > _EDGE:
         warnings.append("chaotic on these inputs, yet the task is solved: the exponent is an "
                         "average along the recorded inputs and need not bear on the readout")
-    if failed and g_level == "ok" and (lam is None or lam <= _EDGE):
+    if failed and g_level == "ok" and not unbounded and (lam is None or lam <= _EDGE):
         warnings.append("the dynamics figures do not explain the failure; the readout, the "
                         "training length or the learning rate may be the limit")
     if span_key == "task_memory_span" and span is not None and horizon is not None \

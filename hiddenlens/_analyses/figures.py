@@ -63,11 +63,20 @@ def key_figures(results: Mapping[str, Any]) -> dict[str, Any]:
           lower bound).
         - then the figures of registered analyses.
     """
+    if not isinstance(results, Mapping):
+        raise TypeError(f"results must be a mapping analysis name -> result (from "
+                        f"run_analyses), got {type(results).__name__}")
     fig: dict[str, Any] = {}
     for spec in registered():
         r = results.get(spec.name)
         if r is not None:
-            fig.update(spec.key_figures(r))
+            try:
+                fig.update(spec.key_figures(r))
+            except (AttributeError, TypeError, KeyError) as err:
+                raise TypeError(
+                    f"results[{spec.name!r}] is a {type(r).__name__}, not a result of the "
+                    f"{spec.name!r} analysis ({type(err).__name__}: {err}); pass the mapping "
+                    "that run_analyses returns") from None
     order = list(figure_labels())
     return dict(sorted(fig.items(), key=lambda kv: order.index(kv[0]) if kv[0] in order
                        else len(order)))
@@ -103,9 +112,14 @@ def summary_sentence(figures: Mapping[str, Any]) -> str:
     Example: ``"gradients shrink ~10x every 23 steps; memory span 41 steps; 3 stable fixed
     points"``.
     """
+    if not isinstance(figures, Mapping):
+        raise TypeError(f"figures must be a mapping of key figures (from key_figures()), got "
+                        f"{type(figures).__name__}")
     parts: list[str] = []
     for spec in registered():
         parts += spec.phrases(figures)
+    if not parts and any(isinstance(v, float) and math.isnan(v) for v in figures.values()):
+        return "no key figure could be measured (their values are NaN: the states were not finite)"
     return "; ".join(parts)
 
 

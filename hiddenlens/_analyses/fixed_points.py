@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import numbers
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -17,7 +18,7 @@ from .._core.options import analysis, check_options, int_seed, progress_bar, ren
 from .._core.record import as_system
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
-from .._core.systems import RecurrentSystem
+from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.threads import single_thread
 from .._core.trace import Trace, unit_names
 from .._core.validation import as_float_tensor, check_finite, describe
@@ -409,6 +410,7 @@ def find_fixed_points(
     tol = float(tol) if tol is not None else (1e-12 if dt == torch.float64 else 1e-9)
     # batched S x S solves of small states: one torch thread (two were 5.4x slower on a
     # shared 2-core machine at S = 128; benchmarks/bench_fixed_points.py)
+    refuse_random_steps(system, s0[:1], x_star[None])  # before any step draws
     with grad_restored(), step_errors(system), single_thread(S <= _ONE_THREAD_UP_TO):
         s, q, converged, settled = _minimise(
             work, s0, x_star.expand(n, I), tol=tol, max_iter=max_iter, progress=progress,
@@ -626,13 +628,13 @@ def _constant_input(x: Any, I: int, dt: torch.dtype) -> torch.Tensor:
     if tuple(t.shape) != (I,):
         raise ValueError(f"x is the constant input x* and must have shape ({I},), one value "
                          f"per input feature, got {describe(x)}")
-    check_finite(t, "x")
+    check_finite(t, "x", "pass a finite constant input")
     return t
 
 
 def _starts(trace, starts, system, n_starts, noise, seed, dt) -> torch.Tensor:
     S = system.state_size
-    if isinstance(noise, bool) or not isinstance(noise, (int, float)) or not noise >= 0:
+    if isinstance(noise, bool) or not isinstance(noise, numbers.Real) or not noise >= 0:
         raise ValueError(f"noise must be a number >= 0 (a standard deviation), got {noise!r}")
     gen = torch.Generator().manual_seed(int(seed))
     if starts is not None:
@@ -643,7 +645,7 @@ def _starts(trace, starts, system, n_starts, noise, seed, dt) -> torch.Tensor:
             s0 = s0.unsqueeze(0)
         if s0.ndim != 2 or s0.shape[1] != S or s0.shape[0] == 0:
             raise ValueError(f"starts must have shape (n_starts, {S}), got {describe(starts)}")
-        check_finite(s0, "starts")
+        check_finite(s0, "starts", "pass finite start states")
     else:
         if not isinstance(trace, Trace):
             raise TypeError(f"trace must be a hiddenlens Trace of this system to sample starts "

@@ -9,6 +9,7 @@ loss at every step.
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -223,7 +224,7 @@ def gradient_flow(
         raise ValueError(f"tol must be a number in (0, 1) (relative tolerance of the power "
                          f"iteration), got {tol!r}")
     lo_fit, hi_fit = _check_fit_lags(fit_lags, max_lag)
-    if isinstance(max_iter, bool) or not isinstance(max_iter, int) or max_iter < 1:
+    if isinstance(max_iter, bool) or not isinstance(max_iter, numbers.Integral) or max_iter < 1:
         raise ValueError(f"max_iter must be a positive integer, got {max_iter!r}")
     chunk = check_chunk(chunk)
     prev, x = prev[sel], x[sel]
@@ -494,7 +495,11 @@ def _check_samples(samples: Any, B: int) -> torch.Tensor:
     if not ok:
         raise ValueError(f"samples must be sample indices in [0, {B}), e.g. samples=[0, 2], got "
                          f"{samples!r}")
-    return torch.from_numpy(np.where(idx < 0, idx + B, idx).astype(np.int64))
+    idx = np.where(idx < 0, idx + B, idx).astype(np.int64)
+    if np.unique(idx).size != idx.size:
+        raise ValueError(f"samples must be distinct sample indices (each counted once in the "
+                         f"rate), got {samples!r}")
+    return torch.from_numpy(idx)
 
 
 def _part_columns(trace: Any, parts: Any) -> torch.Tensor | None:

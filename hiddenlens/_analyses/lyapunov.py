@@ -22,10 +22,10 @@ from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.record import as_system, initial_states, record
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import state_only, step_errors
-from .._core.systems import RecurrentSystem
+from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.threads import single_thread
 from .._core.trace import Trace
-from .._core.validation import as_dtype, as_sequences, check_trace_fits
+from .._core.validation import as_dtype, as_sequences, check_trace_finite, check_trace_fits
 
 __all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension",
            "StationaryTrajectoryWarning"]
@@ -218,10 +218,20 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
         0.0 when the largest exponent is negative.
     """
     try:
-        lam = np.sort(np.asarray(exponents, dtype=np.float64).reshape(-1))[::-1]
+        arr = np.asarray(exponents, dtype=np.float64)
     except (TypeError, ValueError):
         raise TypeError(f"exponents must be numbers (an array of shape (k,)), got "
                         f"{type(exponents).__name__}; pass LyapunovSpectrum.exponents") from None
+    if arr.ndim > 1:
+        raise ValueError(f"exponents must be one spectrum of shape (k,), got shape "
+                         f"{arr.shape}; pass LyapunovSpectrum.exponents or one row of "
+                         "per_sample")
+    if state_size is not None and (isinstance(state_size, bool)
+                                   or not isinstance(state_size, (int, np.integer))
+                                   or not arr.size <= state_size):
+        raise ValueError(f"state_size must be an integer >= {arr.size} (the number of "
+                         f"exponents given), got {state_size!r}")
+    lam = np.sort(arr.reshape(-1))[::-1]
     if lam.size == 0 or np.isnan(lam).any():
         return float("nan")
     if lam[0] < 0:
@@ -378,6 +388,7 @@ def lyapunov_spectrum(
     recorded = isinstance(trace, Trace)
     if recorded:
         check_trace_fits(system, trace, "lyapunov_spectrum")
+        check_trace_finite(trace, "lyapunov_spectrum")
         if h0 is not None:
             raise ValueError("h0 was given with a trace, which holds its own initial states; "
                              "drop h0, or record with hiddenlens.record(system, inputs, h0)")
@@ -416,6 +427,7 @@ def lyapunov_spectrum(
     frame_flops = B * (2 * S * S * k + 4 * S * k * k)
     with grad_restored(), torch.no_grad(), step_errors(system):
         if system.kind == "callable":
+            refuse_random_steps(system, s0[:1], x[:1, 0])  # before any step draws
             _check_step_dtype(system, s0, x[:, 0])
         if recorded:
             states = torch.as_tensor(np.array(trace.states), dtype=dt)  # (B, T, S)
@@ -444,7 +456,13 @@ def lyapunov_spectrum(
         warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
                       "start from another h0 (e.g. a small random state) or drive the system",
                       StationaryTrajectoryWarning, stacklevel=2)
+    growth = state_growth(states, warmup)
+    meta["state_growth"] = growth
     fewest = int(counts.min())
+    if is_unbounded(growth, fewest):
+        cautions.append(f"the states grow without bound (about x{math.exp(growth):.3g} per "
+                        "step over the counted steps): the exponent measures divergence, not "
+                        "chaos")
     if fewest < MIN_COUNTED_STEPS:
         cautions.append(f"from only {fewest} counted step{'s' if fewest != 1 else ''} "
                         f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
@@ -472,6 +490,32 @@ def lyapunov_spectrum(
 
 #: Fewer counted steps than this mark the exponents as not conclusive (``metadata["caution"]``).
 MIN_COUNTED_STEPS = 100
+
+# States growing more than this factor over the last half of the counted steps are taken as
+# unbounded (a transient onto a bounded attractor is over by then; common practice: chaos needs
+# a bounded trajectory, and a bounded attractor's norm varies by far less than this).
+_UNBOUNDED_FACTOR = 30.0
+
+
+def state_growth(states: torch.Tensor, warmup: int) -> float:
+    """Log growth rate per step of the state norm over the last half of the counted steps of
+    the states (B, T, S), median over samples (0.0 from a single counted step)."""
+    counted = states[:, warmup:].to(torch.float64)  # (B, n, S)
+    n = counted.shape[1]
+    late = counted[:, n // 2:]  # (B, n - n // 2, S)
+    logs = torch.log(torch.linalg.vector_norm(late, dim=2).clamp_min(1e-300))  # (B, m)
+    span = max(late.shape[1] - 1, 1)
+    return float(((logs[:, -1] - logs[:, 0]) / span).median().item())
+
+
+def is_unbounded(growth: Any, n_steps: Any) -> bool:
+    """Whether a ``state_growth`` over ``n_steps`` counted steps means unbounded states."""
+    try:
+        g, n = float(growth), int(n_steps)
+    except (TypeError, ValueError):
+        return False
+    span = max(n - n // 2 - 1, 1)
+    return math.isfinite(g) and g > 0 and g * span > math.log(_UNBOUNDED_FACTOR)
 
 
 class StationaryTrajectoryWarning(RuntimeWarning):

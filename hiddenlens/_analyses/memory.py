@@ -22,9 +22,9 @@ from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.record import as_system, record, valid_steps
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
-from .._core.systems import RecurrentSystem
+from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.trace import Trace
-from .._core.validation import check_trace_fits
+from .._core.validation import check_trace_finite, check_trace_fits
 
 __all__ = ["MemoryCurve", "memory_curve"]
 
@@ -330,6 +330,7 @@ def memory_curve(
     inputs = trace
     if isinstance(trace, Trace):
         check_trace_fits(system, trace, "memory_curve")
+        check_trace_finite(trace, "memory_curve", ("inputs",))  # the decoded sources
         if h0 is not None:
             raise ValueError("h0 was given with a trace, which holds its own initial states; "
                              "drop h0, or record with hiddenlens.record(system, inputs, h0)")
@@ -339,6 +340,9 @@ def memory_curve(
             "memory_curve(system, hiddenlens.record(system, inputs, h0))",
             DeprecationWarning, stacklevel=3)
     opts = _check_options(system, inputs, locals())
+    if isinstance(trace, Trace) and opts["method"] != "decoding":
+        check_trace_finite(trace, "memory_curve", ("initial",))  # the steps start there
+        refuse_random_steps(system, trace.initial[:1], trace.inputs[:1, 0])  # before any draw
     with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
@@ -405,6 +409,10 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
     if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
             or not math.isfinite(threshold):
         raise ValueError(f"threshold must be a finite number, got {threshold!r}")
+    if method == "decoding" and not 0 < threshold <= 1:
+        # R^2 and chance-adjusted accuracy never exceed 1: no lag could reach the level
+        raise ValueError(f"threshold must be in (0, 1] for decoding scores (R^2 or "
+                         f"chance-adjusted accuracy), got {threshold!r}")
     alphas = check_alphas(given["alphas"])
     normalize = given["normalize"]
     if method == "decoding":

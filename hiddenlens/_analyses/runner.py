@@ -83,6 +83,9 @@ def budget_of(spec: AnalysisSpec, system: RecurrentSystem, trace: Trace, seed: i
 
 
 def _check_options(options: Mapping[str, Any] | None) -> dict[str, Mapping[str, Any]]:
+    if options is not None and not isinstance(options, Mapping):
+        raise TypeError(f"options must be a mapping analysis name -> keyword options, got "
+                        f"{type(options).__name__}; e.g. options={{'pca': {{'k': 3}}}}")
     options = dict(options or {})
     check_names(options, "analysis in options")
     for a, o in options.items():

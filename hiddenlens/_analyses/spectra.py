@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import numbers
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -229,7 +230,7 @@ def jacobian_spectra(
                          f"{method!r}")
     work = as_dtype(dtype)
     levels = _check_quantiles(quantiles)
-    if not (isinstance(tol, (int, float)) and 0 < tol < 1):
+    if isinstance(tol, bool) or not (isinstance(tol, numbers.Real) and 0 < tol < 1):
         raise ValueError(f"tol must be a number in (0, 1), got {tol!r}")
     chunk = check_chunk(chunk)
     if method == "auto":

@@ -16,7 +16,7 @@ import torch
 import torch.nn.functional as F
 from torch.func import jacrev, jvp, vjp, vmap
 
-from .systems import LayerWeights, RecurrentSystem
+from .systems import LayerWeights, RecurrentSystem, refuse_random_steps
 from .threads import single_thread
 from .validation import as_dtype
 
@@ -584,6 +584,9 @@ def trace_tensors(system: RecurrentSystem, trace: Any) -> tuple[torch.Tensor, to
         )
     prev = torch.from_numpy(np.ascontiguousarray(trace.previous_states())).to(system.dtype)
     x = torch.from_numpy(np.array(trace.inputs, dtype=prev.numpy().dtype))  # writable copy
+    # a trace recorded elsewhere may meet a random step function here first: refuse it before
+    # any step runs outside vmap (which would draw from the user's global generator)
+    refuse_random_steps(system, prev[:1, 0], x[:1, 0])
     return prev, x
 
 

@@ -387,7 +387,8 @@ def analysis(name: str) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
         @functools.wraps(fn)
         def wrapper(*args: Any, **kwargs: Any) -> Any:
             threads = kwargs.get("threads")
-            usable = isinstance(threads, int) and not isinstance(threads, bool) and threads >= 1
+            usable = (isinstance(threads, numbers.Integral) and not isinstance(threads, bool)
+                      and threads >= 1)
             with num_threads(threads) if usable else contextlib.nullcontext():
                 result = fn(*args, **kwargs)
             try:

@@ -141,6 +141,9 @@ class AnalysisSpec:
     setting: Callable[[Mapping[str, Any]], str] = _no_setting
     adapter: Callable[..., Any] | None = None
 
+    def __post_init__(self) -> None:
+        _check_spec(self.name, self.title, self.function)
+
     @property
     def module(self) -> str | None:
         """The module named by a ``"module:function"`` function (None for a callable)."""
@@ -290,14 +293,7 @@ def register_analysis(
     AnalysisSpec
         The spec added; :func:`unregister_analysis` removes it again.
     """
-    if not isinstance(name, str) or not name.isidentifier():
-        raise ValueError(f"name must be a Python identifier such as 'my_analysis', got "
-                         f"{name!r}")
-    if not (callable(function) or (isinstance(function, str) and ":" in function)):
-        raise TypeError("function must be callable as function(system, trace, **options) or "
-                        f"a 'module:function' string, got {type(function).__name__}")
-    if not isinstance(title, str) or not title:
-        raise ValueError("title must be a non-empty str, e.g. title='My analysis'")
+    _check_spec(name, title, function)
     if isinstance(needs, str):
         needs = (needs,)
     labels = {k: _as_figure(k, v) for k, v in (figures or {}).items()}
@@ -308,6 +304,18 @@ def register_analysis(
         phrases=phrases or _no_phrases, arrays=arrays, overlay=overlay, needs=tuple(needs))
     _ensure_builtins()  # built-ins first in display order
     return add_spec(spec, replace=replace)
+
+
+def _check_spec(name: Any, title: Any, function: Any) -> None:
+    """The name, title and function of a spec, refused in the one message form."""
+    if not isinstance(name, str) or not name.isidentifier():
+        raise ValueError(f"name must be a Python identifier such as 'my_analysis', got "
+                         f"{name!r}")
+    if not (callable(function) or (isinstance(function, str) and ":" in function)):
+        raise TypeError("function must be callable as function(system, trace, **options) or "
+                        f"a 'module:function' string, got {type(function).__name__}")
+    if not isinstance(title, str) or not title:
+        raise ValueError("title must be a non-empty str, e.g. title='My analysis'")
 
 
 def _as_figure(key: str, value: Figure | tuple[str, str] | str) -> Figure:

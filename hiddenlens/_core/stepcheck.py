@@ -16,12 +16,6 @@ __all__ = ["step_errors", "state_only"]
 
 # (text in torch's message, what the step function did, how to fix it)
 _CAUSES = (
-    ("randomness", "draws random numbers",
-     "analyses differentiate a deterministic map: pass the noise as an input (one more "
-     "input feature, drawn beforehand with your own generator) or remove it"),
-    ("random operation", "draws random numbers",
-     "analyses differentiate a deterministic map: pass the noise as an input (one more "
-     "input feature, drawn beforehand with your own generator) or remove it"),
     ("derivative for", "uses an operation with no derivative",
      "replace it by a differentiable one (e.g. torch.sigmoid(k * s) for a step, "
      "torch.div(..., rounding_mode=None) for //); Jacobians need derivatives"),
@@ -55,6 +49,11 @@ def step_errors(system: Any) -> Iterator[None]:
         if getattr(system, "kind", None) != "callable":
             raise
         text = str(err)
+        if "randomness" in text or "random operation" in text:
+            from .systems import random_step_message
+
+            # the same words as record's refusal (hiddenlens._core.systems.refuse_random_steps)
+            raise TypeError(random_step_message(system.source)) from None
         for needle, did, fix in _CAUSES:
             if needle in text:
                 first = text.strip().splitlines()[0][:160]

@@ -11,12 +11,14 @@ from __future__ import annotations
 import copy
 import hashlib
 import inspect
+import numbers
 import types
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
@@ -83,6 +85,15 @@ class LayerWeights:
     nonlinearity: str | None = None
     dt: float | None = None
     w_hr: torch.Tensor | None = None
+
+    def __post_init__(self) -> None:
+        if self.kind not in CELL_KINDS:
+            raise ValueError(f"LayerWeights kind must be one of {', '.join(CELL_KINDS)}, got "
+                             f"{self.kind!r}; build layers with hiddenlens.wrap(module)")
+        for name in ("w_ih", "w_hh"):
+            if not isinstance(getattr(self, name), torch.Tensor):
+                raise TypeError(f"LayerWeights {name} must be a tensor, got "
+                                f"{type(getattr(self, name)).__name__}")
 
     @property
     def params(self) -> list[torch.Tensor]:
@@ -164,6 +175,15 @@ class RecurrentSystem:
         time_reversed: bool = False,
         model: Any = None,
     ) -> None:
+        if not parts:
+            raise ValueError("RecurrentSystem needs at least one named part of the state, e.g. "
+                             "parts={'state': slice(0, S)}; build systems with hiddenlens.wrap")
+        if (step_fn is None) == (not layers):
+            raise ValueError("RecurrentSystem needs either layers (LayerWeights) or a step_fn, "
+                             "exactly one of them; build systems with hiddenlens.wrap")
+        if int(state_size) < 1 or int(input_size) < 0:
+            raise ValueError(f"RecurrentSystem sizes must be state_size >= 1 and input_size >= 0, "
+                             f"got {state_size} and {input_size}")
         self.state_size = int(state_size)
         self.input_size = int(input_size)
         self.parts = frozen_mapping(parts)
@@ -347,30 +367,45 @@ def _lstm_cells(layer: LayerWeights, x, h_first, h_seq, c0, out):
     return out
 
 
-def _refuse_random_steps(system: RecurrentSystem, s: torch.Tensor, x: torch.Tensor) -> None:
+def random_step_message(source: str) -> str:
+    """What every analysis says of a step function that draws random numbers."""
+    return (f"the step function of {source} draws random numbers from torch's global "
+            "generator; hiddenlens analyses a deterministic map and never draws from your "
+            "generator: pass the noise as an input (one more input feature, drawn beforehand "
+            "with your own torch.Generator) or remove it")
+
+
+def refuse_random_steps(system: RecurrentSystem, s: Any, x: Any) -> None:
     """Refuse a step function that draws from torch's global RNG, before it draws anything.
 
     One step under ``vmap(randomness="error")`` raises at the first random operation, so the
     user's global generator is never advanced (and never saved and restored behind their back).
-    Other failures inside vmap are left for the recording itself to meet.
+    Other failures inside vmap are left for the caller to meet. ``s`` (1, S) and ``x`` (1, I)
+    are one state and one input (tensors or arrays); module-backed systems are not checked
+    (their closed forms draw nothing).
     """
+    if system.layers or system._step_fn is None:
+        return
     from torch.func import vmap
 
     def one(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
         return system._step_fn(a[None], b[None])[0]
 
     try:
+        s, x = (torch.as_tensor(np.array(v) if isinstance(v, np.ndarray) else v,
+                                dtype=system.dtype) for v in (s, x))  # copies of read-only arrays
+        s = s.reshape(1, system.state_size)  # (1, S)
+        x = x.reshape(1, system.input_size)  # (1, I)
         with torch.no_grad():
             vmap(one, randomness="error")(s, x)
     except RuntimeError as err:
         if "random" in str(err).lower():
-            raise TypeError(
-                f"the step function of {system.source} draws random numbers from torch's global "
-                "generator; hiddenlens analyses a deterministic map and never draws from your "
-                "generator: pass the noise as an input (one more input feature, drawn beforehand "
-                "with your own torch.Generator) or remove it") from None
-    except Exception:  # noqa: BLE001 - anything else is the recording's to report
+            raise TypeError(random_step_message(system.source)) from None
+    except Exception:  # noqa: BLE001 - anything else is the caller's to report
         pass
+
+
+_refuse_random_steps = refuse_random_steps
 
 
 def _run_callable(system: RecurrentSystem, inputs, h0, progress):
@@ -663,7 +698,7 @@ def _leak(alpha, dt, tau, H, dtype, label) -> torch.Tensor:
     if not ((a > 0) & (a <= 1)).all():
         raise ValueError(f"alpha = dt / tau must lie in (0, 1] (the Euler step is unstable "
                          f"beyond 1), got values in [{a.min().item():.3g}, {a.max().item():.3g}]")
-    if dt is not None and not (isinstance(dt, (int, float)) and dt > 0):
+    if dt is not None and (isinstance(dt, bool) or not (isinstance(dt, numbers.Real) and dt > 0)):
         raise ValueError(f"dt must be a positive number, got {dt!r}")
     return a.to(dtype).clone()
 
@@ -700,7 +735,7 @@ def _wrap_leaky_module(module, dtype, *, source, model):
     b = _weight(module, "bias", dtype) if isinstance(getattr(module, "bias", None),
                                                       torch.Tensor) else None
     dt = getattr(module, "dt", None)
-    dt = float(dt) if isinstance(dt, (int, float)) else None
+    dt = float(dt) if isinstance(dt, numbers.Real) and not isinstance(dt, bool) else None
     alpha = _leak(getattr(module, "alpha", None), dt, getattr(module, "tau", None), H, dtype,
                   label)
     nl = getattr(module, "nonlinearity", "tanh")
@@ -1150,18 +1185,21 @@ def _wrap_callable(fn, dtype, state_size, input_size, parts, name, order=None, i
             "(input_size=0 for an autonomous map)"
         )
     for arg, val, low in (("state_size", state_size, 1), ("input_size", input_size, 0)):
-        if isinstance(val, bool) or not isinstance(val, int) or val < low:
+        if isinstance(val, bool) or not isinstance(val, numbers.Integral) or val < low:
             raise ValueError(f"{arg} must be an integer >= {low}, got {val!r}")
+    state_size, input_size = int(state_size), int(input_size)  # numpy integers too
     parts = dict(parts) if parts else {"state": slice(0, state_size)}
     for pname, sl in parts.items():
         if not isinstance(sl, slice) or sl.step not in (None, 1):
             raise ValueError(f"part {pname!r} must be a contiguous slice, got {sl!r}")
         lo = 0 if sl.start is None else sl.start
         hi = state_size if sl.stop is None else sl.stop
-        if not (isinstance(lo, int) and isinstance(hi, int) and 0 <= lo < hi <= state_size):
+        if not (isinstance(lo, numbers.Integral) and isinstance(hi, numbers.Integral)
+                and not isinstance(lo, bool) and not isinstance(hi, bool)
+                and 0 <= lo < hi <= state_size):
             raise ValueError(f"part {pname!r} = {sl!r} lies outside the state of size "
                              f"{state_size}")
-        parts[pname] = slice(lo, hi)
+        parts[pname] = slice(int(lo), int(hi))
     source = name or getattr(fn, "__name__", type(fn).__name__)
     is_cell = is_cell or isinstance(fn, nn.Module)
     snap, held = _snapshot(fn)

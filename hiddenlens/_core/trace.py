@@ -120,7 +120,13 @@ class Trace:
         """Indices into the flat state covered by ``parts`` (all of the state when None)."""
         if parts is None:
             return np.arange(self.state_size)
-        names = [parts] if isinstance(parts, str) else list(parts)
+        if isinstance(parts, str):
+            names = [parts]
+        elif isinstance(parts, (list, tuple)) and all(isinstance(n, str) for n in parts):
+            names = list(parts)
+        else:
+            raise TypeError(f"parts must be a part name or a list of names (this trace has "
+                            f"{', '.join(map(repr, self.parts))}), got {parts!r}")
         if not names:
             raise ValueError("parts is empty; name at least one part or pass None for all")
         return np.concatenate([np.arange(self.state_size)[self._slice(n)] for n in names])
@@ -217,6 +223,9 @@ class Trace:
             raise TypeError(f"trace metadata must be JSON-serialisable to be saved: {err}; "
                             "keep metadata to numbers, strings, lists and dicts") from None
         path = os.fspath(path)
+        if os.path.isdir(path):
+            raise ValueError(f"path {path!r} is a folder; pass the trace's file name, e.g. "
+                             f"{os.path.join(path, 'trace.npz')!r}")
         folder = os.path.dirname(os.path.abspath(path))
         # mkstemp creates the temporary file with O_EXCL in the target folder: it never follows
         # a planted symlink, and os.replace swaps it in atomically (replacing a link at ``path``,
@@ -290,7 +299,13 @@ def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> 
     if isinstance(max_bytes, bool) or not isinstance(max_bytes, (int, np.integer)) \
             or max_bytes < 1:
         raise ValueError(f"max_bytes must be a positive integer (bytes), got {max_bytes!r}")
-    name = os.fspath(path)
+    try:
+        name = os.fspath(path)
+    except TypeError:
+        raise TypeError(f"path must be a file path (str or os.PathLike), got "
+                        f"{type(path).__name__}") from None
+    if not isinstance(name, str):
+        name = os.fsdecode(name)
     if not os.path.lexists(name):
         raise FileNotFoundError(f"no trace file at {name!r}")
     not_trace = f"{name!r} is not a hiddenlens trace file (written by Trace.save)"

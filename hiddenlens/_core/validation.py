@@ -10,8 +10,8 @@ from typing import Any
 import numpy as np
 import torch
 
-__all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "check_trace_fits",
-           "describe"]
+__all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "check_trace_finite",
+           "check_trace_fits", "describe"]
 
 _DTYPES = {
     "float32": torch.float32,
@@ -67,6 +67,8 @@ def as_float_tensor(x: Any, name: str, dtype: torch.dtype) -> torch.Tensor:
         if not x.dtype.isnative or x.dtype.itemsize > 8:
             # torch reads native-order float16/32/64 only (no big-endian data, no longdouble)
             x = x.astype(np.float64)
+        if not x.flags.writeable:  # torch warns on read-only memory; this copy is ours
+            x = np.array(x)
         t = torch.from_numpy(np.ascontiguousarray(x))
     elif isinstance(x, torch.Tensor):
         if not torch.is_floating_point(x):
@@ -85,15 +87,32 @@ def as_float_tensor(x: Any, name: str, dtype: torch.dtype) -> torch.Tensor:
     return t.to(device="cpu", dtype=dtype, copy=True)
 
 
-def check_finite(t: torch.Tensor, name: str) -> None:
+def check_finite(t: torch.Tensor, name: str,
+                 fix: str = "clean or mask the data before recording") -> None:
     """Refuse NaN or Inf values, naming the first offending position."""
     bad = ~torch.isfinite(t)
     if bool(bad.any()):
         where = tuple(int(i) for i in bad.nonzero()[0])
-        raise ValueError(
-            f"{name} contains NaN or Inf (first at index {where}); clean or mask the data "
-            "before recording"
-        )
+        raise ValueError(f"{name} contains NaN or Inf (first at index {where}); {fix}")
+
+
+def check_trace_finite(trace: Any, analysis: str, what: tuple[str, ...] = ("initial", "inputs")
+                       ) -> None:
+    """Refuse a trace (recorded elsewhere, or built by hand) whose ``what`` arrays hold NaN/Inf.
+
+    The message names the array and the first (sample, step) where it is not finite.
+    """
+    for name in what:
+        a = np.asarray(getattr(trace, name))
+        if a.size and not np.isfinite(a).all():
+            where = tuple(int(i) for i in np.argwhere(~np.isfinite(a))[0])
+            at = (f"sample {where[0]}" if name == "initial"
+                  else f"sample {where[0]}, step {where[1]}")
+            label = "initial states" if name == "initial" else name
+            raise ValueError(
+                f"{analysis}: the trace's {label} contain NaN or Inf (first at {at}); record "
+                "the trace from finite inputs and initial states: hiddenlens.record(system, "
+                "inputs, h0)")
 
 
 def as_sequences(inputs: Any, input_size: int, dtype: torch.dtype, *, name: str = "inputs",

@@ -677,12 +677,22 @@ def write_report(
     task_map = _check_task_map(task, runs)
     timelines = _check_timelines(timeline, runs)
     path = Path(path)
+    if path.is_dir():
+        raise ValueError(f"path {str(path)!r} is a folder; pass the report's file name, e.g. "
+                         f"{str(path / 'report.html')!r}")
+    if isinstance(notes, str):
+        notes = [notes]
+    elif isinstance(notes, Iterable):
+        notes = list(notes)
+    if not isinstance(notes, list) or not all(isinstance(n, str) for n in notes):
+        raise TypeError(f"notes must be a str or an iterable of str (one paragraph each), got "
+                        f"{type(notes).__name__}")
     title = title or _default_title(runs)
     plt = sys.modules.get("matplotlib.pyplot")
     before = set(plt.get_fignums()) if plt is not None else set()
     try:
         page, _ = _build_html(runs, comp, title=title, inputs_description=inputs_description,
-                              notes=[notes] if isinstance(notes, str) else list(notes),
+                              notes=list(notes),
                               progress=progress, task=task_map, timelines=timelines)
     finally:
         _close_stray_pyplot_figures(before)

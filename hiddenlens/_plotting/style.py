@@ -87,6 +87,11 @@ def get_axes(ax: Any = None, *, projection: str | None = None,
     palette (:func:`style_axes`); axes the caller passes are left as they are.
     """
     if ax is not None:
+        from matplotlib.axes import Axes
+
+        if not isinstance(ax, Axes):
+            raise TypeError(f"ax must be matplotlib Axes (e.g. from plt.subplots()) or None for "
+                            f"a new figure, got {type(ax).__name__}")
         if projection == "3d" and getattr(ax, "name", "") != "3d":
             raise ValueError(
                 "a 3-D plot needs 3-D axes; create them with "

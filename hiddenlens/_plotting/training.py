@@ -23,7 +23,13 @@ def plot_timeline(table: Any, ax: Any = None, *, figures: Sequence[str] | None =
                                  sharex=True, squeeze=False)
         axes = list(axes[:, 0])
     else:
+        from matplotlib.axes import Axes
+
         axes = list(np.ravel(np.asarray(ax, dtype=object)))
+        if not all(isinstance(a, Axes) for a in axes):
+            raise TypeError(f"ax must be matplotlib Axes, one per figure (e.g. from "
+                            f"plt.subplots({len(names)})), or None for a new figure, got "
+                            f"{type(ax).__name__}")
         if len(axes) != len(names):
             raise ValueError(f"ax must hold one Axes per figure ({len(names)}), got {len(axes)}")
     for a, name in zip(axes, names, strict=True):

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+import numbers
 import os
 import time
 from collections.abc import Iterable, Mapping, Sequence
@@ -35,6 +36,22 @@ DEFAULT_FIGURES: tuple[str, ...] = (
     "gradient_rate", "top_singular_value_median", "lyapunov_max", "participation_ratio",
 )
 _COLUMNS = ["step", "figure", "value", "low", "high"]
+
+
+def check_probe_inputs(inputs: Any, name: str) -> np.ndarray:
+    """A private float copy of a probe batch (B, T, I): non-empty, finite."""
+    x = inputs.detach().cpu().numpy() if hasattr(inputs, "detach") else np.asarray(inputs)
+    if x.ndim != 3 or not np.issubdtype(x.dtype, np.floating):
+        raise ValueError(f"{name} must be a float array of shape (B, T, I), got "
+                         f"shape {x.shape} and dtype {x.dtype}")
+    if 0 in x.shape[:2]:
+        raise ValueError(f"{name} is empty (shape {x.shape}); pass at least one sequence of "
+                         "at least one step")
+    if not np.isfinite(x).all():
+        where = tuple(int(i) for i in np.argwhere(~np.isfinite(x))[0])
+        raise ValueError(f"{name} contains NaN or Inf (first at index {where}); clean the "
+                         "probe batch first")
+    return np.array(x)  # a writable copy the caller cannot change
 
 
 def check_figures(figures: Any) -> tuple[str, ...]:
@@ -177,19 +194,14 @@ class Monitor:
                              "training time), not both")
         if every is None and budget is None:
             every = 50
-        if every is not None and (isinstance(every, bool) or not isinstance(every, int)
+        if every is not None and (isinstance(every, bool) or not isinstance(every, numbers.Integral)
                                   or every < 1):
             raise ValueError(f"every must be a positive integer number of steps, got {every!r}")
         if budget is not None and (isinstance(budget, bool) or not isinstance(
-                budget, (int, float)) or not 0 < budget < 1):
+                budget, numbers.Real) or not 0 < budget < 1):
             raise ValueError(f"budget must be a fraction of the training time in (0, 1), e.g. "
                              f"0.05, got {budget!r}")
-        x = probe_inputs.detach().cpu().numpy() if hasattr(probe_inputs, "detach") \
-            else np.asarray(probe_inputs)
-        if x.ndim != 3 or not np.issubdtype(x.dtype, np.floating):
-            raise ValueError(f"probe_inputs must be a float array of shape (B, T, I), got "
-                             f"shape {x.shape} and dtype {x.dtype}")
-        self.probe_inputs = x.copy()
+        self.probe_inputs = check_probe_inputs(probe_inputs, "probe_inputs")
         self.every, self.budget = every, budget
         self.targets, self.seed, self.level, self.n_boot = targets, int(seed), level, n_boot
         self.skipped: dict[str, str] = {}
@@ -197,6 +209,7 @@ class Monitor:
         self._rows: list[dict[str, Any]] = []
         self._start: float | None = None
         self._last_cost = 0.0
+        self._sizes: tuple[int, int, int] | None = None  # (step, S, I) of the first check
 
     # ------------------------------------------------------------------ recording
     def due(self, step: int) -> bool:
@@ -222,9 +235,20 @@ class Monitor:
 
     def measure(self, model: Any, step: int) -> list[dict[str, Any]]:
         """Check now, whatever the schedule; the rows are appended to the timeline."""
+        from .._core.record import as_system
+
+        system = as_system(model)  # weight copies, taken once per check
+        if self._sizes is None:
+            self._sizes = (int(step), system.state_size, system.input_size)
+        elif self._sizes[1:] != (system.state_size, system.input_size):
+            first, S, I = self._sizes
+            raise ValueError(
+                f"the model's sizes changed between checks: S={S}, I={I} at step {first}, "
+                f"S={system.state_size}, I={system.input_size} at step {step}; a timeline "
+                "compares one architecture over training: start a new Monitor for the new one")
         t0 = time.perf_counter()
         try:
-            rows = probe_figures(model, self.probe_inputs, self.figures, seed=self.seed,
+            rows = probe_figures(system, self.probe_inputs, self.figures, seed=self.seed,
                                  level=self.level, n_boot=self.n_boot, targets=self.targets,
                                  skipped=self.skipped)
         finally:

@@ -16,7 +16,7 @@ from typing import Any
 
 import numpy as np
 
-from .monitor import DEFAULT_FIGURES, check_figures
+from .monitor import DEFAULT_FIGURES, check_figures, check_probe_inputs
 
 __all__ = ["sweep", "SweepResult", "ENGINES"]
 
@@ -294,10 +294,7 @@ def sweep(
     names = [s["name"] for s in specs]
     if len(set(names)) != len(names):
         raise ValueError("run names must be distinct; give each run a 'name'")
-    x = inputs.detach().cpu().numpy() if hasattr(inputs, "detach") else np.asarray(inputs)
-    if x.ndim != 3 or not np.issubdtype(x.dtype, np.floating):
-        raise ValueError(f"inputs must be a float array of shape (B, T, I), got shape "
-                         f"{x.shape} and dtype {x.dtype}")
+    x = check_probe_inputs(inputs, "inputs")
     table = _params_table(params, len(specs))
     args = (x, figures, int(seed), float(level), int(n_boot))
     if engine == "local":
