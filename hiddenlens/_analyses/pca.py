@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -460,6 +461,20 @@ def pca_analysis(system: Any, trace: Trace, *, targets: Any = None, onsets: Any 
     import dataclasses
 
     return dataclasses.replace(res, metadata={**dict(res.metadata), "labels_note": note})
+
+
+def _analysis_signature() -> inspect.Signature:
+    """pca_trajectories' options plus the task context (and the inputs its adapter records),
+    so that the runner checks options against what pca_trajectories really takes."""
+    params = [p for p in inspect.signature(pca_trajectories).parameters.values()
+              if p.kind is not p.VAR_POSITIONAL]
+    extra = [inspect.Parameter(n, inspect.Parameter.KEYWORD_ONLY, default=None)
+             for n in ("targets", "onsets", "inputs") if n not in {p.name for p in params}]
+    return inspect.Signature(params + extra)
+
+
+pca_analysis.__signature__ = _analysis_signature()
+pca_analysis.__wrapped__ = pca_trajectories  # the function users know, named in messages
 
 
 # ---------------------------------------------------------------------- computing

@@ -64,6 +64,7 @@ def analysis_options(spec: AnalysisSpec, system: RecurrentSystem, trace: Trace, 
     unknown = [k for k in user if not (var_kw or k in names)]
     if unknown:
         fn = spec.load()
+        fn = getattr(fn, "__wrapped__", fn)  # an analysis form names the function it wraps
         raise ValueError(
             f"options {unknown} are not options of {getattr(fn, '__name__', spec.name)} (the "
             f"{spec.name!r} analysis); it accepts "
