@@ -53,6 +53,9 @@ _FORM_ERROR = 8.0
 _THREADS_FROM_STATE = 2048
 # chunks handed to each worker at least, so that a worker slowed by a busy core takes fewer
 _PIECES_PER_WORKER = 4
+# elements of Jacobians in a chunk at least when chunks are split for the workers: 1 MiB in
+# float32, tens of microseconds of Python per chunk against milliseconds of work
+_LEAST_ELEMENTS = 1 << 18
 _EPS = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
@@ -287,8 +290,9 @@ def jacobian_spectra(
     if chunk is None:
         per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
         chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
-        if workers > 1:  # enough chunks for every worker
-            chunk = max(1, min(chunk, -(-T // (_PIECES_PER_WORKER * workers))))
+        if workers > 1:  # enough chunks for every worker, none so small that overhead rules
+            least = max(1, _LEAST_ELEMENTS // max(per_state * B, 1))
+            chunk = max(least, min(chunk, -(-T // (_PIECES_PER_WORKER * workers))))
 
     sv_out = np.empty((B, T, k), dtype=np.float64)
     rad_out = np.empty((B, T), dtype=np.float64) if want_radius else None
