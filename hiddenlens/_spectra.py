@@ -600,6 +600,12 @@ def _check_quantiles(quantiles: Any) -> np.ndarray:
 def _nanquantile(a: np.ndarray, levels: np.ndarray) -> np.ndarray:
     """Quantiles over axis 0 ignoring NaN; all-NaN columns give NaN without a warning."""
     out = np.full((levels.size, a.shape[1]), np.nan)
+    rows = ~np.isnan(a).any(axis=1)
+    if rows.all() or not np.isnan(a[rows]).any():
+        # NaN only in whole rows (excluded steps): numpy's vectorised quantile on the rest
+        if rows.any():
+            out[:] = np.quantile(a[rows] if not rows.all() else a, levels, axis=0)
+        return out
     ok = ~np.isnan(a).all(axis=0)
     if ok.any():
         out[:, ok] = np.nanquantile(a[:, ok], levels, axis=0)
