@@ -125,6 +125,7 @@ def single_thread(when: bool = True) -> contextlib.AbstractContextManager[None]:
 # one at a time, so a worker slowed by a busy core takes fewer of them. Only the workers' own
 # thread counts are set (per thread, as above); the caller's thread is untouched.
 _POOLS: dict[int, Any] = {}
+_WORKER_PREFIX = "hiddenlens-batch"
 
 
 def usable_cores() -> int:
@@ -142,7 +143,7 @@ def _pool(workers: int) -> Any:
         pool = _POOLS.get(workers)
         if pool is None:
             pool = _POOLS[workers] = ThreadPoolExecutor(
-                workers, thread_name_prefix="hiddenlens-batch")
+                workers, thread_name_prefix=_WORKER_PREFIX)
         return pool
 
 
@@ -161,7 +162,8 @@ def parallel_map(fn: Any, items: Any, workers: int, *, done: Any = None) -> list
     worker threads].
     """
     items = list(items)
-    if workers <= 1 or len(items) <= 1:
+    nested = threading.current_thread().name.startswith(_WORKER_PREFIX)
+    if workers <= 1 or len(items) <= 1 or nested:  # a worker never waits on its own pool
         out = []
         for i, item in enumerate(items):
             out.append(_one_thread(fn, item))

@@ -255,3 +255,13 @@ def test_float32_first_pass_hands_small_values_to_float64(gen):
     res = hl.jacobian_spectra(system, trace)
     ref = np.linalg.svd((d[:, None] * W).numpy(), compute_uv=False)
     assert _rel_err(res.singular_values[0], np.tile(ref, (3, 1))) <= 1e-3
+
+
+def test_spectra_inside_a_worker_thread_runs_there(gru_trace):
+    # a call made from one of the library's own worker threads must not wait on that pool
+    from hiddenlens._threads import parallel_map
+
+    model, trace = gru_trace
+    out = parallel_map(lambda c: hl.jacobian_spectra(model, trace, k=2, chunk=c, threads=2)
+                       .singular_values, [1, 2, 3], 2)
+    np.testing.assert_allclose(out[0], out[2], rtol=1e-6)
