@@ -215,9 +215,10 @@ def jacobian_spectra(
         How many of the largest singular values to keep per step (default: all S).
     method : {"auto", "svd", "gram", "krylov"}, default "auto"
         ``"gram"``: eigenvalues of J_t^T J_t (one batched product, one batched symmetric
-        eigenvalue call) in float32; each value is accepted only if the rounding-error model
-        of the float32 Gram matrix keeps it within ``tol`` of the true one, otherwise the step
-        is redone in float64, and by SVD if that fails too (small singular values of a
+        eigenvalue call) with J_t and its Gram matrix written in float32; each value is
+        accepted only if the rounding-error model of the float32 pass keeps it within ``tol``
+        of the true one, otherwise the step is redone from float64 Jacobians, and by SVD if
+        that fails too (small singular values of a
         rank-deficient J take this last route). ``"svd"``: ``torch.linalg.svdvals`` in
         float64. ``"krylov"``: block Krylov iteration on J^T J through Jacobian-vector
         products, never forming J (light on memory; slower than "gram" unless S is in the
@@ -246,6 +247,12 @@ def jacobian_spectra(
         Seed of the random start block of the Krylov method.
     progress : bool, optional
         Show a progress bar over the chunks, with the time left (default: for long runs).
+    threads : int, optional
+        Cores to use. Below 2048 units the chunks of a module-backed system run on this many
+        worker threads, each with one torch thread (default: the cores this process may run
+        on; the caller's own thread count is not changed); ``threads=1`` runs them in the
+        calling thread. From 2048 units, and for step functions, chunks run one after the
+        other in the calling thread.
 
     Returns
     -------
