@@ -5,11 +5,18 @@ Prints the wall time of ``find_fixed_points`` and its ratio to one step of the s
 come from (a T-step forward pass); once with one thread and once with torch's default. A second,
 harder case (recurrent weights scaled by 4: several saddles, slow valleys) is timed as well.
 
-Run: python benchmarks/bench_fixed_points.py
+A last part times the search at S = 1024 (a 2-layer LSTM with H = 256: h and c of both layers)
+with the default sizing (starts and iterations scale with S): three iterations, and the bound
+they give on the whole default search, as the progress bar's "left" estimate does; ``--full``
+runs the whole default search as well.
+
+Run: python benchmarks/bench_fixed_points.py [--full]
 """
 
 from __future__ import annotations
 
+import argparse
+import os
 import time
 
 import torch
@@ -89,6 +96,39 @@ def run(threads: int | None) -> None:
     torch.set_num_threads(default)
 
 
+def load() -> str:
+    return "load {:.2f} {:.2f} {:.2f}".format(*os.getloadavg())
+
+
+def run_large(full: bool) -> None:
+    gen = torch.Generator().manual_seed(2)
+    with torch.random.fork_rng(devices=[]):
+        lstm = nn.LSTM(I, 256, num_layers=2, batch_first=True)
+    with torch.no_grad():  # PyTorch's own init range, drawn from a local generator
+        for p in lstm.parameters():
+            p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) / 16.0)
+    trace = hl.record(lstm, torch.randn(2, 20, I, generator=gen))
+    S = trace.state_size
+    n_starts = max(16, 256 * 128 // S)
+    max_iter = 100 if S < 512 else 50
+    print(f"\n== S={S} (2-layer LSTM, H=256), default sizing: {n_starts} starts, at most "
+          f"{max_iter} iterations ({load()})")
+    t0 = time.perf_counter()
+    hl.find_fixed_points(lstm, trace, max_iter=3, progress=False)
+    t3 = time.perf_counter() - t0
+    print(f"  3 iterations: {t3:.1f} s; the default search takes at most ~{t3 / 3 * max_iter:.0f} s "
+          f"(starts that finish leave the batch) ({load()})")
+    if full:
+        t0 = time.perf_counter()
+        fp = hl.find_fixed_points(lstm, trace, progress=True)
+        print(f"  whole default search: {time.perf_counter() - t0:.1f} s; {fp} ({load()})")
+
+
 if __name__ == "__main__":
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--full", action="store_true", help="run the whole search at S = 1024")
+    args = parser.parse_args()
+    print(load())
     run(1)
     run(None)
+    run_large(args.full)

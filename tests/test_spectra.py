@@ -222,3 +222,46 @@ def test_thread_count_is_given_back(gru_trace):
     before = torch.get_num_threads()
     hl.jacobian_spectra(model, trace, k=3, radius=True)
     assert torch.get_num_threads() == before
+
+
+def test_worker_threads_give_the_same_values(gru_trace):
+    # chunks on two worker threads (one torch thread each) against one worker, and both
+    # against numpy.linalg.svd of the materialised Jacobians (reference)
+    model, trace = gru_trace
+    ref = np.linalg.svd(hl.jacobians(model, trace, dtype="float64"), compute_uv=False)
+    before = torch.get_num_threads()
+    one = hl.jacobian_spectra(model, trace, k=6, chunk=2, threads=1)
+    two = hl.jacobian_spectra(model, trace, k=6, chunk=2, threads=2)
+    assert torch.get_num_threads() == before
+    np.testing.assert_allclose(two.singular_values, one.singular_values, rtol=1e-6)
+    assert _rel_err(two.singular_values, ref[..., :6]) <= 1e-3
+    seen = []
+    hl.jacobian_spectra(model, trace, k=2, chunk=3, threads=2,
+                        progress=lambda done, total, label: seen.append((done, total)))
+    assert seen == [(1, 3), (2, 3), (3, 3)]  # reported from the calling thread, in order
+
+
+def test_float32_first_pass_hands_small_values_to_float64(gen):
+    # J = diag(d) W with d spanning 1e-4..1: the float32 Gram cannot vouch for the smallest
+    # values, which must still match numpy.linalg.svd (reference) at tol
+    W = torch.linalg.qr(torch.randn(40, 40, generator=gen, dtype=torch.float64))[0]
+    d = torch.logspace(0, -4, 40, dtype=torch.float64)
+
+    def step(s, x):
+        return (d * (s @ W.T)) + x
+
+    system = hl.wrap(step, state_size=40, input_size=40, dtype=torch.float64)
+    trace = hl.record(system, np.random.default_rng(4).normal(size=(1, 3, 40)))
+    res = hl.jacobian_spectra(system, trace)
+    ref = np.linalg.svd((d[:, None] * W).numpy(), compute_uv=False)
+    assert _rel_err(res.singular_values[0], np.tile(ref, (3, 1))) <= 1e-3
+
+
+def test_spectra_inside_a_worker_thread_runs_there(gru_trace):
+    # a call made from one of the library's own worker threads must not wait on that pool
+    from hiddenlens._core.threads import parallel_map
+
+    model, trace = gru_trace
+    out = parallel_map(lambda c: hl.jacobian_spectra(model, trace, k=2, chunk=c, threads=2)
+                       .singular_values, [1, 2, 3], 2)
+    np.testing.assert_allclose(out[0], out[2], rtol=1e-6)

@@ -455,3 +455,29 @@ def test_compare_overlay_uses_the_colour_blind_safe_palette(runs, inputs):
     assert [ln.get_color() for ln in lines] == list(RUN_COLORS[:3])
     assert len({ln.get_linestyle() for ln in lines}) == 3
     assert len({ln.get_marker() for ln in lines}) == 3
+
+
+def test_spectra_first_pass_on_fewer_sequences_then_all(model, inputs, calls, monkeypatch):
+    import hiddenlens._faces.widgets.board as board
+    import hiddenlens._faces.widgets.panels as panels
+
+    monkeypatch.setattr(panels, "_PREVIEW_WORK", 1.0)  # any run gets a first pass
+    notes = []
+    original = board.Board._preview_done
+
+    def seen(self, panel, key, first, small):
+        original(self, panel, key, first, small)
+        notes.append((panel.message.value, bytes(panel.image.value)))
+
+    monkeypatch.setattr(board.Board, "_preview_done", seen)
+    view = explore(model, inputs, analyses=["spectra"], background=False)
+    assert calls == {"spectra": 2}  # the first pass, then all sequences
+    assert view.computed == {"spectra (first pass)": 1, "spectra": 1}
+    (note, png), = notes
+    assert "First pass on 1 of 3 sequences" in note and png.startswith(PNG_MAGIC)
+    assert view._panels["spectra"].message.value == ""  # the whole figure replaced it
+    assert view.images["spectra"] != png
+    # the first pass is the first sequence of the same trace (reference: the trace itself)
+    small = panels.fewer_sequences(view.run, work=1.0)
+    np.testing.assert_array_equal(small.trace.states, view.trace.states[:1])
+    assert panels.fewer_sequences(view.run, work=1.2e9) is None  # small run: no first pass

@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import numbers
+import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -754,9 +755,10 @@ def _minimise(system, s0, X, *, tol, max_iter, progress, slow_tol=0.0, slow_marg
     nu = torch.full_like(mu, 2.0)
     stall = torch.zeros(active.numel(), dtype=torch.long)
     show = {"disable": progress is False, "delay": 0.0 if progress else 2.0}
+    started = time.perf_counter()
     with progress_bar(progress, total=max_iter, label="fixed points", auto=True,
                       delay=show["delay"]) as bar:
-        for _ in range(max_iter):
+        for it in range(max_iter):
             delta, info = _damped_solve(H, g, mu)  # (a, S)
             q_a = q[active]
             # see NOTE: [Stopping on speed]
@@ -787,11 +789,25 @@ def _minimise(system, s0, X, *, tol, max_iter, progress, slow_tol=0.0, slow_marg
                 at = active[refresh]
                 H[refresh], g[refresh] = _gauss_newton(system, s[at], X[at], r[at])
             bar.update(1)
-            bar.set_postfix(active=int(active.numel()), refresh=False)
+            # an upper estimate of the time left: the remaining iterations at the mean cost so
+            # far (starts that finish leave the batch, so later iterations cost less)
+            left = (time.perf_counter() - started) / (it + 1) * (max_iter - it - 1)
+            bar.set_postfix(active=int(active.numel()), left=f"<={_duration(left)}",
+                            refresh=False)
             if active.numel() == 0:
                 break
     converged[active] = False
     return s.to(torch.float64), q, converged, settled
+
+
+def _duration(seconds: float) -> str:
+    """Seconds as "42s", "3m05s" or "1h02m"."""
+    seconds = max(0, int(round(seconds)))
+    if seconds < 60:
+        return f"{seconds}s"
+    if seconds < 3600:
+        return f"{seconds // 60}m{seconds % 60:02d}s"
+    return f"{seconds // 3600}h{seconds % 3600 // 60:02d}m"
 
 
 def _scaling(H: torch.Tensor) -> torch.Tensor:

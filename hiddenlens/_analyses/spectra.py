@@ -21,7 +21,7 @@ from .._core.jacobians import (
 )
 from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.results import Result, frozen_mapping, readonly
-from .._core.threads import single_thread
+from .._core.threads import parallel_map, single_thread, usable_cores
 from .._core.validation import as_dtype
 
 __all__ = ["JacobianSpectra", "jacobian_spectra", "top_singular_values"]
@@ -40,12 +40,23 @@ _KRYLOV_MIN_STATE = 4096
 # stable, Golub & Van Loan section 8.3). A value is accepted when the interval of square roots
 # this allows is within tol * sigma_i; steps whose top k fail are redone in float64, then by SVD.
 # c = 16 leaves a margin of two orders of magnitude over the errors measured against float64
-# SVD (tests/test_spectra.py, benchmarks/bench_spectra.py).
+# SVD (tests/test_spectra.py, benchmarks/bench_spectra.py). When J itself is written in the
+# same precision (the default float32 pass), each entry carries at most a few roundings of its
+# gate terms, ||dJ|| <= 4 sqrt(S) eps sigma_1 (Frobenius bound; common practice), which moves
+# sigma_i^2 by at most 2 ||dJ|| sigma_1 + ||dJ||^2 (Weyl's inequality): 8 more in c.
 _GRAM_ERROR = 16.0
+_FORM_ERROR = 8.0
 # below this state size every per-chunk operation (elementwise gate terms, batched products,
 # LAPACK) runs on one torch thread: on a shared 2-core machine a second thread waiting for a
-# busy core turned each of them into milliseconds (benchmarks/bench_spectra.py)
+# busy core turned each of them into milliseconds (benchmarks/bench_spectra.py). The cores are
+# used instead by independent chunks on worker threads (NOTE: [Independent batches on worker
+# threads] in _threads.py).
 _THREADS_FROM_STATE = 2048
+# chunks handed to each worker at least, so that a worker slowed by a busy core takes fewer
+_PIECES_PER_WORKER = 4
+# elements of Jacobians in a chunk at least when chunks are split for the workers: 1 MiB in
+# float32, tens of microseconds of Python per chunk against milliseconds of work
+_LEAST_ELEMENTS = 1 << 18
 _EPS = {torch.float32: 2.0**-24, torch.float64: 2.0**-53}
 
 
@@ -174,9 +185,10 @@ def jacobian_spectra(
         How many of the largest singular values to keep per step (default: all S).
     method : {"auto", "svd", "gram", "krylov"}, default "auto"
         ``"gram"``: eigenvalues of J_t^T J_t (one batched product, one batched symmetric
-        eigenvalue call) in float32; each value is accepted only if the rounding-error model
-        of the float32 Gram matrix keeps it within ``tol`` of the true one, otherwise the step
-        is redone in float64, and by SVD if that fails too (small singular values of a
+        eigenvalue call) with J_t and its Gram matrix written in float32; each value is
+        accepted only if the rounding-error model of the float32 pass keeps it within ``tol``
+        of the true one, otherwise the step is redone from float64 Jacobians, and by SVD if
+        that fails too (small singular values of a
         rank-deficient J take this last route). ``"svd"``: ``torch.linalg.svdvals`` in
         float64. ``"krylov"``: block Krylov iteration on J^T J through Jacobian-vector
         products, never forming J (light on memory; slower than "gram" unless S is in the
@@ -205,6 +217,12 @@ def jacobian_spectra(
         Seed of the random start block of the Krylov method.
     progress : bool, optional
         Show a progress bar over the chunks, with the time left (default: for long runs).
+    threads : int, optional
+        Cores to use. Below 2048 units the chunks of a module-backed system run on this many
+        worker threads, each with one torch thread (default: the cores this process may run
+        on; the caller's own thread count is not changed); ``threads=1`` runs them in the
+        calling thread. From 2048 units, and for step functions, chunks run one after the
+        other in the calling thread.
 
     Returns
     -------
@@ -237,10 +255,21 @@ def jacobian_spectra(
         method = "krylov" if (S >= _KRYLOV_MIN_STATE and k < S) else "gram"
     want_radius = bool(radius)  # None: bounds only (free), True: exact, False: neither
     want_bounds = radius is None
+    # the default first pass writes J and its Gram matrix in float32 when float32 can reach
+    # tol (NOTE: [Eigenvalue error model of the Gram route]); failing steps get float64
+    form = work
+    if method == "gram" and not want_radius and _slack(torch.float32, S) / 2 <= tol:
+        form = torch.float32
+    # closed forms are thread-safe; a user's step function is never run on two threads at once
+    workers = 1
+    if system.layers and S < _THREADS_FROM_STATE:
+        workers = threads if threads is not None else usable_cores()
     if chunk is None:
         per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
         chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
-    gen = torch.Generator().manual_seed(int(seed))
+        if workers > 1:  # enough chunks for every worker, none so small that overhead rules
+            least = max(1, _LEAST_ELEMENTS // max(per_state * B, 1))
+            chunk = max(least, min(chunk, -(-T // (_PIECES_PER_WORKER * workers))))
     from .._core.record import valid_steps
 
     real = valid_steps(trace)  # (B, T) or None: padded steps are left out (NaN rows)
@@ -253,23 +282,40 @@ def jacobian_spectra(
     starts = range(0, T, chunk)
     show = progress if progress is not None else (len(starts) > 10 and B * T * S * S > 1 << 28)
 
-    # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
-    with torch.no_grad(), single_thread(S < _THREADS_FROM_STATE):
-        for t0 in progress_bar(progress, iterable=starts, total=len(starts),
-                               label="spectra", auto=bool(show)):
-            t1 = min(T, t0 + chunk)
-            n = t1 - t0
-            lin = linearize(system, prev[:, t0:t1].reshape(B * n, S),
-                            x[:, t0:t1].reshape(B * n, I), dtype=work)
+    def one_chunk(t0: int) -> None:
+        t1 = min(T, t0 + chunk)
+        n = t1 - t0
+        p = prev[:, t0:t1].reshape(B * n, S)  # (B n, S)
+        u = x[:, t0:t1].reshape(B * n, I)  # (B n, I)
+
+        def exact(index: torch.Tensor) -> torch.Tensor:
+            """float64 Jacobians of the steps ``index`` of this chunk, for the fallbacks."""
+            return linearize(system, p[index], u[index], dtype=torch.float64).dense()
+
+        # each chunk draws its Krylov start from its own generator: the same values whichever
+        # worker runs it, in whatever order
+        gen = torch.Generator().manual_seed((int(seed) + 1_000_003 * t0) % (1 << 63))
+        with torch.no_grad():
+            lin = linearize(system, p, u, dtype=form)
             sv, rad, low, ok = _chunk_spectra(
-                lin, k, method, tol, gen, want_radius, work, want_bounds and k == S,
+                lin, k, method, tol, gen, want_radius, work, want_bounds and k == S, exact,
                 None if real_t is None else real_t[:, t0:t1].reshape(B * n))
-            sv_out[:, t0:t1] = sv.reshape(B, n, k).numpy()
-            finite[:, t0:t1] = ok.reshape(B, n).numpy()
-            if rad_out is not None:
-                rad_out[:, t0:t1] = rad.reshape(B, n).numpy()
-            if low is not None:
-                low_out[:, t0:t1] = low.reshape(B, n).numpy()
+        sv_out[:, t0:t1] = sv.reshape(B, n, k).numpy()
+        finite[:, t0:t1] = ok.reshape(B, n).numpy()
+        if rad_out is not None:
+            rad_out[:, t0:t1] = rad.reshape(B, n).numpy()
+        if low is not None:
+            low_out[:, t0:t1] = low.reshape(B, n).numpy()
+
+    with progress_bar(progress, total=len(starts), label="spectra", auto=bool(show)) as bar:
+        if workers > 1:
+            parallel_map(one_chunk, starts, workers, done=lambda i: bar.update(1))
+        else:
+            # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
+            with single_thread(S < _THREADS_FROM_STATE):
+                for t0 in starts:
+                    one_chunk(t0)
+                    bar.update(1)
     excluded = np.argwhere(~finite)  # (n, 2): sample, step
     if len(excluded):
         b0, s0 = excluded[0]
@@ -297,17 +343,28 @@ def _padding_note(real: np.ndarray | None) -> dict[str, Any]:
     return {} if real is None else {"padded_steps": int((~real).sum())}
 
 
+def _slack(prec: torch.dtype, S: int) -> float:
+    """Absolute error bound on every Gram eigenvalue, relative to sigma_1^2 (see the NOTE)."""
+    return (_GRAM_ERROR + _FORM_ERROR) * math.sqrt(S) * _EPS[prec]
+
+
 def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
                    gen: torch.Generator, want_radius: bool, work: torch.dtype,
-                   want_low: bool, real: torch.Tensor | None = None):
+                   want_low: bool, exact: Callable[[torch.Tensor], torch.Tensor] | None = None,
+                   real: torch.Tensor | None = None):
     """Top-k singular values (N, k), exact radii (N,) or None, the lower radius bound (N,) or
     None, and the finite mask (N,) of one chunk; NaN where the trajectory is not finite and on
-    padded steps (``real`` False: not computed, and not counted as non-finite)."""
+    padded steps (``real`` False: not computed, and not counted as non-finite).
+
+    ``exact(index)`` gives float64 Jacobians of some steps when ``lin`` is in float32 (the
+    fallback of the Gram route)."""
     N, S = lin.new_state.shape
     ok = torch.isfinite(lin.new_state).all(1)
     J = None
     if method != "krylov" or want_radius:
-        J = lin.dense().to(work)  # (N, S, S)
+        J = lin.dense()
+        if J.dtype != torch.float32 or exact is None:
+            J = J.to(work)  # (N, S, S)
         # a sum is NaN or Inf whenever a term is (and overflows only past 1e300 per entry):
         # the full elementwise test runs on those steps only
         sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
@@ -327,7 +384,11 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
     if method == "krylov":
         sub = top_singular_values(lin if full else lin.select(idx), k, tol=tol, generator=gen)
     else:
-        sub = _dense_top(J, k, method, tol)
+        high = None
+        if exact is not None and J.dtype == torch.float32:
+            def high(rows: torch.Tensor) -> torch.Tensor:
+                return exact(idx[rows])
+        sub = _dense_top(J, k, method, tol, high)
     sv[idx] = sub.to(torch.float64)
     if low is not None:
         # |det J| = prod sigma_i = prod |lambda_i| <= rho^S
@@ -339,27 +400,38 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
 
 
 # ---------------------------------------------------------------------- dense top-k
-def _dense_top(J: torch.Tensor, k: int, method: str, tol: float) -> torch.Tensor:
+def _dense_top(J: torch.Tensor, k: int, method: str, tol: float,
+               high: Callable[[torch.Tensor], torch.Tensor] | None = None) -> torch.Tensor:
     """Top-k singular values of dense J (N, S, S), descending: (N, k), float64.
 
     ``"svd"``: ``torch.linalg.svdvals`` in float64. ``"gram"``: eigenvalues of J^T J in float32,
     accepted value by value under the error model of NOTE: [Eigenvalue error model of the Gram
-    route]; steps that fail are redone in float64, and those that fail again by SVD.
+    route]; steps that fail are redone in float64, and those that fail again by SVD. When J is
+    float32, ``high(rows)`` gives those steps' Jacobians in float64 for the fallbacks.
 
     Batched LAPACK calls on small matrices run on one torch thread (measured on a shared
     2-core machine: two threads were 1.1-2x slower when idle and up to 40x under load).
     """
     N, S, _ = J.shape
+
+    def in64(rows: torch.Tensor) -> torch.Tensor:
+        if high is not None:
+            return high(rows)
+        return (J if rows.numel() == N else J[rows]).to(torch.float64)
+
     if method == "svd":
         with single_thread():
-            return torch.linalg.svdvals(J.to(torch.float64))[:, :k]
+            return torch.linalg.svdvals(in64(torch.arange(N)))[:, :k]
     out = torch.empty(N, k, dtype=torch.float64)
     todo = torch.arange(N)
     for prec in (torch.float32, torch.float64):
-        slack = _GRAM_ERROR * math.sqrt(S) * _EPS[prec]
+        slack = _slack(prec, S)
         if todo.numel() == 0 or slack / 2 > tol:
             continue  # this precision cannot reach tol even for sigma_1
-        Jp = (J if todo.numel() == N else J[todo]).to(prec)
+        if prec == torch.float64:
+            Jp = in64(todo)
+        else:
+            Jp = (J if todo.numel() == N else J[todo]).to(prec)
         with single_thread():
             lam = torch.linalg.eigvalsh(torch.bmm(Jp.mT, Jp))  # (n, S) ascending
         lam = lam.flip(-1)[:, :k].to(torch.float64)  # (n, k)
@@ -371,7 +443,7 @@ def _dense_top(J: torch.Tensor, k: int, method: str, tol: float) -> torch.Tensor
         todo = todo[~good]
     if todo.numel():
         with single_thread():
-            out[todo] = torch.linalg.svdvals(J[todo].to(torch.float64))[:, :k]
+            out[todo] = torch.linalg.svdvals(in64(todo))[:, :k]
     return out
 
 
@@ -519,6 +591,12 @@ def _check_quantiles(quantiles: Any) -> np.ndarray:
 def _nanquantile(a: np.ndarray, levels: np.ndarray) -> np.ndarray:
     """Quantiles over axis 0 ignoring NaN; all-NaN columns give NaN without a warning."""
     out = np.full((levels.size, a.shape[1]), np.nan)
+    rows = ~np.isnan(a).any(axis=1)
+    if rows.all() or not np.isnan(a[rows]).any():
+        # NaN only in whole rows (excluded steps): numpy's vectorised quantile on the rest
+        if rows.any():
+            out[:] = np.quantile(a[rows] if not rows.all() else a, levels, axis=0)
+        return out
     ok = ~np.isnan(a).all(axis=0)
     if ok.any():
         out[:, ok] = np.nanquantile(a[:, ok], levels, axis=0)

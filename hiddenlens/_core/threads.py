@@ -25,7 +25,7 @@ from typing import Any
 
 import torch
 
-__all__ = ["single_thread", "num_threads", "per_thread_available"]
+__all__ = ["single_thread", "num_threads", "parallel_map", "per_thread_available", "usable_cores"]
 
 _LOCK = threading.Lock()
 _OMP: Any = None
@@ -113,3 +113,78 @@ def single_thread(when: bool = True) -> contextlib.AbstractContextManager[None]:
     """Use one torch thread in the calling thread inside the block when ``when`` is true."""
     return num_threads(1 if when else None)
 
+
+
+# ---------------------------------------------------------------------- batches on worker threads
+# NOTE: [Independent batches on worker threads]
+# LAPACK on one small matrix cannot use a second core (torch's batched eigvalsh and svdvals
+# loop over the batch calling LAPACK once per matrix, and numpy does the same), and inner BLAS
+# threads on such sizes cost more than they give (see the module docstring). Independent pieces
+# of a batch can: each worker thread runs whole pieces with one torch thread of its own, so
+# every core does useful work and none waits for another inside a kernel. Pieces are handed out
+# one at a time, so a worker slowed by a busy core takes fewer of them. Only the workers' own
+# thread counts are set (per thread, as above); the caller's thread is untouched.
+_POOLS: dict[int, Any] = {}
+_WORKER_PREFIX = "hiddenlens-batch"
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (its CPU affinity), at least 1."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):  # pragma: no cover - platforms without affinity
+        return max(1, os.cpu_count() or 1)
+
+
+def _pool(workers: int) -> Any:
+    from concurrent.futures import ThreadPoolExecutor
+
+    with _LOCK:
+        pool = _POOLS.get(workers)
+        if pool is None:
+            pool = _POOLS[workers] = ThreadPoolExecutor(
+                workers, thread_name_prefix=_WORKER_PREFIX)
+        return pool
+
+
+def _one_thread(fn: Any, item: Any) -> Any:
+    with single_thread():
+        return fn(item)
+
+
+def parallel_map(fn: Any, items: Any, workers: int, *, done: Any = None) -> list[Any]:
+    """``[fn(item) for item in items]`` on ``workers`` threads with one torch thread each.
+
+    ``done(i)`` runs in the calling thread after item ``i`` finished (in completion order).
+    With one worker (or one item) everything runs in the calling thread, on one torch thread.
+    If the caller is interrupted (Ctrl-C) items not yet started are cancelled; those running
+    finish on their own and their results are dropped. See NOTE: [Independent batches on
+    worker threads].
+    """
+    items = list(items)
+    nested = threading.current_thread().name.startswith(_WORKER_PREFIX)
+    if workers <= 1 or len(items) <= 1 or nested:  # a worker never waits on its own pool
+        out = []
+        for i, item in enumerate(items):
+            out.append(_one_thread(fn, item))
+            if done is not None:
+                done(i)
+        return out
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    pool = _pool(int(workers))
+    futures = {pool.submit(_one_thread, fn, item): i for i, item in enumerate(items)}
+    results: list[Any] = [None] * len(items)
+    pending = set(futures)
+    try:
+        while pending:
+            finished, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for f in finished:
+                results[futures[f]] = f.result()
+                if done is not None:
+                    done(futures[f])
+    except BaseException:
+        for f in pending:
+            f.cancel()
+        raise
+    return results

@@ -143,6 +143,7 @@ class Board(widgets.VBox):
         self._draw_lock = threading.RLock()
         self._layouts = _render.LayoutMemo()
         self._pngs: OrderedDict[Hashable, bytes] = OrderedDict()  # recent figures by view
+        self._drawing_preview = threading.local()  # first-pass results seen by one drawing
         self.last_draw_seconds = float("nan")
         first = next(iter(self._runs.values()))
 
@@ -305,7 +306,57 @@ class Board(widgets.VBox):
             f"Computing {panel.analysis.label.lower()} ... (the other tabs wait until opened)")
         if all(s.key in pending for s in missing):
             return  # already queued; its job redraws the visible tab when done
+        self._submit_preview(panel, missing)
         self._runner.submit(missing, self._job_done, self._job_failed)
+
+    def _submit_preview(self, panel: Panel, missing: Sequence[Step]) -> None:
+        """Queue a first pass on fewer sequences ahead of ``missing`` when the tab has one.
+
+        Only for one run whose dependencies are all computed: the first pass is drawn as the
+        tab's figure (with a note) until the whole result replaces it.
+        """
+        analysis = panel.analysis
+        runs = self._runs_for(panel)
+        if analysis.preview is None or len(runs) != 1 or len(missing) != 1 \
+                or missing[0].name != analysis.name:
+            return
+        small = analysis.preview(runs[0])
+        if small is None:
+            return
+        key = missing[0].key
+        first = (*key, "first pass")
+        opts = dict(key[2])
+        step = Step(first, f"{analysis.name} (first pass)", f"{analysis.label} (first pass)",
+                    lambda: analysis.compute(small, opts))
+        self._runner.submit([step], lambda job: self._preview_done(panel, key, first, small),
+                            lambda job, exc: None)  # the whole run reports its own errors
+
+    def _preview_done(self, panel: Panel, key: Hashable, first: Hashable, small: Run) -> None:
+        """Draw the first pass unless the whole result (or another tab) got there first."""
+        if panel.analysis.name != self.current or key in self._cache:
+            return
+        with self._draw_lock:
+            view = self._view(panel)
+            if view.sample is not None and view.sample >= small.trace.batch_size:
+                return  # the chosen sequence is not in the first pass
+            self._drawing_preview.results = {key: self._cache.get(first)}
+            try:
+                png = self._layouts.render(
+                    self._layout_key(panel, view),
+                    lambda layout: self._draw_panel(panel, view, layout))
+            except Exception:  # the whole run draws (or reports) in a moment
+                return
+            finally:
+                self._drawing_preview.results = None
+            if key in self._cache:
+                return
+            B = next(iter(self._runs_for(panel))).trace.batch_size
+            panel.png = png
+            panel.image.value = png
+            panel.image.layout.display = None
+            panel.message.value = _render.note_box(
+                f"First pass on {small.trace.batch_size} of {B} sequences; the figure of all "
+                "sequences replaces it when ready.")
 
     def _job_done(self, job: Job) -> None:
         self._update_summary()
@@ -436,7 +487,11 @@ class Board(widgets.VBox):
                     extra={k: w.value for k, w in panel.views.items()})
 
     def _results(self, name: str, run: Run) -> Any:
-        return self._cache.get(self._key(name, run))
+        key = self._key(name, run)
+        value = self._cache.get(key)
+        if value is None:  # a first pass, only inside the drawing of it
+            value = (getattr(self._drawing_preview, "results", None) or {}).get(key)
+        return value
 
     def _layout_key(self, panel: Panel, view: View) -> Hashable:
         # what decides the arrangement of Axes, colour bars and legends (not the data shown)

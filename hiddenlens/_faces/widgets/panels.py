@@ -102,6 +102,9 @@ class Analysis:
         With ``per_run``, add the analysis' overlay of all runs below the per-run Axes.
     run_title : callable, optional
         ``run_title(result) -> str`` appended to a run's name above its own Axes.
+    preview : callable, optional
+        ``preview(run) -> Run or None``: a smaller run (fewer sequences) whose result the
+        explorer draws first while the whole run is computed; None when the run is small.
     """
 
     name: str
@@ -117,6 +120,7 @@ class Analysis:
     per_run: bool = False
     overlay_row: bool = False
     run_title: Callable[[Any], str] | None = None
+    preview: Callable[[Run], Run | None] | None = None
 
     @property
     def caution(self) -> str:
@@ -174,6 +178,28 @@ def _default(name: str, key: str, fallback: Callable[[Run], Any]) -> Callable[[R
         return fallback(run) if value is None else value
 
     return get
+
+
+# B * T * S^3 of a first pass that computes in a few tenths of a second (dense route of the
+# spectra, measured in benchmarks/bench_spectra.py): a GRU with H = 128 does 1 sequence of 500
+# steps
+_PREVIEW_WORK = 1.2e9
+
+
+def fewer_sequences(run: Run, work: float | None = None) -> Run | None:
+    """The first sequences of ``run``, as many as fit ``work`` (B*T*S^3), or None when the
+    whole run fits (or has one sequence)."""
+    work = _PREVIEW_WORK if work is None else work
+    B, T, S = run.trace.states.shape
+    per = float(T) * float(S) ** 3
+    if B < 2 or B * per <= 2 * work:
+        return None
+    b = max(1, min(B - 1, int(work // per)))
+    tr = run.trace
+    part = Trace(np.asarray(tr.states)[:b], np.asarray(tr.initial)[:b],
+                 np.asarray(tr.inputs)[:b], tr.parts, tr.metadata)
+    labels = None if run.labels is None else run.labels[:b]
+    return Run(run.name, run.system, part, run.inputs[:b], labels, run.seed)
 
 
 def _state_size(run: Run) -> int:
@@ -317,7 +343,7 @@ register(Analysis(
     "spectra", "Spectra", _draw_spectra,
     options=(Option("k", "top k", _default("spectra", "k", _state_size), high=_state_size,
                     tip="how many of the largest singular values of each step Jacobian"),),
-    uses=frozenset({"sample", "window"})))
+    uses=frozenset({"sample", "window"}), preview=fewer_sequences))
 register(Analysis(
     "gradient_flow", "Gradient flow", _draw_gradient_flow,
     options=(Option("max_lag", "max lag", lambda r: r.trace.n_steps - 1,
