@@ -456,7 +456,7 @@ def lyapunov_spectrum(
         warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
                       "start from another h0 (e.g. a small random state) or drive the system",
                       StationaryTrajectoryWarning, stacklevel=2)
-    growth = state_growth(states, warmup)
+    growth = state_growth(states, warmup, lengths)
     meta["state_growth"] = growth
     fewest = int(counts.min())
     if is_unbounded(growth, fewest):
@@ -497,15 +497,22 @@ MIN_COUNTED_STEPS = 100
 _UNBOUNDED_FACTOR = 30.0
 
 
-def state_growth(states: torch.Tensor, warmup: int) -> float:
+def state_growth(states: torch.Tensor, warmup: int, lengths: Any = None) -> float:
     """Log growth rate per step of the state norm over the last half of the counted steps of
-    the states (B, T, S), median over samples (0.0 from a single counted step)."""
-    counted = states[:, warmup:].to(torch.float64)  # (B, n, S)
-    n = counted.shape[1]
-    late = counted[:, n // 2:]  # (B, n - n // 2, S)
-    logs = torch.log(torch.linalg.vector_norm(late, dim=2).clamp_min(1e-300))  # (B, m)
-    span = max(late.shape[1] - 1, 1)
-    return float(((logs[:, -1] - logs[:, 0]) / span).median().item())
+    the states (B, T, S), median over samples (0.0 from a single counted step). With
+    ``lengths`` (B,), each sample counts its own steps only (padding left out)."""
+    T = states.shape[1]
+    ends = np.full(states.shape[0], T) if lengths is None else np.asarray(lengths)  # (B,)
+    rates = []
+    for b, end in enumerate(ends):
+        counted = states[b, warmup:int(end)].to(torch.float64)  # (n, S)
+        n = counted.shape[0]
+        if n == 0:
+            continue
+        late = counted[n // 2:]  # (n - n // 2, S)
+        logs = torch.log(torch.linalg.vector_norm(late, dim=1).clamp_min(1e-300))  # (m,)
+        rates.append(float((logs[-1] - logs[0]) / max(late.shape[0] - 1, 1)))
+    return float(np.median(rates)) if rates else 0.0
 
 
 def is_unbounded(growth: Any, n_steps: Any) -> bool:
