@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from .._core.results import frozen_mapping
+from .._core.validation import optional_mapping
 
 __all__ = [
     "Diagnosis",
@@ -126,60 +127,90 @@ def describe_figure(key: str, value: Any, interval: Sequence[float] | None = Non
     iv = _interval_words(interval)
     if math.isnan(v):
         return f"{term}: could not be measured (no finite value)"
-    if key == "gradient_rate":
-        if v == -math.inf:
-            return f"{term}: gradients vanish within one step"
-        if v == math.inf:
-            return f"{term}: gradients overflow within one step"
-        every = math.log(10.0) / abs(v) if v != 0 else math.inf
-        if every > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        word = "fall" if v < 0 else "grow"
-        return f"{term}: gradients {word} 10x every {_steps(every)} steps{iv}"
-    if key == "gradient_half_life":
-        if v == math.inf or v > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        if v <= 0:
-            return f"{term}: gradients vanish within one step"
-        return f"{term}: gradients halve every {_steps(v)} steps{iv}"
-    if key in ("memory_span", "task_memory_span"):
-        if v < 0:
-            return f"{term}: nothing decodable, even the current input"
-        if limit is not None and math.isfinite(limit) and v >= limit:
-            return f"{term}: at least {v:.0f} steps (the longest lag tried)"
-        if v == 0:
-            return f"{term}: only the current input is decodable (no step back)"
-        return f"{term}: {v:.0f} {_plural(v, 'step')}{iv}"
-    if key == "memory_max_lag":
-        return f"{term}: {v:.0f} {_plural(v, 'step')}"
-    if key == "kaplan_yorke_dimension":
-        if v == 0:
-            return f"{term}: no expanding direction (every exponent is negative)"
-        return f"{term}: {_num(v)}{iv}"
-    if key == "lyapunov_max":
-        if math.isinf(v):
-            return f"{term}: states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
-        kind = ("chaotic on these inputs" if v > _EDGE else
-                "near the edge of chaos" if v > -_EDGE else "contracting")
-        return f"{term}: {v:+.3g} per step, {kind}{iv}"
-    if key.startswith("fixed_points_"):
-        n = int(v)
-        return f"{term}: none found" if n == 0 else f"{term}: {n}"
-    if key == "fixed_point_norm":
-        if v == 0:
-            return f"{term}: at the origin"
-        return f"{term}: {_num(v)} from the origin"
-    if key == "participation_ratio":
-        return f"{term}: {v:.3g}{iv}"
-    if key == "top_singular_value_median":
-        if math.isinf(v):
-            return f"{term}: states overflow"
-        return f"{term}: one step stretches states by up to {_num(v)}x{iv}"
-    if key == "accuracy":
-        return f"{term}: {_percent(v)}{_interval_words(interval, _percent)}"
+    words = _DESCRIBERS.get(key) or (_count_words if key.startswith("fixed_points_")
+                                     else _plain_words)
+    return f"{term}: {words(v, iv, interval=interval, limit=limit)}"
+
+
+# Each describer gets the value v (a float, not NaN), the interval phrase iv ("" or
+# " (95% interval ...)"), the interval itself and the memory limit, and returns what follows
+# the term.
+def _rate_words(v: float, iv: str, **_: Any) -> str:
     if math.isinf(v):
-        return f"{term}: {'beyond any finite value' if v > 0 else 'below any finite value'}"
-    return f"{term}: {_num(v)}{iv}"
+        return f"gradients {'vanish' if v < 0 else 'overflow'} within one step"
+    every = math.log(10.0) / abs(v) if v != 0 else math.inf
+    if every > _FLAT_STEPS:
+        return "no decay over the lags seen"
+    return f"gradients {'fall' if v < 0 else 'grow'} 10x every {_steps(every)} steps{iv}"
+
+
+def _half_life_words(v: float, iv: str, **_: Any) -> str:
+    if v == math.inf or v > _FLAT_STEPS:
+        return "no decay over the lags seen"
+    if v <= 0:
+        return "gradients vanish within one step"
+    return f"gradients halve every {_steps(v)} steps{iv}"
+
+
+def _span_words(v: float, iv: str, *, limit: float | None, **_: Any) -> str:
+    if v < 0:
+        return "nothing decodable, even the current input"
+    if limit is not None and math.isfinite(limit) and v >= limit:
+        return f"at least {v:.0f} steps (the longest lag tried)"
+    if v == 0:
+        return "only the current input is decodable (no step back)"
+    return f"{v:.0f} {_plural(v, 'step')}{iv}"
+
+
+def _kaplan_yorke_words(v: float, iv: str, **_: Any) -> str:
+    if v == 0:
+        return "no expanding direction (every exponent is negative)"
+    return f"{_num(v)}{iv}"
+
+
+def _lyapunov_words(v: float, iv: str, **_: Any) -> str:
+    if math.isinf(v):
+        return f"states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
+    kind = ("chaotic on these inputs" if v > _EDGE else
+            "near the edge of chaos" if v > -_EDGE else "contracting")
+    return f"{v:+.3g} per step, {kind}{iv}"
+
+
+def _count_words(v: float, iv: str, **_: Any) -> str:
+    return "none found" if int(v) == 0 else f"{int(v)}"
+
+
+def _norm_words(v: float, iv: str, **_: Any) -> str:
+    return "at the origin" if v == 0 else f"{_num(v)} from the origin"
+
+
+def _stretch_words(v: float, iv: str, **_: Any) -> str:
+    if math.isinf(v):
+        return "states overflow"
+    return f"one step stretches states by up to {_num(v)}x{iv}"
+
+
+def _plain_words(v: float, iv: str, **_: Any) -> str:
+    if math.isinf(v):
+        return "beyond any finite value" if v > 0 else "below any finite value"
+    return f"{_num(v)}{iv}"
+
+
+#: key figure -> describer; fixed_points_* keys are counts, every other key a plain number
+_DESCRIBERS: Mapping[str, Any] = {
+    "gradient_rate": _rate_words,
+    "gradient_half_life": _half_life_words,
+    "memory_span": _span_words,
+    "task_memory_span": _span_words,
+    "memory_max_lag": lambda v, iv, **_: f"{v:.0f} {_plural(v, 'step')}",
+    "kaplan_yorke_dimension": _kaplan_yorke_words,
+    "lyapunov_max": _lyapunov_words,
+    "fixed_point_norm": _norm_words,
+    "participation_ratio": lambda v, iv, **_: f"{v:.3g}{iv}",
+    "top_singular_value_median": _stretch_words,
+    "accuracy": lambda v, iv, *, interval, **_: (
+        f"{_percent(v)}{_interval_words(interval, _percent)}"),
+}
 
 
 # ---------------------------------------------------------------------- noise
@@ -261,12 +292,7 @@ _TASK_KEYS = {"accuracy", "loss", "chance", "r2", "rmse", "n_eval", "accuracy_in
 
 
 def _check_task(task: Any) -> dict[str, Any]:
-    if task is None:
-        return {}
-    if not isinstance(task, Mapping):
-        raise TypeError("task must be a mapping such as {'accuracy': 0.93, 'chance': 1/3}, got "
-                        f"{type(task).__name__}")
-    out = dict(task)
+    out = optional_mapping(task, "task", "such as {'accuracy': 0.93, 'chance': 1/3}")
     if "eval_loss" in out and "loss" not in out:
         out["loss"] = out.pop("eval_loss")
     for k in ("accuracy", "chance"):
@@ -413,83 +439,38 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
         raise TypeError("figures must be a mapping of key figures (from key_figures()), got "
                         f"{type(figures).__name__}")
     t = _check_task(task)
-    if horizon is None:
-        horizon = t.get("horizon")
-    if horizon is not None:
-        if isinstance(horizon, bool) or not isinstance(horizon, (int, float)) \
-                or not math.isfinite(horizon) or horizon <= 0:
-            raise ValueError(f"horizon must be a positive number of steps, got {horizon!r}; "
-                             "pass e.g. the task's longest delay")
-        horizon = float(horizon)
+    horizon = _check_horizon(t.get("horizon") if horizon is None else horizon)
     if name is not None and not isinstance(name, str):
         raise TypeError(f"name must be a str, got {type(name).__name__}")
     settings = dict(settings or {})
 
     task_level, score, interval, task_words = _task_outcome(t)
     g_level, g_clause, g_dir = _gradient_clause(figures, horizon)
-
-    reasons: list[str] = []
-    warnings: list[str] = []
-    suggestions: list[str] = []
-    if task_words:
-        reasons.append(task_words)
-    if g_clause:
-        reasons.append(g_clause)
-
     lam = _finite(figures.get("lyapunov_max"))
-    if lam is not None and lam > _EDGE:
-        reasons.append(f"chaotic on these inputs (largest Lyapunov exponent {lam:+.3g} per step)")
-
+    chaotic = lam is not None and lam > _EDGE
     limit = _finite(figures.get("memory_max_lag"))
     span_key = "task_memory_span" if figures.get("task_memory_span") is not None \
         else "memory_span"
     span = _finite(figures.get(span_key))
+
+    reasons = [r for r in (task_words, g_clause) if r]
+    if chaotic:
+        reasons.append(f"chaotic on these inputs (largest Lyapunov exponent {lam:+.3g} per step)")
     if span is not None:
         reasons.append(describe_figure(span_key, span, limit=limit))
-
     solved = task_level == "ok"
-    failed = task_level == "failing"
-    if solved and span_key == "memory_span" and span is not None and horizon is not None \
-            and span < horizon and (limit is None or span < limit):
-        warnings.append(
-            f"the memory span ({span:.0f} {_plural(span, 'step')} on i.i.d. probe inputs) is "
-            f"below the "
-            f"task's {horizon:.0f} steps although the task is solved: the probe-based span "
-            "does not measure the variable this task stores; use task_memory on the task's "
-            "own inputs and target for a span that does")
-    if solved and g_level == "failing":
-        warnings.append(
-            "the gradient reading says failing, yet the task is solved: the rate is a "
-            "straight-line fit along these recorded inputs and may miss the few directions "
-            "that carry the task's variable (gated cells keep them apart); read it as a "
-            "statement about these trajectories, not about training")
-    if solved and lam is not None and lam > _EDGE:
-        warnings.append("chaotic on these inputs, yet the task is solved: the exponent is an "
-                        "average along the recorded inputs and need not bear on the readout")
-    if failed and g_level == "ok" and (lam is None or lam <= _EDGE):
-        warnings.append("the dynamics figures do not explain the failure; the readout, the "
-                        "training length or the learning rate may be the limit")
     if span_key == "task_memory_span" and span is not None and horizon is not None \
             and span < horizon and not solved:
         reasons.append(f"the state holds the task's variable for {span:.0f} of the "
                        f"{horizon:.0f} steps the task needs")
+    short_span = span_key == "memory_span" and span is not None and horizon is not None \
+        and span < horizon and (limit is None or span < limit)
+    warnings = _contradictions(task_level, g_level, chaotic, span if short_span else None,
+                               horizon, lam)
     warnings.extend(_degenerate(figures, settings, horizon))
 
     level = task_level or g_level or "unknown"
-    if task_level is None and g_level == "unknown":
-        level = "unknown"
-
-    if level in ("marginal", "failing"):
-        if g_dir == "down" and g_level in ("marginal", "failing"):
-            suggestions.append("a gated cell (GRU or LSTM), or an initial recurrent gain nearer "
-                               "1, may let gradients reach further back")
-        if g_dir == "up" or (lam is not None and lam > _EDGE):
-            suggestions.append("a lower initial recurrent gain, gradient-norm clipping or a "
-                               "gated cell may calm the expanding dynamics")
-        if not suggestions and horizon is not None:
-            suggestions.append("training on short delays first and lengthening them may help")
-        if suggestions:
-            suggestions.append("change one thing at a time and compare the runs")
+    suggestions = _suggestions(level, g_level, g_dir, chaotic, horizon)
 
     head = f"{name}: {level}" if name else level
     text = head + (": " + "; ".join(reasons) if reasons else ": no task metrics or figures")
@@ -500,6 +481,66 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
         suggestions=tuple(suggestions), score=score, interval=interval,
         figures=frozen_mapping(dict(figures)), task=frozen_mapping(t),
     )
+
+
+def _check_horizon(horizon: Any) -> float | None:
+    if horizon is None:
+        return None
+    if isinstance(horizon, bool) or not isinstance(horizon, (int, float)) \
+            or not math.isfinite(horizon) or horizon <= 0:
+        raise ValueError(f"horizon must be a positive number of steps, got {horizon!r}; "
+                         "pass e.g. the task's longest delay")
+    return float(horizon)
+
+
+def _contradictions(task_level: str | None, g_level: str | None, chaotic: bool,
+                    short_span: float | None, horizon: float | None, lam: float | None
+                    ) -> list[str]:
+    """Cautions where the figures and the task outcome disagree.
+
+    ``short_span`` is the probe-input memory span where it falls short of the horizon (and of
+    the longest lag tried), else None.
+    """
+    out: list[str] = []
+    solved = task_level == "ok"
+    if solved and short_span is not None:
+        out.append(
+            f"the memory span ({short_span:.0f} {_plural(short_span, 'step')} on i.i.d. probe "
+            f"inputs) is below the task's {horizon:.0f} steps although the task is solved: the "
+            "probe-based span does not measure the variable this task stores; use task_memory "
+            "on the task's own inputs and target for a span that does")
+    if solved and g_level == "failing":
+        out.append(
+            "the gradient reading says failing, yet the task is solved: the rate is a "
+            "straight-line fit along these recorded inputs and may miss the few directions "
+            "that carry the task's variable (gated cells keep them apart); read it as a "
+            "statement about these trajectories, not about training")
+    if solved and chaotic:
+        out.append("chaotic on these inputs, yet the task is solved: the exponent is an "
+                   "average along the recorded inputs and need not bear on the readout")
+    if task_level == "failing" and g_level == "ok" and (lam is None or lam <= _EDGE):
+        out.append("the dynamics figures do not explain the failure; the readout, the "
+                   "training length or the learning rate may be the limit")
+    return out
+
+
+def _suggestions(level: str, g_level: str | None, g_dir: str | None, chaotic: bool,
+                 horizon: float | None) -> list[str]:
+    """What may be worth trying for a marginal or failing run (none for the others)."""
+    if level not in ("marginal", "failing"):
+        return []
+    out: list[str] = []
+    if g_dir == "down" and g_level in ("marginal", "failing"):
+        out.append("a gated cell (GRU or LSTM), or an initial recurrent gain nearer "
+                   "1, may let gradients reach further back")
+    if g_dir == "up" or chaotic:
+        out.append("a lower initial recurrent gain, gradient-norm clipping or a "
+                   "gated cell may calm the expanding dynamics")
+    if not out and horizon is not None:
+        out.append("training on short delays first and lengthening them may help")
+    if out:
+        out.append("change one thing at a time and compare the runs")
+    return out
 
 
 def rank_runs(diagnoses: Iterable[Diagnosis]) -> list[tuple[int | None, Diagnosis]]:
