@@ -352,16 +352,9 @@ def lyapunov_spectrum(
     Kaplan & Yorke (1979), in Functional Differential Equations and Approximation of Fixed
     Points, Springer, vol. 730, 204-227.
     """
-    check_options("lyapunov_spectrum", locals())
+    check_options("lyapunov_spectrum", locals())  # method, qr_every and seed: checked here
     seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
-    if dtype is not None and not isinstance(system, RecurrentSystem):
-        wrap_options.setdefault("dtype", dtype)
-    if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
-            and wrap_options.get("input_size", 0) == 0 and state_only(system) is not None:
-        system, wrap_options = state_only(system), {**wrap_options, "input_size": 0}
-    system = as_system(system, **wrap_options)
-    if dtype is not None:
-        system = _with_dtype(system, as_dtype(dtype))
+    system = _system_of(system, dtype, wrap_options)
     dt = system.dtype
     if inputs is not None:  # the 0.1 keyword form lyapunov_spectrum(system, inputs=x)
         if trace is not None:
@@ -372,39 +365,14 @@ def lyapunov_spectrum(
         # an autonomous map driven for a number of steps: recorded here, from h0
         trace = record(system, _autonomous_inputs(system, trace, steps, h0, dt), h0)
         h0 = None
-    if trace is None:
-        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
-                        "trace = hiddenlens.record(system, inputs)")
     recorded = isinstance(trace, Trace)
-    if recorded:
-        check_trace_fits(system, trace, "lyapunov_spectrum")
-        if h0 is not None:
-            raise ValueError("h0 was given with a trace, which holds its own initial states; "
-                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
-        # the recorded trajectory is reused as it is (inputs already in the system's order)
-        x = torch.as_tensor(np.array(trace.inputs), dtype=dt)  # (B, T, I)
-    else:
-        warnings.warn(
-            "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
-            "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
-            DeprecationWarning, stacklevel=3)
-        x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
-        if system.time_reversed:
-            x = x.flip(1)
+    x, s0 = _inputs_and_start(system, trace, h0)
     B, T, _ = x.shape
     S = system.state_size
     k = _check_k(k, S)
     warmup = _check_warmup(warmup, T)
-    qr_every = _check_positive_int(qr_every, "qr_every", "re-orthonormalise every step: 1")
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+    qr_every = int(qr_every)
     chosen = _choose_method(system, k) if method == "auto" else method
-    if recorded:
-        s0 = torch.as_tensor(np.array(trace.initial), dtype=dt)  # (B, S)
-    else:
-        s0 = initial_states(system, h0, B)  # (B, S)
 
     # flops of one step of the state (up to 4 gates) and of the frame (J Q and its QR)
     state_flops = B * 8 * S * (S + system.input_size)
@@ -428,18 +396,9 @@ def lyapunov_spectrum(
     meta: dict[str, Any] = {"source": system.source, "kind": system.kind, "batch_size": B,
                             "input_steps": T, "seed": int(seed),
                             "fingerprint": system.fingerprint, "counted_steps": T - warmup}
-    cautions = []
-    still = _stationary(states, s0, warmup)
-    if still:
-        cautions.append(still)
-        warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
-                      "start from another h0 (e.g. a small random state) or drive the system",
-                      StationaryTrajectoryWarning, stacklevel=2)
-    if T - warmup < MIN_COUNTED_STEPS:
-        cautions.append(f"from only {T - warmup} counted step{'s' if T - warmup != 1 else ''} "
-                        f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
-    if cautions:
-        meta["caution"] = "; ".join(cautions)
+    caution = _caution(states, s0, warmup, T - warmup)
+    if caution:
+        meta["caution"] = caution
     # leaky RNNs built with dt: exponents per unit of the model's own time too
     meta["dt"] = system.dt
     meta["exponents_per_unit_time"] = (None if system.dt is None
@@ -465,6 +424,58 @@ MIN_COUNTED_STEPS = 100
 
 class StationaryTrajectoryWarning(RuntimeWarning):
     """The trajectory of :func:`lyapunov_spectrum` sits at a fixed point or never left h0."""
+
+
+def _system_of(system: Any, dtype: Any, wrap_options: dict[str, Any]) -> RecurrentSystem:
+    """The system to analyse in ``dtype`` (None: its own); a state-only map f(s) is autonomous."""
+    if dtype is not None and not isinstance(system, RecurrentSystem):
+        wrap_options.setdefault("dtype", dtype)
+    if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
+            and wrap_options.get("input_size", 0) == 0 and state_only(system) is not None:
+        system, wrap_options = state_only(system), {**wrap_options, "input_size": 0}
+    system = as_system(system, **wrap_options)
+    return system if dtype is None else _with_dtype(system, as_dtype(dtype))
+
+
+def _inputs_and_start(system: RecurrentSystem, trace: Any, h0: Any
+                      ) -> tuple[torch.Tensor, torch.Tensor]:
+    """Inputs (B, T, I) in the system's order and initial states (B, S): those of the trace, or
+    of input sequences (the 0.1 form, with a DeprecationWarning) started from ``h0``."""
+    dt = system.dtype
+    if trace is None:
+        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
+                        "trace = hiddenlens.record(system, inputs)")
+    if isinstance(trace, Trace):
+        check_trace_fits(system, trace, "lyapunov_spectrum")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+        # the recorded trajectory is reused as it is (inputs already in the system's order)
+        x = torch.as_tensor(np.array(trace.inputs), dtype=dt)  # (B, T, I)
+        return x, torch.as_tensor(np.array(trace.initial), dtype=dt)  # (B, S)
+    warnings.warn(
+        "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
+        "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
+        DeprecationWarning, stacklevel=4)
+    x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
+    if system.time_reversed:
+        x = x.flip(1)
+    return x, initial_states(system, h0, x.shape[0])  # (B, S)
+
+
+def _caution(states: torch.Tensor, s0: torch.Tensor, warmup: int, counted: int) -> str:
+    """Why the exponents are not conclusive ("" when they are); warns of a stationary run."""
+    cautions = []
+    still = _stationary(states, s0, warmup)
+    if still:
+        cautions.append(still)
+        warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
+                      "start from another h0 (e.g. a small random state) or drive the system",
+                      StationaryTrajectoryWarning, stacklevel=3)
+    if counted < MIN_COUNTED_STEPS:
+        cautions.append(f"from only {counted} counted step{'s' if counted != 1 else ''} "
+                        f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
+    return "; ".join(cautions)
 
 
 def _stationary(states: torch.Tensor, s0: torch.Tensor, warmup: int) -> str | None:
@@ -530,11 +541,9 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
 
     Q = torch.linalg.qr(_random_frame(seed, B, S, k)).Q.to(dt)  # (B, S, k)
 
-    if method == "jacobian":
-        chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
-    else:
-        chunk = min(_MAX_CHUNK_STEPS, 64)
-    chunk = min(chunk, T)
+    # explicit Jacobians of one chunk fit the memory budget; JVP chunks only batch the loop
+    chunk = min(T, max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
+                if method == "jacobian" else min(_MAX_CHUNK_STEPS, 64))
     points = _curve_points(n_counted, qr_every)  # counted-step numbers, 1-based
     running = np.empty((points.shape[0], k))
     p_next = 0
@@ -581,13 +590,21 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
                 sums += counted.sum(dim=0)
                 csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
                 carry = csum[-1].clone()
-                n_lo, n_hi = c0 - warmup + 1, t1 - warmup  # counted-step numbers in chunk
-                while p_next < points.shape[0] and points[p_next] <= n_hi:
-                    n = int(points[p_next])
-                    running[p_next] = (csum[n - n_lo] / n).numpy()
-                    p_next += 1
+                p_next = _keep_running(running, points, p_next, csum, c0 - warmup + 1)
             bar.update(C)
     return sums.numpy(), running, points
+
+
+def _keep_running(running: np.ndarray, points: np.ndarray, p_next: int, csum: torch.Tensor,
+                  n_lo: int) -> int:
+    """Fill ``running`` at the curve points inside a chunk whose counted steps are numbered
+    n_lo, n_lo + 1, ... (rows of ``csum``, the cumulative mean logs); return the next point."""
+    n_hi = n_lo + csum.shape[0] - 1
+    while p_next < points.shape[0] and points[p_next] <= n_hi:
+        n = int(points[p_next])
+        running[p_next] = (csum[n - n_lo] / n).numpy()
+        p_next += 1
+    return p_next
 
 
 def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
@@ -663,12 +680,6 @@ def _check_warmup(warmup, T):
             f"steps), got {warmup!r}; the counted steps are the T - warmup after it"
         )
     return int(warmup)
-
-
-def _check_positive_int(value, name, hint):
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise ValueError(f"{name} must be a positive integer, got {value!r} ({hint})")
-    return int(value)
 
 
 def _check_step_dtype(system, s0, x0):
