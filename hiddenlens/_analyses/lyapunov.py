@@ -23,7 +23,7 @@ from .._core.record import as_system, initial_states, record
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import state_only, step_errors
 from .._core.systems import RecurrentSystem
-from .._core.threads import single_thread
+from .._core.threads import single_thread_below
 from .._core.trace import Trace
 from .._core.validation import as_dtype, as_sequences, check_trace_fits
 
@@ -383,10 +383,10 @@ def lyapunov_spectrum(
         if recorded:
             states = torch.as_tensor(np.array(trace.states), dtype=dt)  # (B, T, S)
         else:
-            with _threads_for(state_flops):
+            with single_thread_below(state_flops, _SMALL_STEP_FLOPS):
                 states = system.run(x, s0, progress=False)  # (B, T, S)
         _check_trajectory(states, system)
-        with _threads_for(frame_flops):
+        with single_thread_below(frame_flops, _SMALL_STEP_FLOPS):
             sums, running, running_steps = _qr_sweep(
                 system, x, s0, states, k, warmup, qr_every, chosen, int(seed), progress)
 
@@ -618,10 +618,6 @@ def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
     cols = np.stack([np.random.default_rng(ss).standard_normal((k, S)) for ss in streams])
     return torch.from_numpy(cols).transpose(1, 2)  # (B, S, k)
 
-
-def _threads_for(step_flops: float):
-    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see _core.threads)."""
-    return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 
 def _qr_due(t: int, warmup: int, qr_every: int, T: int) -> bool:

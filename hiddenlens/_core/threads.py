@@ -25,7 +25,7 @@ from typing import Any
 
 import torch
 
-__all__ = ["single_thread", "num_threads", "per_thread_available"]
+__all__ = ["single_thread", "single_thread_below", "num_threads", "per_thread_available"]
 
 _LOCK = threading.Lock()
 _OMP: Any = None
@@ -113,3 +113,12 @@ def single_thread(when: bool = True) -> contextlib.AbstractContextManager[None]:
     """Use one torch thread in the calling thread inside the block when ``when`` is true."""
     return num_threads(1 if when else None)
 
+
+
+def single_thread_below(step_flops: float, threshold: float
+                        ) -> contextlib.AbstractContextManager[None]:
+    """One torch thread in the calling thread for per-step work below ``threshold`` flops.
+
+    Each analysis passes its own measured threshold (a module constant, read at each call).
+    """
+    return single_thread(step_flops < threshold)
