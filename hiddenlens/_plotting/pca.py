@@ -9,31 +9,9 @@ import numpy as np
 
 def draw_trajectories(result, ax: Any = None, *, dims: int = 2, color_by: Any = "time",
                       samples: Any = None, steps: slice | None = None, others: Any = None):
-    """Draw the trajectories in the plane (or space) of the leading components.
-
-    Parameters
-    ----------
-    ax : matplotlib Axes, optional
-        Where to draw (3-D axes for ``dims=3``); a new figure by default.
-    dims : {2, 3}
-    color_by : "time", "sample" or array_like of shape (B,)
-        Colour segments by step, each sample in its own colour, or by a label per sample
-        (e.g. the class of each sequence).
-    samples : int, sequence of int or slice, optional
-        Which samples to draw (all by default).
-    steps : slice, optional
-        Which steps to draw (all by default).
-    others : sequence of (name, array of shape (B', T', k)), optional
-        Further trajectories already projected into this basis, drawn dashed.
-
-    Returns
-    -------
-    matplotlib Axes
-
-    Notes
-    -----
-    Circles mark where each trajectory starts, squares where it ends.
-    """
+    """Draw PCATrajectories on ``ax``; the options are those of ``PCATrajectories.plot``,
+    except ``others``: a sequence of (name, array of shape (B', T', k)), trajectories already
+    projected into this basis."""
     from .style import RUN_COLORS, get_axes
 
     dims = check_dims(dims, result.n_components)
