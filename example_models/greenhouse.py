@@ -16,17 +16,8 @@ import numpy as np
 
 from ._nets import RecurrentReadout, check_count, check_seed
 
-__all__ = [
-    "DRIVERS",
-    "N_INPUTS",
-    "GreenhouseData",
-    "GreenhouseNet",
-    "GreenhouseParams",
-    "air_temperature",
-    "make_dataset",
-    "make_inputs",
-    "make_model",
-]
+__all__ = ["DRIVERS", "N_INPUTS", "GreenhouseData", "GreenhouseNet", "GreenhouseParams",
+    "air_temperature", "make_dataset", "make_inputs", "make_model"]
 
 DRIVERS: tuple[str, ...] = ("sunlight", "vent", "heater")
 N_INPUTS = 3
@@ -161,10 +152,9 @@ class GreenhouseNet(RecurrentReadout):
         Recurrent layer type.
     hidden_size : int
         State size S.
-    gain : float, keyword-only
-        Each recurrent weight block starts as ``gain`` times a random orthogonal matrix.
-    seed : int, keyword-only
-        Seed of the private initialisation generator.
+    gain, seed : keyword-only
+        As in :class:`RecurrentReadout` (orthogonal recurrent blocks times ``gain``, private
+        initialisation generator).
 
     ``forward(x)`` maps inputs (B, T, 3) to temperatures (B, T, 1).
     """

@@ -20,21 +20,9 @@ import torch
 
 from ._nets import RecurrentReadout, check_count, check_seed
 
-__all__ = [
-    "BINS",
-    "IGNORE",
-    "N_INPUTS",
-    "CueTrials",
-    "SortingLineData",
-    "SortingLineNet",
-    "accuracy",
-    "cue_events",
-    "make_dataset",
-    "make_gru",
-    "make_inputs",
-    "make_tanh_rnn",
-    "make_trials",
-]
+__all__ = ["BINS", "IGNORE", "N_INPUTS", "CueTrials", "SortingLineData", "SortingLineNet",
+    "accuracy", "cue_events", "make_dataset", "make_gru", "make_inputs", "make_tanh_rnn",
+    "make_trials"]
 
 BINS: tuple[str, ...] = ("red", "green", "yellow")
 N_INPUTS = 5
@@ -228,10 +216,9 @@ class SortingLineNet(RecurrentReadout):
         ``"rnn"`` is a tanh ``nn.RNN``; ``"gru"`` an ``nn.GRU``. ``"lstm"`` works as well.
     hidden_size : int
         State size S.
-    gain : float, keyword-only
-        Each recurrent weight block starts as ``gain`` times a random orthogonal matrix.
-    seed : int, keyword-only
-        Seed of the private initialisation generator.
+    gain, seed : keyword-only
+        As in :class:`RecurrentReadout` (orthogonal recurrent blocks times ``gain``, private
+        initialisation generator).
 
     Input weights start as N(0, 1.5**2), recurrent blocks as ``gain`` times a random
     orthogonal matrix. ``forward(x)`` maps inputs (B, T, 5) to logits (B, T, 3); the
