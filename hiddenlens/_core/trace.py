@@ -28,6 +28,18 @@ MAX_METADATA_BYTES = 16 << 20
 _READ_CHUNK = 1 << 20
 
 
+
+class _Size:
+    """A read-only size of a trace, one axis of one of its arrays (B, T, S or I)."""
+
+    def __init__(self, array: str, axis: int) -> None:
+        self.array, self.axis = array, axis
+
+    def __get__(self, trace: Any, owner: Any = None) -> int:
+        if trace is None:
+            return self  # type: ignore[return-value]  # the class attribute itself
+        return getattr(trace, self.array).shape[self.axis]
+
 @dataclass(frozen=True, eq=False)
 class Trace:
     """Hidden states recorded along input sequences (batch first).
@@ -84,25 +96,14 @@ class Trace:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
 
     # ------------------------------------------------------------------ sizes
-    @property
-    def batch_size(self) -> int:
-        """B, the number of sequences."""
-        return self.states.shape[0]
-
-    @property
-    def n_steps(self) -> int:
-        """T, the number of steps."""
-        return self.states.shape[1]
-
-    @property
-    def state_size(self) -> int:
-        """S, the length of the flat state."""
-        return self.states.shape[2]
-
-    @property
-    def input_size(self) -> int:
-        """I, the number of input features."""
-        return self.inputs.shape[2]
+    batch_size = _Size("states", 0)
+    """B, the number of sequences."""
+    n_steps = _Size("states", 1)
+    """T, the number of steps."""
+    state_size = _Size("states", 2)
+    """S, the length of the flat state."""
+    input_size = _Size("inputs", 2)
+    """I, the number of input features."""
 
     # ------------------------------------------------------------------ views
     def part(self, name: str) -> np.ndarray:
