@@ -18,12 +18,11 @@ import os
 import time
 
 import torch
-from torch import nn
 
 import hiddenlens as hl
 from example_models import greenhouse as gh
 from example_models import sorting_line as sl
-from example_models.train import RECIPES, TRAIN_SEED, _batch, _loss
+from example_models.train import RECIPES, train_step
 
 TARGET = 0.10
 PROBES = {"sorting_line": lambda: sl.make_inputs(8, 200, seed=99),
@@ -38,12 +37,7 @@ def train(name: str, steps: int, monitor=None) -> float:
     t_train = 0.0
     for k in range(steps):
         t0 = time.perf_counter()
-        x, y = _batch(recipe.task, recipe.batch, recipe.seq_len, TRAIN_SEED + k)
-        loss = _loss(recipe.task, model(x), y)
-        opt.zero_grad()
-        loss.backward()
-        nn.utils.clip_grad_norm_(model.parameters(), recipe.clip)
-        opt.step()
+        train_step(model, opt, recipe, k)
         t_train += time.perf_counter() - t0
         if monitor is not None:
             monitor.step(model, k)

@@ -44,6 +44,20 @@ def timed(fn, *args, **kw):
     return time.perf_counter() - start
 
 
+
+def policy_and_forced(module, threshold, forced_value, fn, *args, **kw):
+    """Seconds of ``fn`` with the library's thread policy, then with the module's one-thread
+    ``threshold`` set to ``forced_value`` (torch's default threads throughout), restored after."""
+    policy = timed(fn, *args, **kw)
+    saved = getattr(module, threshold)
+    setattr(module, threshold, forced_value)
+    try:
+        forced = timed(fn, *args, **kw)
+    finally:
+        setattr(module, threshold, saved)
+    return policy, forced
+
+
 def load() -> str:
     return "load {:.2f} {:.2f} {:.2f}".format(*os.getloadavg())
 
@@ -52,18 +66,14 @@ def main():
     print(f"torch {torch.__version__}, default threads {torch.get_num_threads()}, {load()}")
     model, trace = build(nn.GRU, 64, 400, 4)
     hl.gradient_flow(model, trace, progress=False)  # warm-up
-    policy = timed(hl.gradient_flow, model, trace, progress=False)
-    flow_module._SMALL_STEP_FLOPS, saved = 0.0, flow_module._SMALL_STEP_FLOPS
-    forced = timed(hl.gradient_flow, model, trace, progress=False)
-    flow_module._SMALL_STEP_FLOPS = saved
+    policy, forced = policy_and_forced(flow_module, "_SMALL_STEP_FLOPS", 0.0, hl.gradient_flow,
+                                       model, trace, progress=False)
     print(f"gradient_flow GRU H=64: policy {policy:.2f} s, two threads {forced:.2f} s, "
           f"ratio {forced / policy:.2f} ({load()})")
 
     model, trace = build(nn.GRU, 128, 100, 8)
-    policy = timed(hl.find_fixed_points, model, trace, progress=False)
-    fixed_module._ONE_THREAD_UP_TO, saved = 0, fixed_module._ONE_THREAD_UP_TO
-    forced = timed(hl.find_fixed_points, model, trace, progress=False)
-    fixed_module._ONE_THREAD_UP_TO = saved
+    policy, forced = policy_and_forced(fixed_module, "_ONE_THREAD_UP_TO", 0,
+                                       hl.find_fixed_points, model, trace, progress=False)
     print(f"find_fixed_points GRU H=128 (256 starts): policy {policy:.2f} s, two threads "
           f"{forced:.2f} s, ratio {forced / policy:.2f} ({load()})")
 

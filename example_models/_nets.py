@@ -1,4 +1,5 @@
-"""Shared skeleton of the example models: one recurrent layer followed by a linear readout.
+"""Shared skeleton of the example models: one recurrent layer followed by a linear readout,
+and the argument checks of the task generators.
 
 Parameters are initialised from a private ``torch.Generator`` so that building a model never
 draws from torch's global random stream.
@@ -21,6 +22,23 @@ GATE_NAMES: dict[str, tuple[str, ...]] = {
     "lstm": ("i", "f", "g", "o"),
 }
 
+
+
+def check_count(name: str, value: object, minimum: int, example: int,
+                expected: str | None = None) -> int:
+    """``value`` as an int >= ``minimum``; refused as not ``expected`` (default "an integer >=
+    minimum") with an example."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
+        raise ValueError(f"{name}={value!r} is not {expected or f'an integer >= {minimum}'}; "
+                         f"pass e.g. {name}={example}")
+    return int(value)
+
+
+def check_seed(seed: object) -> int:
+    """A generator seed: an int >= 0."""
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
+    return int(seed)
 
 class RecurrentReadout(nn.Module):
     """One batch-first recurrent layer (``self.rnn``) and a linear readout (``self.readout``).

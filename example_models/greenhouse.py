@@ -14,19 +14,10 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ._nets import RecurrentReadout
+from ._nets import RecurrentReadout, check_count, check_seed
 
-__all__ = [
-    "DRIVERS",
-    "N_INPUTS",
-    "GreenhouseData",
-    "GreenhouseNet",
-    "GreenhouseParams",
-    "air_temperature",
-    "make_dataset",
-    "make_inputs",
-    "make_model",
-]
+__all__ = ["DRIVERS", "N_INPUTS", "GreenhouseData", "GreenhouseNet", "GreenhouseParams",
+    "air_temperature", "make_dataset", "make_inputs", "make_model"]
 
 DRIVERS: tuple[str, ...] = ("sunlight", "vent", "heater")
 N_INPUTS = 3
@@ -118,12 +109,6 @@ def _smooth_noise(rng: np.random.Generator, shape: tuple[int, int]) -> np.ndarra
     return out
 
 
-def _check_count(name: str, value: object, example: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
-        raise ValueError(f"{name}={value!r} is not a positive integer; pass e.g. {name}={example}")
-    return int(value)
-
-
 def make_dataset(n_sequences: int = 16, n_steps: int = 300, *, seed: int = 0) -> GreenhouseData:
     """Draw greenhouse driver sequences and the air temperature they produce.
 
@@ -139,11 +124,9 @@ def make_dataset(n_sequences: int = 16, n_steps: int = 300, *, seed: int = 0) ->
     GreenhouseData
         ``inputs`` (B, T, 3) float32 and ``targets`` (B, T, 1) float32.
     """
-    n_seq = _check_count("n_sequences", n_sequences, 16)
-    n_t = _check_count("n_steps", n_steps, 300)
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
-    rng = np.random.default_rng(int(seed))
+    n_seq = check_count("n_sequences", n_sequences, 1, 16, "a positive integer")
+    n_t = check_count("n_steps", n_steps, 1, 300, "a positive integer")
+    rng = np.random.default_rng(check_seed(seed))
     phase = rng.uniform(0.0, _DAY, size=(n_seq, 1))  # (B, 1)
     steps = np.arange(n_t)[None, :]  # (1, T)
     daylight = np.clip(np.sin(2.0 * np.pi * (steps + phase) / _DAY), 0.0, None)  # (B, T)
@@ -169,10 +152,9 @@ class GreenhouseNet(RecurrentReadout):
         Recurrent layer type.
     hidden_size : int
         State size S.
-    gain : float, keyword-only
-        Each recurrent weight block starts as ``gain`` times a random orthogonal matrix.
-    seed : int, keyword-only
-        Seed of the private initialisation generator.
+    gain, seed : keyword-only
+        As in :class:`RecurrentReadout` (orthogonal recurrent blocks times ``gain``, private
+        initialisation generator).
 
     ``forward(x)`` maps inputs (B, T, 3) to temperatures (B, T, 1).
     """

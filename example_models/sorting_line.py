@@ -18,23 +18,11 @@ from typing import NamedTuple
 import numpy as np
 import torch
 
-from ._nets import RecurrentReadout
+from ._nets import RecurrentReadout, check_count, check_seed
 
-__all__ = [
-    "BINS",
-    "IGNORE",
-    "N_INPUTS",
-    "CueTrials",
-    "SortingLineData",
-    "SortingLineNet",
-    "accuracy",
-    "cue_events",
-    "make_dataset",
-    "make_gru",
-    "make_inputs",
-    "make_tanh_rnn",
-    "make_trials",
-]
+__all__ = ["BINS", "IGNORE", "N_INPUTS", "CueTrials", "SortingLineData", "SortingLineNet",
+    "accuracy", "cue_events", "make_dataset", "make_gru", "make_inputs", "make_tanh_rnn",
+    "make_trials"]
 
 BINS: tuple[str, ...] = ("red", "green", "yellow")
 N_INPUTS = 5
@@ -69,20 +57,6 @@ class SortingLineData(NamedTuple):
     delays: np.ndarray
 
 
-def _check_count(name: str, value: object, minimum: int, example: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < minimum:
-        raise ValueError(
-            f"{name}={value!r} is not an integer >= {minimum}; pass e.g. {name}={example}"
-        )
-    return int(value)
-
-
-def _check_seed(seed: object) -> int:
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
-    return int(seed)
-
-
 def make_dataset(
     n_sequences: int = 16,
     n_steps: int = 200,
@@ -108,13 +82,13 @@ def make_dataset(
     SortingLineData
         ``inputs`` (B, T, 5) float32, ``targets`` (B, T) int64, ``delays`` (B, T) int64.
     """
-    n_seq = _check_count("n_sequences", n_sequences, 1, 16)
-    n_t = _check_count("n_steps", n_steps, 1, 200)
-    lo = _check_count("min_delay", min_delay, 1, 2)
-    hi = _check_count("max_delay", max_delay, 1, 40)
+    n_seq = check_count("n_sequences", n_sequences, 1, 16)
+    n_t = check_count("n_steps", n_steps, 1, 200)
+    lo = check_count("min_delay", min_delay, 1, 2)
+    hi = check_count("max_delay", max_delay, 1, 40)
     if hi < lo:
         raise ValueError(f"max_delay={hi} is below min_delay={lo}; pass max_delay >= min_delay")
-    rng = np.random.default_rng(_check_seed(seed))
+    rng = np.random.default_rng(check_seed(seed))
     inputs = np.zeros((n_seq, n_t, N_INPUTS))  # (B, T, I)
     targets = np.full((n_seq, n_t), IGNORE, dtype=np.int64)  # (B, T)
     delays = np.zeros((n_seq, n_t), dtype=np.int64)  # (B, T)
@@ -189,18 +163,18 @@ def make_trials(
     delay : int, optional
         Steps from flash to gate cue; None: no cue, the tag must be kept to the end.
     """
-    n_seq = _check_count("n_sequences", n_sequences, 1, 96)
-    n_t = _check_count("n_steps", n_steps, 2, 80)
-    lo = _check_count("first_onset", first_onset, 0, 5)
-    hi = _check_count("last_onset", last_onset, lo, 15)
+    n_seq = check_count("n_sequences", n_sequences, 1, 96)
+    n_t = check_count("n_steps", n_steps, 2, 80)
+    lo = check_count("first_onset", first_onset, 0, 5)
+    hi = check_count("last_onset", last_onset, lo, 15)
     if hi >= n_t:
         raise ValueError(f"last_onset={hi} is not inside the {n_t} steps; pass a smaller "
                          "last_onset or a larger n_steps")
     if delay is not None:
-        delay = _check_count("delay", delay, 1, 30)
+        delay = check_count("delay", delay, 1, 30)
     base = make_dataset(n_seq, n_t, seed=seed, min_delay=n_t, max_delay=n_t)
     inputs = base.inputs.copy()  # vibration and noise, no crate (every delay is too long)
-    rng = np.random.default_rng(_check_seed(seed) + 1)
+    rng = np.random.default_rng(check_seed(seed) + 1)
     colour = rng.integers(len(BINS), size=n_seq)
     onset = rng.integers(lo, hi + 1, size=n_seq)
     rows = np.arange(n_seq)
@@ -242,10 +216,9 @@ class SortingLineNet(RecurrentReadout):
         ``"rnn"`` is a tanh ``nn.RNN``; ``"gru"`` an ``nn.GRU``. ``"lstm"`` works as well.
     hidden_size : int
         State size S.
-    gain : float, keyword-only
-        Each recurrent weight block starts as ``gain`` times a random orthogonal matrix.
-    seed : int, keyword-only
-        Seed of the private initialisation generator.
+    gain, seed : keyword-only
+        As in :class:`RecurrentReadout` (orthogonal recurrent blocks times ``gain``, private
+        initialisation generator).
 
     Input weights start as N(0, 1.5**2), recurrent blocks as ``gain`` times a random
     orthogonal matrix. ``forward(x)`` maps inputs (B, T, 5) to logits (B, T, 3); the

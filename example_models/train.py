@@ -172,6 +172,18 @@ def _evaluate(recipe: Recipe, model: RecurrentReadout) -> dict:
     return figures
 
 
+def train_step(model: nn.Module, optimiser: torch.optim.Optimizer, recipe: Recipe, k: int
+               ) -> torch.Tensor:
+    """One optimiser step on training batch ``k`` of the recipe (clipped gradients); the loss."""
+    x, y = _batch(recipe.task, recipe.batch, recipe.seq_len, TRAIN_SEED + k)
+    loss = _loss(recipe.task, model(x), y)
+    optimiser.zero_grad()
+    loss.backward()
+    nn.utils.clip_grad_norm_(model.parameters(), recipe.clip)
+    optimiser.step()
+    return loss
+
+
 def fit(
     recipe: Recipe, *, steps: int | None = None, log_every: int = 0, label: str = ""
 ) -> RecurrentReadout:
@@ -189,12 +201,7 @@ def fit(
     )
     model.train()
     for k in range(n_steps):
-        x, y = _batch(recipe.task, recipe.batch, recipe.seq_len, TRAIN_SEED + k)
-        loss = _loss(recipe.task, model(x), y)
-        optimiser.zero_grad()
-        loss.backward()
-        nn.utils.clip_grad_norm_(model.parameters(), recipe.clip)
-        optimiser.step()
+        loss = train_step(model, optimiser, recipe, k)
         if log_every and (k + 1) % log_every == 0:
             print(f"  {label}: step {k + 1}/{n_steps}  batch loss {loss.item():.4f}")
     return model.eval()

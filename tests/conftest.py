@@ -3,7 +3,10 @@
 from __future__ import annotations
 
 import os
+import subprocess
+import sys
 
+import numpy as np
 import pytest
 import torch
 
@@ -100,3 +103,31 @@ def gaussian_module(cls: type, n_in: int, hidden: int, *, seed: int = 0, std: fl
         for p in m.parameters():
             p.copy_(torch.randn(p.shape, generator=gen) * std)
     return m
+
+
+def gaussian_inputs(shape: tuple[int, ...], seed: int = 0) -> np.ndarray:
+    """Standard normal inputs of ``shape`` (B, T, I), float32, from a private numpy generator."""
+    return np.random.default_rng(seed).standard_normal(shape).astype(np.float32)
+
+
+def heavy_modules_after(imports: str, heavy: tuple[str, ...]) -> str:
+    """Which of ``heavy`` a fresh interpreter holds after ``import <imports>``, as the printed
+    sorted list (``"[]"`` when none)."""
+    code = (f"import sys, {imports}; "
+            f"print(sorted(m for m in {heavy!r} if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return out.stdout.strip()
+
+
+def interrupted_after(n_calls: int, step):
+    """A step function s, x -> ``step(s, x)`` that raises KeyboardInterrupt (a user's Ctrl-C)
+    on every call after ``n_calls``."""
+    calls = {"n": 0}
+
+    def interrupted(s, x):
+        calls["n"] += 1
+        if calls["n"] > n_calls:
+            raise KeyboardInterrupt
+        return step(s, x)
+
+    return interrupted

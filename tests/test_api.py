@@ -1,11 +1,9 @@
 """The public surface: every exported name resolves, and unknown names fail clearly."""
 
-import subprocess
-import sys
-
 import pytest
 
 import hiddenlens as hl
+from tests.conftest import heavy_modules_after
 
 
 @pytest.mark.parametrize("name", sorted(set(hl.__all__) - {"__version__"}))
@@ -25,8 +23,5 @@ def test_version_matches_package_metadata():
 
 
 def test_import_is_light():
-    code = ("import sys, hiddenlens; "
-            "print(sorted(m for m in ('matplotlib', 'ipywidgets', 'sklearn', 'pandas') "
-            "if m in sys.modules))")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "[]"
+    loaded = heavy_modules_after("hiddenlens", ("matplotlib", "ipywidgets", "sklearn", "pandas"))
+    assert loaded == "[]"

@@ -15,7 +15,7 @@ from hiddenlens import compare_runs, linear_cka
 from hiddenlens._analyses.compare import RunComparison
 from hiddenlens._core.registry import analysis_spec
 from hiddenlens._faces.summary import ANALYSES, available_analyses, key_figures
-from tests.conftest import gaussian_module
+from tests.conftest import gaussian_inputs, gaussian_module
 
 
 def _hsic_cka(X, Y):
@@ -93,12 +93,12 @@ def runs():
 
 
 def _module(cls, hidden, seed, n_in=3):
-    return gaussian_module(cls, n_in, hidden, seed=seed, std=0.5)
+    return gaussian_module(cls, n_in, hidden, seed=seed)
 
 
 @pytest.fixture(scope="module")
 def inputs():
-    return np.random.default_rng(4).standard_normal((3, 40, 3)).astype(np.float32)
+    return gaussian_inputs((3, 40, 3), seed=4)
 
 
 @pytest.fixture(scope="module")

@@ -15,6 +15,7 @@ from torch import nn
 import hiddenlens as hl
 from hiddenlens._analyses.fixed_points import FixedPoints, find_fixed_points
 from hiddenlens._core.trace import Trace
+from tests.conftest import interrupted_after
 
 F64 = torch.float64
 
@@ -301,15 +302,7 @@ def test_to_frame_and_counts(saddle_case):
 
 
 def test_keyboard_interrupt_propagates_and_leaves_nothing_changed():
-    calls = {"n": 0}
-
-    def step(s, x):
-        calls["n"] += 1
-        if calls["n"] > 3:
-            raise KeyboardInterrupt
-        return torch.tanh(2.0 * s)
-
-    system = _map(step, 1)
+    system = _map(interrupted_after(3, lambda s, x: torch.tanh(2.0 * s)), 1)
     rng = torch.get_rng_state()
     with pytest.raises(KeyboardInterrupt):
         find_fixed_points(system, None, starts=[[0.5], [-0.3]])

@@ -56,16 +56,22 @@ def _check_all(system, gen):
     torch.testing.assert_close(lin.new_state, system.step(prev, x), atol=tol, rtol=tol)
 
 
-KINDS = [
-    pytest.param((nn.RNN, {"nonlinearity": "tanh"}), id="rnn_tanh"),
-    pytest.param((nn.RNN, {"nonlinearity": "relu"}), id="rnn_relu"),
-    pytest.param((nn.GRU, {}), id="gru"),
-    pytest.param((nn.LSTM, {}), id="lstm"),
-]
+def _kinds(suffix: str = "") -> list:
+    """nn's four recurrent step kinds (tanh and relu RNN, GRU, LSTM); suffix "Cell": the cells."""
+    rnn = [pytest.param((getattr(nn, "RNN" + suffix), {"nonlinearity": nl}),
+                        id=f"rnn{suffix.lower()}_{nl}") for nl in ("tanh", "relu")]
+    return rnn + [pytest.param((getattr(nn, name + suffix), {}), id=(name + suffix).lower())
+                  for name in ("GRU", "LSTM")]
 
 
-@pytest.mark.parametrize("dtype", [torch.float32, torch.float64], ids=["f32", "f64"])
-@pytest.mark.parametrize("bias", [True, False], ids=["bias", "nobias"])
+KINDS = _kinds()
+CELLS = _kinds("Cell")
+DTYPES = pytest.mark.parametrize("dtype", [torch.float32, torch.float64], ids=["f32", "f64"])
+BIASES = pytest.mark.parametrize("bias", [True, False], ids=["bias", "nobias"])
+
+
+@DTYPES
+@BIASES
 @pytest.mark.parametrize("num_layers", [1, 2, 3])
 @pytest.mark.parametrize("kind", KINDS)
 def test_closed_forms_equal_jacrev(kind, num_layers, bias, dtype, make, gen):
@@ -74,16 +80,8 @@ def test_closed_forms_equal_jacrev(kind, num_layers, bias, dtype, make, gen):
     _check_all(hl.wrap(model, dtype=dtype), gen)
 
 
-CELLS = [
-    pytest.param((nn.RNNCell, {"nonlinearity": "tanh"}), id="rnncell_tanh"),
-    pytest.param((nn.RNNCell, {"nonlinearity": "relu"}), id="rnncell_relu"),
-    pytest.param((nn.GRUCell, {}), id="grucell"),
-    pytest.param((nn.LSTMCell, {}), id="lstmcell"),
-]
-
-
-@pytest.mark.parametrize("dtype", [torch.float32, torch.float64], ids=["f32", "f64"])
-@pytest.mark.parametrize("bias", [True, False], ids=["bias", "nobias"])
+@DTYPES
+@BIASES
 @pytest.mark.parametrize("kind", CELLS)
 def test_cells_equal_jacrev(kind, bias, dtype, make, gen):
     cls, kw = kind

@@ -23,6 +23,7 @@ from hiddenlens._core.record import as_system
 from hiddenlens._core.systems import RecurrentSystem
 from hiddenlens._core.validation import as_dtype
 from hiddenlens._faces.summary import key_figures, summary_sentence
+from tests.conftest import interrupted_after
 
 F64 = torch.float64
 
@@ -298,14 +299,7 @@ def test_kaplan_yorke_dimension_edge_cases():
 
 
 def test_interrupt_restores_threads_and_propagates():
-    calls = {"n": 0}
-
-    def step(s, x):
-        calls["n"] += 1
-        if calls["n"] > 50:
-            raise KeyboardInterrupt
-        return 0.5 * s
-
+    step = interrupted_after(50, lambda s, x: 0.5 * s)
     system = hl.wrap(step, state_size=2, input_size=0, dtype=F64)
     threads = torch.get_num_threads()
     with pytest.raises(KeyboardInterrupt):

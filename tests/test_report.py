@@ -18,7 +18,7 @@ from hiddenlens._faces.summary import (
     key_figures,
     run_analyses,
 )
-from tests.conftest import gaussian_module
+from tests.conftest import gaussian_inputs, gaussian_module, heavy_modules_after
 
 IMG = '<img src="data:image/png;base64,'
 # figures per result in a one-model report (a comparison shows one per run plus an overlay)
@@ -27,13 +27,13 @@ SINGLE_FIGURES = {"spectra": 1, "gradient_flow": 1, "lyapunov": 2, "pca": 2, "fi
 OPTIONS = {"memory": {"max_lag": 5, "n_steps": 300}, "fixed_points": {"n_starts": 8}}
 
 
-def _module(cls, hidden, seed, n_in=3):
-    return gaussian_module(cls, n_in, hidden, seed=seed, std=0.5)
+def _module(cls, hidden, seed):
+    return gaussian_module(cls, 3, hidden, seed=seed)
 
 
 @pytest.fixture(scope="module")
 def inputs():
-    return np.random.default_rng(0).standard_normal((2, 30, 3)).astype(np.float32)
+    return gaussian_inputs((2, 30, 3), seed=0)
 
 
 @pytest.fixture(scope="module")
@@ -170,14 +170,10 @@ def test_report_data_writes_non_finite_numbers_as_strings(inputs):
 
 
 def test_report_modules_import_without_matplotlib():
-    import subprocess
-    import sys
-
-    code = ("import sys, hiddenlens._faces.report, hiddenlens._analyses.compare, "
-            "hiddenlens._faces.cli; "
-            "print(sorted(m for m in ('matplotlib', 'ipywidgets', 'pandas') if m in sys.modules))")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "[]"
+    loaded = heavy_modules_after(
+        "hiddenlens._faces.report, hiddenlens._analyses.compare, hiddenlens._faces.cli",
+        ("matplotlib", "ipywidgets", "pandas"))
+    assert loaded == "[]"
 
 
 def test_write_report_refuses_other_objects(tmp_path):

@@ -338,14 +338,7 @@ def figure_intervals(
         raise TypeError(f"results must be a mapping analysis name -> result (e.g. from "
                         f"run_analyses), got {type(results).__name__}")
     B = _batch_size(results)
-    if samples is None:
-        rows = np.arange(B)
-    else:
-        rows = np.asarray(samples)
-        if rows.ndim != 1 or rows.size == 0 or not np.issubdtype(rows.dtype, np.integer) \
-                or rows.min() < 0 or rows.max() >= B:
-            raise ValueError(f"samples must be a non-empty 1-D sequence of row indices in "
-                             f"[0, {B}), got {samples!r}")
+    rows = np.arange(B) if samples is None else _check_rows(samples, B)
     rng = np.random.default_rng(seed)
     values = dict(key_figures(results))
     reps: dict[str, np.ndarray] = {}
@@ -356,13 +349,9 @@ def figure_intervals(
             point = _sequence_replicates(results, rows[None, :], rows)
             values.update({k: float(v[0]) for k, v in point.items()})
         methods.update({k: "sequences" for k in reps})
-    draws = list(draws or ())
-    if draws:
-        per_draw = [key_figures(d) for d in draws]
-        for k in DRAW_FIGURES:
-            if k in values and all(k in d for d in per_draw):
-                reps[k] = np.array([float(values[k])] + [float(d[k]) for d in per_draw])
-                methods[k] = "draws"
+    draw_reps = _draw_replicates(values, draws)
+    reps.update(draw_reps)
+    methods.update({k: "draws" for k in draw_reps})
     names = tuple(k for k, v in values.items()
                   if isinstance(v, (int, float, np.number)) and not isinstance(v, bool))
     lows, highs = [], []
@@ -382,6 +371,27 @@ def figure_intervals(
         n_sequences=int(rows.size), replicates={k: reps[k] for k in names if k in reps},
         seed=seed,
     )
+
+
+def _check_rows(samples: Any, B: int) -> np.ndarray:
+    rows = np.asarray(samples)
+    if rows.ndim != 1 or rows.size == 0 or not np.issubdtype(rows.dtype, np.integer) \
+            or rows.min() < 0 or rows.max() >= B:
+        raise ValueError(f"samples must be a non-empty 1-D sequence of row indices in "
+                         f"[0, {B}), got {samples!r}")
+    return rows
+
+
+def _draw_replicates(values: Mapping[str, Any], draws: Iterable[Mapping[str, Any]] | None
+                     ) -> dict[str, np.ndarray]:
+    """Figure -> the point value and the reruns' values, for the draw figures all of them have."""
+    from .figures import key_figures
+
+    per_draw = [key_figures(d) for d in draws or ()]
+    if not per_draw:
+        return {}
+    return {k: np.array([float(values[k])] + [float(d[k]) for d in per_draw])
+            for k in DRAW_FIGURES if k in values and all(k in d for d in per_draw)}
 
 
 def _batch_size(results: Mapping[str, Any]) -> int:

@@ -125,23 +125,22 @@ def _budget_task_memory(system: Any, trace: Any, seed: int) -> dict[str, Any]:
 
 
 # ---------------------------------------------------------------------- key figures
+def _scalars(**values: Any) -> dict[str, Any]:
+    """Each value as a float (the median of an array), leaving out those without one."""
+    out = {key: scalar(value) for key, value in values.items()}
+    return {key: v for key, v in out.items() if v is not None}
+
+
 def _figures_spectra(r: Any) -> dict[str, Any]:
     out: dict[str, Any] = {}
     sv = np.asarray(r.singular_values, dtype=float)  # (B, T, k)
     if sv.size:
         out["top_singular_value_median"] = float(nanmedian(sv[..., 0]))
-    rho = scalar(r.spectral_radius)
-    if rho is not None:
-        out["spectral_radius_median"] = rho
-    return out
+    return out | _scalars(spectral_radius_median=r.spectral_radius)
 
 
 def _figures_gradient_flow(r: Any) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in (("gradient_rate", r.rate), ("gradient_half_life", r.half_life)):
-        v = scalar(value)
-        if v is not None:
-            out[key] = v
+    out = _scalars(gradient_rate=r.rate, gradient_half_life=r.half_life)
     meta = getattr(r, "metadata", None) or {}
     if r.verdict is not None:
         note = meta.get("verdict_note")
@@ -167,8 +166,7 @@ def _figures_lyapunov(r: Any) -> dict[str, Any]:
 
 
 def _figures_pca(r: Any) -> dict[str, Any]:
-    v = scalar(r.participation_ratio)
-    return {} if v is None else {"participation_ratio": v}
+    return _scalars(participation_ratio=r.participation_ratio)
 
 
 def _figures_fixed_points(r: Any) -> dict[str, Any]:
@@ -184,11 +182,7 @@ def _figures_fixed_points(r: Any) -> dict[str, Any]:
 
 
 def _figures_memory(r: Any) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in (("memory_span", r.span), ("memory_capacity", r.capacity)):
-        v = scalar(value)
-        if v is not None:
-            out[key] = v
+    out = _scalars(memory_span=r.span, memory_capacity=r.capacity)
     lags = np.asarray(r.lags, dtype=float)
     if lags.size:
         out["memory_max_lag"] = float(lags.max())
@@ -353,10 +347,15 @@ def _arrays_fixed_points(r: Any) -> dict[str, Any]:
 
 
 # ---------------------------------------------------------------------- overlays
-def _overlay_spectra(runs: Runs, ax: Any) -> None:
+def _by_index(runs: Runs, draw: Callable[..., Any], values: Callable[[Any], Any]) -> None:
+    """One curve per run of ``values(result)`` (k,) against the index 1..k."""
     for name, r in runs:
-        y = median_curve(r.singular_values)  # (k,)
-        ax.semilogy(np.arange(1, y.size + 1), y, marker=".", label=name)
+        y = np.asarray(values(r), dtype=float).reshape(-1)  # (k,)
+        draw(np.arange(1, y.size + 1), y, marker=".", label=name)
+
+
+def _overlay_spectra(runs: Runs, ax: Any) -> None:
+    _by_index(runs, ax.semilogy, lambda r: median_curve(r.singular_values))
     ax.set_xlabel("singular value index")
     ax.set_ylabel("median singular value of J_t")
 
@@ -377,9 +376,7 @@ def _overlay_gradient_flow(runs: Runs, ax: Any) -> None:
 
 
 def _overlay_lyapunov(runs: Runs, ax: Any) -> None:
-    for name, r in runs:
-        y = np.asarray(r.exponents, dtype=float).reshape(-1)  # (k,)
-        ax.plot(np.arange(1, y.size + 1), y, marker=".", label=name)
+    _by_index(runs, ax.plot, lambda r: r.exponents)
     ax.axhline(0.0, color="0.5", lw=0.8)
     ax.set_xlabel("exponent index")
     ax.set_ylabel("Lyapunov exponent (per step)")
@@ -426,12 +423,15 @@ def _overlay_memory(runs: Runs, ax: Any) -> None:
 
 
 # ---------------------------------------------------------------------- report drawings
-def _draw_lyapunov(r: Any, others: Mapping[str, Any], *, extras: bool = True
-                   ) -> list[Drawing]:
-    out = [Drawing("", lambda ax: r.plot(ax=ax))]
-    if extras:
-        out.append(Drawing("spectrum", lambda ax: r.plot(ax=ax, kind="spectrum")))
-    return out
+def _plot_and(label: str, extra: Callable[[Any, Any], Any]) -> Callable[..., list[Drawing]]:
+    """Drawings of a result: its ``.plot``, and with extras ``extra(result, ax)`` as ``label``."""
+    def drawings(r: Any, others: Mapping[str, Any], *, extras: bool = True) -> list[Drawing]:
+        out = [Drawing("", lambda ax: r.plot(ax=ax))]
+        if extras:
+            out.append(Drawing(label, lambda ax: extra(r, ax)))
+        return out
+
+    return drawings
 
 
 def _draw_pca(r: Any, others: Mapping[str, Any], *, extras: bool = True) -> list[Drawing]:
@@ -445,6 +445,9 @@ def _draw_pca(r: Any, others: Mapping[str, Any], *, extras: bool = True) -> list
     if extras:
         out.append(Drawing("variance", lambda ax: r.plot_variance(ax=ax)))
     return out
+
+
+_draw_lyapunov = _plot_and("spectrum", lambda r, ax: r.plot(ax=ax, kind="spectrum"))
 
 
 def _draw_fixed_points(r: Any, others: Mapping[str, Any], *, extras: bool = True

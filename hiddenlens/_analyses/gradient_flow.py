@@ -22,7 +22,7 @@ from .._core.jacobians import check_chunk, linearize, system_for_trace, trace_te
 from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
-from .._core.threads import single_thread
+from .._core.threads import single_thread_below
 from .._core.validation import as_float_tensor
 
 __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_norms",
@@ -34,7 +34,7 @@ __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_
 VERDICTS = ("vanishing", "near-isometric", "exploding", "undetermined")
 DEFAULT_THRESHOLD = 0.01
 _CHUNK_ELEMENTS = 1 << 22
-# per-step work below this many flops runs on one thread (see _threads_for)
+# per-step work below this many flops runs on one thread (see single_thread_below)
 _SMALL_STEP_FLOPS = 2e7
 # products up to this size get their 2-norm from an SVD outright (cheaper than iterating)
 _EXACT_SIZE = 128
@@ -256,7 +256,8 @@ def gradient_flow(
     show = progress if progress is not None else max_lag * B * S**3 > 5e10
     bar = progress_bar(progress, total=max_lag, label="gradient flow", auto=bool(show))
     L = 0
-    with torch.no_grad(), bar, _threads_for(2.0 * B * S**3), step_errors(system):
+    one_thread = single_thread_below(2.0 * B * S**3, _SMALL_STEP_FLOPS)
+    with torch.no_grad(), bar, one_thread, step_errors(system):
         while L < max_lag:
             # Jacobians J_t for t = end - L, end - L - 1, ... (the next factors), newest first;
             # a sequence shorter than the lag has no factor there (identity, norm left NaN)
@@ -393,10 +394,6 @@ def _finite_window(states: np.ndarray, initial: np.ndarray, x: torch.Tensor, end
     info["excluded"] = []
     return new_end, new_max, lo, hi, info
 
-
-def _threads_for(step_flops: float):
-    """One torch thread for per-step work below ``_SMALL_STEP_FLOPS`` (see _core.threads)."""
-    return single_thread(step_flops < _SMALL_STEP_FLOPS)
 
 
 def _top_singular(P: torch.Tensor, V: torch.Tensor, ok: torch.Tensor, tol: float,
@@ -717,7 +714,7 @@ def loss_gradient_norms(
     lam[:, T - 1] = g[:, T - 1]
     prev = torch.cat([s0.unsqueeze(1), states[:, :-1]], dim=1)  # (B, T, S)
     S = system.state_size
-    with torch.no_grad(), _threads_for(2.0 * B * S * S * 4):
+    with torch.no_grad(), single_thread_below(2.0 * B * S * S * 4, _SMALL_STEP_FLOPS):
         for t in range(T - 1, -1, -1):
             back = linearize(system, prev[:, t], x[:, t]).vjp(lam[:, t].unsqueeze(2))[:, :, 0]
             if t > 0:

@@ -366,12 +366,6 @@ def memory_curve(
 
 
 # ====================================================================== options and inputs
-def _int(name: str, value: Any, low: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-        raise ValueError(f"{name} must be an integer >= {low}, got {value!r}")
-    return int(value)
-
-
 def _positive(name: str, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float, np.number)) \
             or not math.isfinite(value) or value <= 0:
@@ -380,13 +374,57 @@ def _positive(name: str, value: Any) -> float:
 
 
 def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) -> dict[str, Any]:
-    method, mode = given["method"], given["mode"]
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}, got "
-                         f"{method!r}")
+    """The options of :func:`memory_curve` checked together and completed with their defaults.
+
+    ``method``, ``max_lag``, ``n_folds``, the counts and ``impulse`` have passed
+    ``check_options`` (their declared constraints) already; what is left here depends on
+    other options or on the system.
+    """
+    method = given["method"]
+    mode = _check_mode(system, inputs, given)
+    max_lag, n_folds = int(given["max_lag"]), int(given["n_folds"])
+    washout = max_lag if given["washout"] is None else int(given["washout"])
+    threshold = given["threshold"]
+    if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
+            or not math.isfinite(threshold):
+        raise ValueError(f"threshold must be a finite number, got {threshold!r}")
+    if method == "decoding" and not 0 < threshold <= 1:
+        # R^2 and chance-adjusted accuracy never exceed 1: no lag could reach the level
+        raise ValueError(f"threshold must be in (0, 1] for decoding scores (R^2 or "
+                         f"chance-adjusted accuracy), got {threshold!r}")
+    alphas = check_alphas(given["alphas"])
+    normalize = _check_normalize(method, given["normalize"])
+    categorical = given["categorical"]
+    if categorical not in (None, True, False):
+        raise ValueError(f"categorical must be True, False or None (detect), got "
+                         f"{categorical!r}")
+    if categorical and system.input_size < 2:
+        raise ValueError("categorical=True needs one-hot inputs with at least 2 features; the "
+                         f"system has input_size={system.input_size}")
+    parts = _check_parts(system, given["parts"])
+    defaults = {"decoding": (n_folds, washout + max(2000, 20 * (max_lag + 1))),
+                "perturbation": (32, washout + max_lag + 1),
+                "sensitivity": (4, washout + max_lag + 100)}[method]
+    counts = [d if given[n] is None else int(given[n])
+              for n, d in zip(("n_sequences", "n_steps"), defaults, strict=True)]
+    return {
+        "method": method, "mode": mode, "max_lag": max_lag, "washout": washout,
+        "n_folds": n_folds, "threshold": float(threshold), "alphas": alphas,
+        "normalize": normalize, "categorical": categorical, "parts": parts,
+        "n_sequences": counts[0], "n_steps": counts[1],
+        "scale": _positive("scale", given["scale"]),
+        "impulse": float(given["impulse"]),
+        "baseline_window": int(given["baseline_window"]),
+        "rng": np.random.default_rng(given["seed"]),
+    }
+
+
+def _check_mode(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) -> str:
+    """"probe" or "data": the given mode, or the one the inputs imply, checked against them."""
     if system.input_size == 0:
         raise ValueError(f"the {system.source} system takes no inputs (input_size=0), so it "
                          "has no memory of inputs to measure; wrap a system with inputs")
+    mode = given["mode"]
     if mode is None:
         mode = "probe" if inputs is None else "data"
     if mode not in MODES:
@@ -402,64 +440,38 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
             if given[name] is not None:
                 raise ValueError(f"{name} applies to probe mode only; in data mode the inputs "
                                  "set the number and length of sequences")
-    max_lag = _int("max_lag", given["max_lag"], 0)
-    washout = max_lag if given["washout"] is None else _int("washout", given["washout"], 0)
-    n_folds = _int("n_folds", given["n_folds"], 2)
-    threshold = given["threshold"]
-    if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
-            or not math.isfinite(threshold):
-        raise ValueError(f"threshold must be a finite number, got {threshold!r}")
-    if method == "decoding" and not 0 < threshold <= 1:
-        # R^2 and chance-adjusted accuracy never exceed 1: no lag could reach the level
-        raise ValueError(f"threshold must be in (0, 1] for decoding scores (R^2 or "
-                         f"chance-adjusted accuracy), got {threshold!r}")
-    alphas = check_alphas(given["alphas"])
-    normalize = given["normalize"]
+    return mode
+
+
+def _check_normalize(method: str, normalize: Any) -> str | None:
+    """None for decoding; "lag0" (the default), "spread" or "none" for the other methods."""
     if method == "decoding":
         if normalize is not None:
             raise ValueError("normalize applies to the perturbation and sensitivity methods; "
                              "decoding scores are R^2 or balanced accuracy (drop normalize)")
-    else:
-        normalize = "lag0" if normalize is None else normalize
-        allowed = ("lag0", "spread", "none") if method == "perturbation" else ("lag0", "none")
-        if normalize not in allowed:
-            raise ValueError(f"normalize must be one of {', '.join(map(repr, allowed))} for "
-                             f"method={method!r}, got {normalize!r}")
-    categorical = given["categorical"]
-    if categorical not in (None, True, False):
-        raise ValueError(f"categorical must be True, False or None (detect), got "
-                         f"{categorical!r}")
-    if categorical and system.input_size < 2:
-        raise ValueError("categorical=True needs one-hot inputs with at least 2 features; the "
-                         f"system has input_size={system.input_size}")
-    parts = given["parts"]
-    if parts is not None:
-        if not isinstance(parts, (str, Sequence)):
-            raise TypeError(f"parts must be a part name or a list of them, got "
-                            f"{type(parts).__name__}; the system has parts "
-                            f"{', '.join(map(repr, system.parts))}")
-        names = [parts] if isinstance(parts, str) else list(parts)
-        unknown = [n for n in names if n not in system.parts]
-        if not names or unknown:
-            raise ValueError(f"parts {unknown or parts!r} not found; the system has parts "
-                             f"{', '.join(map(repr, system.parts))}")
-        parts = names
-    defaults = {"decoding": (n_folds, washout + max(2000, 20 * (max_lag + 1))),
-                "perturbation": (32, washout + max_lag + 1),
-                "sensitivity": (4, washout + max_lag + 100)}[method]
-    n_sequences = defaults[0] if given["n_sequences"] is None else _int(
-        "n_sequences", given["n_sequences"], 1)
-    n_steps = defaults[1] if given["n_steps"] is None else _int("n_steps", given["n_steps"], 1)
-    return {
-        "method": method, "mode": mode, "max_lag": max_lag, "washout": washout,
-        "n_folds": n_folds, "threshold": float(threshold), "alphas": alphas,
-        "normalize": normalize, "categorical": categorical, "parts": parts,
-        "n_sequences": n_sequences, "n_steps": n_steps,
-        "scale": _positive("scale", given["scale"]),
-        "impulse": _positive("impulse", given["impulse"]),
-        "baseline_window": _int("baseline_window", given["baseline_window"], 0),
-        "rng": np.random.default_rng(given["seed"]),
-    }
+        return None
+    normalize = "lag0" if normalize is None else normalize
+    allowed = ("lag0", "spread", "none") if method == "perturbation" else ("lag0", "none")
+    if normalize not in allowed:
+        raise ValueError(f"normalize must be one of {', '.join(map(repr, allowed))} for "
+                         f"method={method!r}, got {normalize!r}")
+    return normalize
+
+
+def _check_parts(system: RecurrentSystem, parts: Any) -> list[str] | None:
+    """The named parts as a list (None: the whole state), each one of the system's."""
+    if parts is None:
+        return None
+    if not isinstance(parts, (str, Sequence)):
+        raise TypeError(f"parts must be a part name or a list of them, got "
+                        f"{type(parts).__name__}; the system has parts "
+                        f"{', '.join(map(repr, system.parts))}")
+    names = [parts] if isinstance(parts, str) else list(parts)
+    unknown = [n for n in names if n not in system.parts]
+    if not names or unknown:
+        raise ValueError(f"parts {unknown or parts!r} not found; the system has parts "
+                         f"{', '.join(map(repr, system.parts))}")
+    return names
 
 
 def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: Any,

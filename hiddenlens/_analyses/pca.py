@@ -484,39 +484,50 @@ def _call_form(system: Any, trace: Any, legacy: tuple[Any, ...], k: Any, parts: 
     if isinstance(system, Trace):
         given, positional = system, ((trace,) if trace is not None else ()) + tuple(legacy)
     else:
-        given, positional = trace, tuple(legacy)
-        if given is None:
-            raise TypeError(f"the trace must be a hiddenlens Trace, got {type(system).__name__}; "
-                            "call pca_trajectories(system, trace) or pca_trajectories(trace) "
-                            "with trace = hiddenlens.record(model, inputs)")
-        if not isinstance(given, Trace):
-            from .._core.record import record
+        given, positional = _trace_of(system, trace), tuple(legacy)
+    if positional:
+        k, parts = _positional_options(positional, k, parts, n_components)
+    k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
+    return given, (3 if k is None else k), parts
 
-            if not isinstance(given, (np.ndarray, torch.Tensor)):
-                raise TypeError(f"trace must be a hiddenlens Trace, got {type(given).__name__}; "
-                                "record one with hiddenlens.record(model, inputs)")
-            warnings.warn("pca_trajectories(system, inputs) is deprecated; record first: "
-                          "pca_trajectories(system, hiddenlens.record(system, inputs))",
-                          DeprecationWarning, stacklevel=4)
-            given = record(system, given)
-        elif isinstance(system, RecurrentSystem):
-            check_trace_fits(system, given, "pca_trajectories")
+
+def _trace_of(system: Any, trace: Any) -> Trace:
+    """The trace of pca_trajectories(system, trace), recorded first when inputs are given."""
+    if trace is None:
+        raise TypeError(f"the trace must be a hiddenlens Trace, got {type(system).__name__}; "
+                        "call pca_trajectories(system, trace) or pca_trajectories(trace) "
+                        "with trace = hiddenlens.record(model, inputs)")
+    if isinstance(trace, Trace):
+        if isinstance(system, RecurrentSystem):
+            check_trace_fits(system, trace, "pca_trajectories")
+        return trace
+    if not isinstance(trace, (np.ndarray, torch.Tensor)):
+        raise TypeError(f"trace must be a hiddenlens Trace, got {type(trace).__name__}; "
+                        "record one with hiddenlens.record(model, inputs)")
+    from .._core.record import record
+
+    warnings.warn("pca_trajectories(system, inputs) is deprecated; record first: "
+                  "pca_trajectories(system, hiddenlens.record(system, inputs))",
+                  DeprecationWarning, stacklevel=5)
+    return record(system, trace)
+
+
+def _positional_options(positional: tuple[Any, ...], k: Any, parts: Any, n_components: Any
+                        ) -> tuple[Any, Any]:
+    """k and parts of the 0.1 form pca_trajectories(trace, n_components, parts)."""
     if len(positional) > 2:
         raise TypeError(f"pca_trajectories takes at most (system, trace) positionally, got "
                         f"{len(positional)} more; pass k= and parts= by keyword")
-    if positional:
-        warnings.warn("pca_trajectories(trace, n_components, parts) with positional options is "
-                      "deprecated; pass them by keyword: pca_trajectories(system, trace, k=..., "
-                      "parts=...)", DeprecationWarning, stacklevel=4)
-        if k is not None or n_components is not None:
-            raise TypeError("pca_trajectories got the number of components twice; pass only k=")
-        k = positional[0]
-        if len(positional) == 2:
-            if parts is not None:
-                raise TypeError("pca_trajectories got parts twice; pass only parts=")
-            parts = positional[1]
-    k = renamed("pca_trajectories", "n_components", "k", n_components, k, default=None)
-    return given, (3 if k is None else k), parts
+    warnings.warn("pca_trajectories(trace, n_components, parts) with positional options is "
+                  "deprecated; pass them by keyword: pca_trajectories(system, trace, k=..., "
+                  "parts=...)", DeprecationWarning, stacklevel=5)
+    if k is not None or n_components is not None:
+        raise TypeError("pca_trajectories got the number of components twice; pass only k=")
+    if len(positional) == 2 and parts is not None:
+        raise TypeError("pca_trajectories got parts twice; pass only parts=")
+    return positional[0], (positional[1] if len(positional) == 2 else parts)
+
+
 def _check_labels(labels: Any, B: int, T: int, kind: str
                   ) -> tuple[np.ndarray | None, str | None]:
     """The labels as an array of shape (B,) or (B, T), and how they are read."""

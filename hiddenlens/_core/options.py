@@ -224,6 +224,10 @@ CONSTRAINTS: dict[str, dict[str, tuple[Constraint, ...]]] = {
         **_COMMON, "max_lag": (Interval("int", 0, None),), "threads": THREADS,
         "method": (OneOf(("decoding", "perturbation", "sensitivity")),),
         "n_folds": (Interval("int", 2, None),),
+        # counts default to None: sized from the method and the lags (see memory_curve)
+        "n_sequences": (NONE, *POSITIVE_INT), "n_steps": (NONE, *POSITIVE_INT),
+        "washout": (NONE, Interval("int", 0, None)), "impulse": POSITIVE,
+        "baseline_window": (Interval("int", 0, None),),
     },
 }
 

@@ -43,29 +43,39 @@ def frozen_mapping(mapping: Mapping[str, Any] | None) -> Mapping[str, Any]:
     return MappingProxyType(dict(mapping or {}))
 
 
+def _finite(value: Any) -> float | None:
+    v = float(value)
+    return v if math.isfinite(v) else None
+
+
+def _array_json(value: np.ndarray) -> Any:
+    if value.dtype.kind in "biuf":
+        return jsonable(value.tolist())
+    return [jsonable(v) for v in value.tolist()]
+
+
+#: (types, JSON form) in the order tried: bool before int, since a bool is an int
+_JSON_FORMS: tuple[tuple[Any, Any], ...] = (
+    ((bool, str), lambda v: v),
+    (np.bool_, bool),
+    ((int, np.integer), int),
+    ((float, np.floating), _finite),
+    (np.ndarray, _array_json),
+    (Mapping, lambda v: {str(k): jsonable(x) for k, x in v.items()}),
+    (slice, lambda v: [v.start, v.stop]),
+    ((list, tuple), lambda v: [jsonable(x) for x in v]),
+)
+
+
 def jsonable(value: Any) -> Any:
     """``value`` as plain JSON data: arrays to (nested) lists, NaN/Inf to None, numpy scalars to
     Python numbers, mappings to dicts; objects without a JSON form (a fitted estimator) to None.
     """
-    if value is None or isinstance(value, (bool, str)):
-        return value
-    if isinstance(value, (np.bool_,)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.ndarray):
-        if value.dtype.kind in "biuf":
-            return jsonable(value.tolist())
-        return [jsonable(v) for v in value.tolist()]
-    if isinstance(value, Mapping):
-        return {str(k): jsonable(v) for k, v in value.items()}
-    if isinstance(value, slice):
-        return [value.start, value.stop]
-    if isinstance(value, (list, tuple)):
-        return [jsonable(v) for v in value]
+    if value is None:
+        return None
+    for types, form in _JSON_FORMS:
+        if isinstance(value, types):
+            return form(value)
     if hasattr(value, "detach"):  # a tensor
         return jsonable(value.detach().cpu().numpy())
     return None

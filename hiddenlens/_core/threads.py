@@ -25,7 +25,8 @@ from typing import Any
 
 import torch
 
-__all__ = ["single_thread", "num_threads", "parallel_map", "per_thread_available", "usable_cores"]
+__all__ = ["single_thread", "single_thread_below", "num_threads", "parallel_map",
+           "per_thread_available", "usable_cores"]
 
 _LOCK = threading.Lock()
 _OMP: Any = None
@@ -188,3 +189,12 @@ def parallel_map(fn: Any, items: Any, workers: int, *, done: Any = None) -> list
             f.cancel()
         raise
     return results
+
+
+def single_thread_below(step_flops: float, threshold: float
+                        ) -> contextlib.AbstractContextManager[None]:
+    """One torch thread in the calling thread for per-step work below ``threshold`` flops.
+
+    Each analysis passes its own measured threshold (a module constant, read at each call).
+    """
+    return single_thread(step_flops < threshold)

@@ -28,6 +28,18 @@ MAX_METADATA_BYTES = 16 << 20
 _READ_CHUNK = 1 << 20
 
 
+
+class _Size:
+    """A read-only size of a trace, one axis of one of its arrays (B, T, S or I)."""
+
+    def __init__(self, array: str, axis: int) -> None:
+        self.array, self.axis = array, axis
+
+    def __get__(self, trace: Any, owner: Any = None) -> int:
+        if trace is None:
+            return self  # type: ignore[return-value]  # the class attribute itself
+        return getattr(trace, self.array).shape[self.axis]
+
 @dataclass(frozen=True, eq=False)
 class Trace:
     """Hidden states recorded along input sequences (batch first).
@@ -84,25 +96,14 @@ class Trace:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
 
     # ------------------------------------------------------------------ sizes
-    @property
-    def batch_size(self) -> int:
-        """B, the number of sequences."""
-        return self.states.shape[0]
-
-    @property
-    def n_steps(self) -> int:
-        """T, the number of steps."""
-        return self.states.shape[1]
-
-    @property
-    def state_size(self) -> int:
-        """S, the length of the flat state."""
-        return self.states.shape[2]
-
-    @property
-    def input_size(self) -> int:
-        """I, the number of input features."""
-        return self.inputs.shape[2]
+    batch_size = _Size("states", 0)
+    """B, the number of sequences."""
+    n_steps = _Size("states", 1)
+    """T, the number of steps."""
+    state_size = _Size("states", 2)
+    """S, the length of the flat state."""
+    input_size = _Size("inputs", 2)
+    """I, the number of input features."""
 
     # ------------------------------------------------------------------ views
     def part(self, name: str) -> np.ndarray:
@@ -143,42 +144,10 @@ class Trace:
         reproduces ``states``. ``metadata["window"]`` holds the window [t0, t1) in the steps of the
         original recording and the batch and step counts are updated.
         """
-        B = self.batch_size
-        if samples is None:
-            b = np.arange(B)
-        else:
-            b = np.atleast_1d(np.asarray(samples))
-            if b.size == 0:
-                raise ValueError("samples selects no sequence")
-            if b.dtype == bool:
-                if b.shape != (B,):
-                    raise ValueError(f"a boolean samples mask must have shape ({B},), got "
-                                     f"{b.shape}")
-                b = np.flatnonzero(b)
-            elif b.ndim != 1 or not np.issubdtype(b.dtype, np.integer):
-                raise TypeError("samples must be an int, a sequence of ints or a boolean mask, "
-                                f"got {samples!r}")
-            if b.size and (b.min() < -B or b.max() >= B):
-                raise IndexError(f"samples {b.tolist()} out of range for a trace of {B} "
-                                 "sequences")
-        if b.size == 0:
-            raise ValueError("samples selects no sequence")
-        steps = slice(None) if steps is None else steps
-        if not isinstance(steps, slice):
-            raise TypeError(f"steps must be a slice such as slice(100, 200), got {steps!r}")
-        t0, t1, step = steps.indices(self.n_steps)
-        if step != 1 or t1 <= t0:
-            raise ValueError(f"steps must be a non-empty contiguous slice of range("
-                             f"{self.n_steps}), got {steps!r}")
+        b = _sample_indices(samples, self.batch_size)
+        t0, t1 = _step_window(steps, self.n_steps)
         initial = self.initial[b] if t0 == 0 else self.states[b, t0 - 1]
-        offset = int(self.metadata.get("window", (0, 0))[0])
-        meta = dict(self.metadata, window=[offset + t0, offset + t1])
-        if "batch_size" in meta:
-            meta["batch_size"] = int(b.size)
-        if "n_steps" in meta:
-            meta["n_steps"] = t1 - t0
-        if meta.get("lengths") is not None:  # real lengths of padded sequences, in the window
-            meta["lengths"] = np.clip(np.asarray(meta["lengths"])[b] - t0, 0, t1 - t0).tolist()
+        meta = _window_metadata(self.metadata, b, t0, t1)
         return Trace(self.states[b, t0:t1], initial, self.inputs[b, t0:t1], self.parts, meta)
 
     # ------------------------------------------------------------------ tables and plots
@@ -250,6 +219,54 @@ def _json_default(value: Any) -> Any:
     raise TypeError(f"{type(value).__name__} {value!r} is not JSON-serialisable")
 
 
+def _sample_indices(samples: Any, B: int) -> np.ndarray:
+    """``samples`` of :meth:`Trace.select` as a non-empty array of sequence indices."""
+    if samples is None:
+        return np.arange(B)
+    b = np.atleast_1d(np.asarray(samples))
+    if b.size == 0:
+        raise ValueError("samples selects no sequence")
+    if b.dtype == bool:
+        if b.shape != (B,):
+            raise ValueError(f"a boolean samples mask must have shape ({B},), got {b.shape}")
+        b = np.flatnonzero(b)
+        if b.size == 0:
+            raise ValueError("samples selects no sequence")
+        return b
+    if b.ndim != 1 or not np.issubdtype(b.dtype, np.integer):
+        raise TypeError("samples must be an int, a sequence of ints or a boolean mask, "
+                        f"got {samples!r}")
+    if b.min() < -B or b.max() >= B:
+        raise IndexError(f"samples {b.tolist()} out of range for a trace of {B} sequences")
+    return b
+
+
+def _step_window(steps: slice | None, T: int) -> tuple[int, int]:
+    """``steps`` of :meth:`Trace.select` as a non-empty window [t0, t1) of range(T)."""
+    steps = slice(None) if steps is None else steps
+    if not isinstance(steps, slice):
+        raise TypeError(f"steps must be a slice such as slice(100, 200), got {steps!r}")
+    t0, t1, step = steps.indices(T)
+    if step != 1 or t1 <= t0:
+        raise ValueError(f"steps must be a non-empty contiguous slice of range({T}), got "
+                         f"{steps!r}")
+    return t0, t1
+
+
+def _window_metadata(metadata: Mapping[str, Any], b: np.ndarray, t0: int, t1: int
+                     ) -> dict[str, Any]:
+    """Metadata of the sequences ``b`` over steps [t0, t1): window, counts and lengths."""
+    offset = int(metadata.get("window", (0, 0))[0])
+    meta = dict(metadata, window=[offset + t0, offset + t1])
+    if "batch_size" in meta:
+        meta["batch_size"] = int(b.size)
+    if "n_steps" in meta:
+        meta["n_steps"] = t1 - t0
+    if meta.get("lengths") is not None:  # real lengths of padded sequences, in the window
+        meta["lengths"] = np.clip(np.asarray(meta["lengths"])[b] - t0, 0, t1 - t0).tolist()
+    return meta
+
+
 _ARRAYS = ("states", "initial", "inputs")
 
 
@@ -309,16 +326,7 @@ def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> 
     if not os.path.lexists(name):
         raise FileNotFoundError(f"no trace file at {name!r}")
     not_trace = f"{name!r} is not a hiddenlens trace file (written by Trace.save)"
-    try:
-        # O_NONBLOCK: opening a FIFO must not wait for a writer
-        fd = os.open(name, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
-    except OSError as err:
-        raise ValueError(f"{not_trace}: cannot open it ({err.strerror})") from None
-    if not stat.S_ISREG(os.fstat(fd).st_mode):
-        os.close(fd)
-        raise ValueError(f"{not_trace}: it is not a regular file (a pipe, device or "
-                         "folder); copy the trace to a file first")
-    with os.fdopen(fd, "rb") as fh:
+    with _open_regular(name, not_trace) as fh:
         try:
             arrays, meta = _read_archive(fh, not_trace, int(max_bytes))
         except RecursionError:
@@ -330,6 +338,36 @@ def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> 
                 raise
             raise ValueError(f"{not_trace}: it is damaged ({type(err).__name__}: "
                              f"{text[:200]})") from None
+    _check_format(meta, name, not_trace)
+    st = arrays["states"]
+    if st.ndim != 3 or 0 in st.shape:
+        raise ValueError(f"{not_trace}: states have shape {st.shape}, expected a non-empty "
+                         "(B, T, S)")
+    parts = _parts_from_file(meta.pop("parts", None), st.shape[2], not_trace)
+    meta.pop("format")
+    meta.pop("format_version")
+    try:
+        return Trace(parts=parts, metadata=meta, **arrays)
+    except (TypeError, ValueError) as err:
+        raise ValueError(f"{not_trace}: {err}") from None
+
+
+def _open_regular(name: str, not_trace: str) -> Any:
+    """``name`` opened for binary reading; pipes, devices and folders are refused unread."""
+    try:
+        # O_NONBLOCK: opening a FIFO must not wait for a writer
+        fd = os.open(name, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+    except OSError as err:
+        raise ValueError(f"{not_trace}: cannot open it ({err.strerror})") from None
+    if not stat.S_ISREG(os.fstat(fd).st_mode):
+        os.close(fd)
+        raise ValueError(f"{not_trace}: it is not a regular file (a pipe, device or "
+                         "folder); copy the trace to a file first")
+    return os.fdopen(fd, "rb")
+
+
+def _check_format(meta: Any, name: str, not_trace: str) -> None:
+    """Refuse metadata that does not name the trace format or names a newer version of it."""
     if not isinstance(meta, dict) or meta.get("format") != FORMAT:
         raise ValueError(f"{not_trace}: its metadata does not name the format {FORMAT!r}")
     version = meta.get("format_version")
@@ -338,12 +376,10 @@ def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> 
     if version > FORMAT_VERSION:
         raise ValueError(f"{name!r} was written by a newer hiddenlens (format {version}, this "
                          f"one reads up to {FORMAT_VERSION}); upgrade hiddenlens to read it")
-    st = arrays["states"]
-    if st.ndim != 3 or 0 in st.shape:
-        raise ValueError(f"{not_trace}: states have shape {st.shape}, expected a non-empty "
-                         "(B, T, S)")
-    S = st.shape[2]
-    raw_parts = meta.pop("parts", None)
+
+
+def _parts_from_file(raw_parts: Any, S: int, not_trace: str) -> dict[str, slice]:
+    """The parts as saved (name -> [start, stop]) as slices inside a state of size S."""
     if not isinstance(raw_parts, dict):
         raise ValueError(f"{not_trace}: malformed parts {str(raw_parts)[:100]}")
     parts = {}
@@ -357,12 +393,7 @@ def load_trace(path: str | os.PathLike, *, max_bytes: int = MAX_TRACE_BYTES) -> 
             raise ValueError(f"{not_trace}: part {n!r} = {bounds} lies outside the state of "
                              f"size {S}")
         parts[n] = slice(*bounds)
-    meta.pop("format")
-    meta.pop("format_version")
-    try:
-        return Trace(parts=parts, metadata=meta, **arrays)
-    except (TypeError, ValueError) as err:
-        raise ValueError(f"{not_trace}: {err}") from None
+    return parts
 
 
 def _read_archive(fh: Any, not_trace: str, max_bytes: int) -> tuple[dict[str, np.ndarray], Any]:
@@ -374,53 +405,65 @@ def _read_archive(fh: Any, not_trace: str, max_bytes: int) -> tuple[dict[str, np
         raise ValueError(f"{not_trace}: it is not an .npz archive")
     fh.seek(0)
     with zipfile.ZipFile(fh) as zf:
-        members = {i.filename: i for i in zf.infolist()}
-        missing = [k for k in (*_ARRAYS, "metadata") if f"{k}.npy" not in members]
-        if missing:
-            raise ValueError(f"{not_trace}: it lacks {', '.join(sorted(missing))}")
-        headers = {}
-        total = 0
-        for key in (*_ARRAYS, "metadata"):
-            info = members[f"{key}.npy"]
-            with zf.open(info) as f:
-                shape, dtype, offset = _npy_header(f, key, not_trace)
-            nbytes = int(np.prod(shape, dtype=object)) * dtype.itemsize
-            if info.file_size != offset + nbytes:
-                raise ValueError(
-                    f"{not_trace}: {key} declares shape {shape} of {dtype} ({nbytes} bytes) "
-                    f"but its entry holds {max(info.file_size - offset, 0)} bytes")
-            if key == "metadata":
-                if dtype.kind != "U" or shape != () or nbytes > MAX_METADATA_BYTES:
-                    raise ValueError(f"{not_trace}: metadata must be one JSON string of at "
-                                     f"most {MAX_METADATA_BYTES} bytes, got {dtype} {shape}")
-            else:
-                if dtype.kind != "f":
-                    raise ValueError(f"{not_trace}: {key} has dtype {dtype}, expected float")
-                total += nbytes
-            headers[key] = (info, shape, dtype, offset)
-        if total > max_bytes:
-            raise ValueError(
-                f"{not_trace}: its arrays declare {total} bytes, more than max_bytes="
-                f"{max_bytes}; pass load_trace(path, max_bytes=...) to read a trace this large")
-        arrays = {}
-        for key, (info, shape, dtype, offset) in headers.items():
-            out = np.empty(shape, dtype=dtype)
-            with zf.open(info) as f:  # the stream checks the CRC once the entry is read
-                f.read(offset)
-                view = memoryview(out.reshape(-1).view(np.uint8)) if out.size else memoryview(b"")
-                got = 0
-                while got < len(view):
-                    # bounded pieces: a zip entry's readinto reads a whole bytes copy first
-                    n = f.readinto(view[got:got + _READ_CHUNK])
-                    if not n:
-                        raise ValueError(f"{not_trace}: {key} is truncated")
-                    got += n
-                f.read()  # reach the end of the entry so that a bad CRC is noticed
-            arrays[key] = out
+        headers = _entry_headers(zf, not_trace, max_bytes)
+        arrays = {key: _read_entry(zf, key, *header, not_trace)
+                  for key, header in headers.items()}
         meta = json.loads(str(arrays.pop("metadata")[()]))
     for a in arrays.values():
         a.setflags(write=False)
     return arrays, meta
+
+
+def _entry_headers(zf: zipfile.ZipFile, not_trace: str, max_bytes: int
+                   ) -> dict[str, tuple[zipfile.ZipInfo, tuple[int, ...], np.dtype, int]]:
+    """Entry, shape, dtype and data offset of each array, checked before anything is read."""
+    members = {i.filename: i for i in zf.infolist()}
+    missing = [k for k in (*_ARRAYS, "metadata") if f"{k}.npy" not in members]
+    if missing:
+        raise ValueError(f"{not_trace}: it lacks {', '.join(sorted(missing))}")
+    headers = {}
+    total = 0
+    for key in (*_ARRAYS, "metadata"):
+        info = members[f"{key}.npy"]
+        with zf.open(info) as f:
+            shape, dtype, offset = _npy_header(f, key, not_trace)
+        nbytes = int(np.prod(shape, dtype=object)) * dtype.itemsize
+        if info.file_size != offset + nbytes:
+            raise ValueError(
+                f"{not_trace}: {key} declares shape {shape} of {dtype} ({nbytes} bytes) "
+                f"but its entry holds {max(info.file_size - offset, 0)} bytes")
+        if key == "metadata":
+            if dtype.kind != "U" or shape != () or nbytes > MAX_METADATA_BYTES:
+                raise ValueError(f"{not_trace}: metadata must be one JSON string of at "
+                                 f"most {MAX_METADATA_BYTES} bytes, got {dtype} {shape}")
+        else:
+            if dtype.kind != "f":
+                raise ValueError(f"{not_trace}: {key} has dtype {dtype}, expected float")
+            total += nbytes
+        headers[key] = (info, shape, dtype, offset)
+    if total > max_bytes:
+        raise ValueError(
+            f"{not_trace}: its arrays declare {total} bytes, more than max_bytes="
+            f"{max_bytes}; pass load_trace(path, max_bytes=...) to read a trace this large")
+    return headers
+
+
+def _read_entry(zf: zipfile.ZipFile, key: str, info: zipfile.ZipInfo, shape: tuple[int, ...],
+                dtype: np.dtype, offset: int, not_trace: str) -> np.ndarray:
+    """One entry's data read straight into its final buffer, in bounded pieces."""
+    out = np.empty(shape, dtype=dtype)
+    with zf.open(info) as f:  # the stream checks the CRC once the entry is read
+        f.read(offset)
+        view = memoryview(out.reshape(-1).view(np.uint8)) if out.size else memoryview(b"")
+        got = 0
+        while got < len(view):
+            # bounded pieces: a zip entry's readinto reads a whole bytes copy first
+            n = f.readinto(view[got:got + _READ_CHUNK])
+            if not n:
+                raise ValueError(f"{not_trace}: {key} is truncated")
+            got += n
+        f.read()  # reach the end of the entry so that a bad CRC is noticed
+    return out
 
 
 def _npy_header(f: Any, key: str, not_trace: str) -> tuple[tuple[int, ...], np.dtype, int]:

@@ -5,13 +5,14 @@ Each message says what was wrong, what was expected and how to fix it.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import torch
 
 __all__ = ["as_dtype", "as_sequences", "as_float_tensor", "check_finite", "check_trace_finite",
-           "check_trace_fits", "describe"]
+           "check_trace_fits", "describe", "optional_mapping"]
 
 _DTYPES = {
     "float32": torch.float32,
@@ -150,3 +151,13 @@ def check_trace_fits(system: Any, trace: Any, analysis: str) -> None:
             f"S={system.state_size}, I={system.input_size}; record the trace with this system "
             "or model: hiddenlens.record(system, inputs)"
         )
+
+
+def optional_mapping(value: Any, name: str, expected: str) -> dict[str, Any]:
+    """``value`` as a dict (empty for None); anything but a mapping is refused with
+    "``name`` must be a mapping ``expected``, got <type>"."""
+    if value is None:
+        return {}
+    if not isinstance(value, Mapping):
+        raise TypeError(f"{name} must be a mapping {expected}, got {type(value).__name__}")
+    return dict(value)

@@ -35,6 +35,7 @@ from .._analyses.figures import (
 )
 from .._analyses.runner import AnalysisResults
 from .._core.registry import AnalysisSpec, analyses, registered
+from .._core.validation import optional_mapping
 from .._plotting.style import no_mathtext
 from .._version import __version__
 
@@ -391,11 +392,8 @@ def _run_anchor(i: int) -> str:
 
 def _check_task_map(task: Any, runs: Mapping[str, Any]) -> dict[str, Mapping[str, Any]]:
     """``task`` as run name -> metrics; one metrics dict is taken for a single run."""
-    if task is None:
-        return {}
-    if not isinstance(task, Mapping):
-        raise TypeError("task must be a mapping run name -> task metrics (accuracy, chance, "
-                        f"loss, horizon...), got {type(task).__name__}")
+    task = optional_mapping(task, "task", "run name -> task metrics (accuracy, chance, loss, "
+                            "horizon...)")
     names = list(runs)
     if len(names) == 1 and task and not any(k in runs for k in task) \
             and not all(isinstance(v, Mapping) for v in task.values()):

@@ -57,25 +57,17 @@ def draw_gradient_flow(result, ax: Any = None, *, sample: int | None = None, nor
 def draw_loss_gradient_norms(result, ax: Any = None, *, sample: int | None = None, **kw: Any):
     """||dL/ds_t|| over the steps t on a log axis (median over samples, or one sample);
     grey ticks mark the steps the loss reads."""
-    from .style import get_axes
+    from .style import finish_step_axes, get_axes, sample_or_median
 
     ax = get_axes(ax)
     B, T = result.norms.shape
-    if sample is None:
-        y = np.median(result.norms, axis=0) if B > 1 else result.norms[0]
-        label = f"median of {B} samples" if B > 1 else "sample 0"
-    else:
-        if not -B <= sample < B:
-            raise ValueError(f"sample must be in [0, {B}), got {sample}")
-        y, label = result.norms[sample], f"sample {sample}"
+    y = sample_or_median(result.norms, sample)
+    label = (f"median of {B} samples" if B > 1 else "sample 0") if sample is None \
+        else f"sample {sample}"
     ax.plot(np.arange(T), y, lw=kw.get("lw", 1.5), label=label)
     if result.loss_steps is not None:
         for t in result.loss_steps:
             ax.axvline(t, color="0.7", lw=0.8, ls=":")
-    if np.any(np.isfinite(y) & (y > 0)):
-        ax.set_yscale("log")
-    ax.set_xlabel("step t")
-    ax.set_ylabel("||dL / ds_t||")
-    ax.set_title(f"{result.metadata.get('model_class', 'model')}: loss gradient per step")
-    ax.legend(fontsize="small", loc="best")
-    return ax
+    return finish_step_axes(
+        ax, y, "||dL / ds_t||",
+        f"{result.metadata.get('model_class', 'model')}: loss gradient per step")

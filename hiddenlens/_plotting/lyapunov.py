@@ -8,19 +8,7 @@ import numpy as np
 
 
 def draw_lyapunov(result, ax: Any = None, *, kind: str = "convergence", **kw: Any):
-    """Draw the convergence curve or the spectrum; returns the Axes.
-
-    Parameters
-    ----------
-    ax : matplotlib Axes, optional
-        Where to draw (a new figure by default).
-    kind : {"convergence", "spectrum"}
-        ``"convergence"``: running estimate of each exponent against the number of counted
-        steps (log axis); a trustworthy estimate flattens out. ``"spectrum"``: exponents
-        against their index, with the spread over samples as error bars.
-    **kw
-        Passed to ``ax.plot`` (convergence) or ``ax.errorbar`` (spectrum).
-    """
+    """Draw a LyapunovSpectrum on ``ax``; the options are those of ``LyapunovSpectrum.plot``."""
     from .style import get_axes, time_colors
 
     if kind not in ("convergence", "spectrum"):

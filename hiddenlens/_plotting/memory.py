@@ -8,20 +8,7 @@ import numpy as np
 
 
 def draw_memory(result, ax: Any = None, *, log: bool | None = None, **kw: Any):
-    """Draw the curve with its spread, the threshold, and the baseline or chance level.
-
-    Parameters
-    ----------
-    ax : matplotlib Axes, optional
-    log : bool, optional
-        Logarithmic score axis (default: on for perturbation and sensitivity curves).
-    **kw
-        Passed to ``ax.plot`` for the main curve.
-
-    Returns
-    -------
-    matplotlib Axes
-    """
+    """Draw a MemoryCurve on ``ax``; the options are those of ``MemoryCurve.plot``."""
     from .style import OKABE_ITO, get_axes
 
     ax = get_axes(ax)

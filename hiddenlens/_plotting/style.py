@@ -8,6 +8,8 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
+import numpy as np
+
 __all__ = [
     "LINESTYLES",
     "MARKERS",
@@ -173,8 +175,6 @@ def time_colors(n: int, cmap: str = "viridis"):
 
 
 def _linspace(n: int):
-    import numpy as np
-
     return np.linspace(0.0, 1.0, max(n, 1))
 
 
@@ -190,3 +190,25 @@ def no_mathtext(ax_or_fig: Any):
     for t in fig.findobj(Text):
         t.set_parse_math(False)
     return ax_or_fig
+
+
+def sample_or_median(a: Any, sample: int | None, median: Any = np.median) -> Any:
+    """``a[sample]``, or with ``sample=None`` the median over the samples (axis 0) of ``a``."""
+    B = a.shape[0]
+    if sample is None:
+        return median(a, axis=0) if B > 1 else a[0]
+    if not -B <= sample < B:
+        raise ValueError(f"sample must be in [0, {B}), got {sample}")
+    return a[sample]
+
+
+def finish_step_axes(ax: Any, values: Any, ylabel: str, title: str) -> Any:
+    """A log value axis where any drawn value is positive and finite; step axis, labels and
+    legend of a curve over the steps t."""
+    if np.any(np.isfinite(values) & (values > 0)):
+        ax.set_yscale("log")
+    ax.set_xlabel("step t")
+    ax.set_ylabel(ylabel)
+    ax.set_title(title)
+    ax.legend(fontsize="small", loc="best")
+    return ax

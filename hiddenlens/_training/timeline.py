@@ -254,6 +254,41 @@ def _collect(checkpoints: Any) -> tuple[list[str], list[Any]]:
     return names, states
 
 
+def _load_files(names: list[str], states: list[Any]) -> list[str | None]:
+    """Read the checkpoints given as paths into ``states``; the error of each one that fails."""
+    errors: list[str | None] = [None] * len(names)
+    for i, (n, s) in enumerate(zip(names, states, strict=True)):
+        if s is None:
+            try:
+                states[i] = _load(n)
+            except ValueError as err:
+                errors[i] = str(err)
+    return errors
+
+
+def _training_order(keys: Sequence[tuple[int, int]]) -> list[int]:
+    """Indices by step (then epoch) when every checkpoint has a step, else by epoch when every
+    one has an epoch, else as given."""
+    idx = list(range(len(keys)))
+    steps = [k[0] for k in keys]
+    epochs = [k[1] for k in keys]
+    if all(s >= 0 for s in steps):
+        idx.sort(key=lambda i: (steps[i], epochs[i]))
+    elif all(e >= 0 for e in epochs):
+        idx.sort(key=lambda i: epochs[i])
+    return idx
+
+
+def _loaded(make: Any, state: Any) -> Any:
+    """A new model from the factory with the checkpoint's weights."""
+    import torch
+
+    model = make()
+    with torch.no_grad():
+        model.load_state_dict(_state_dict(state, model))
+    return model
+
+
 # ---------------------------------------------------------------------- public function
 def timeline(
     checkpoints: Any,
@@ -294,36 +329,20 @@ def timeline(
         raise ValueError(f"order must be 'auto' or 'given', got {order!r}")
     make = _resolve_factory(factory)
     names, states = _collect(checkpoints)
-    errors: list[str | None] = [None] * len(names)
-    for i, (n, s) in enumerate(zip(names, states, strict=True)):
-        if s is None:
-            try:
-                states[i] = _load(n)
-            except ValueError as err:
-                errors[i] = str(err)
+    errors = _load_files(names, states)
     keys = checkpoint_order(names, states)
-    idx = list(range(len(names)))
-    if order == "auto":
-        steps = [k[0] for k in keys]
-        epochs = [k[1] for k in keys]
-        if all(s >= 0 for s in steps):
-            idx.sort(key=lambda i: (steps[i], epochs[i]))
-        elif all(e >= 0 for e in epochs):
-            idx.sort(key=lambda i: epochs[i])
+    idx = _training_order(keys) if order == "auto" else list(range(len(names)))
     x = inputs.detach().cpu().numpy() if hasattr(inputs, "detach") else np.asarray(inputs)
     C, F = len(idx), len(figures)
     vals, lows, highs = (np.full((C, F), math.nan) for _ in range(3))
-    import torch
     from tqdm.auto import tqdm
 
     for row, i in enumerate(tqdm(idx, desc="checkpoints", leave=False, disable=not progress)):
         if errors[i] is not None:
             continue
         try:
-            model = make()
-            with torch.no_grad():
-                model.load_state_dict(_state_dict(states[i], model))
-            got = probe_figures(model, x, figures, seed=seed, level=level, n_boot=n_boot)
+            got = probe_figures(_loaded(make, states[i]), x, figures, seed=seed, level=level,
+                                n_boot=n_boot)
         except Exception as err:  # one bad checkpoint is reported, not fatal
             errors[i] = f"{type(err).__name__}: {err}"
             continue
