@@ -11,7 +11,7 @@ import pytest  # noqa: E402
 from matplotlib.colors import to_rgb  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-from hiddenlens._plotting.style import style as P  # noqa: E402
+from hiddenlens._plotting import style as P  # noqa: E402
 
 
 def test_okabe_ito_values_as_published():
