@@ -28,8 +28,8 @@ from hiddenlens.widgets import Comparison, Explorer, StaticView, compare, explor
 pytestmark = pytest.mark.usefixtures("one_blas_thread")
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
-_MODULES = {"pca": "_pca", "lyapunov": "_lyapunov", "fixed_points": "_fixed_points",
-            "memory": "_memory", "spectra": "_spectra", "gradient_flow": "_gradient_flow"}
+_MODULES = {n: f"_analyses.{n}" for n in ("pca", "lyapunov", "fixed_points", "memory",
+                                           "spectra", "gradient_flow")}
 _FUNCS = {"pca": "pca_trajectories", "lyapunov": "lyapunov_spectrum",
           "fixed_points": "find_fixed_points", "memory": "memory_curve",
           "spectra": "jacobian_spectra", "gradient_flow": "gradient_flow"}

@@ -182,6 +182,16 @@ def no_mathtext(ax_or_fig: Any):
     from matplotlib.text import Text
 
     fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    # tick labels and offsets are written by matplotlib's formatters (log axes use mathtext
+    # such as 10^{-1}): they stay as they are
+    own = set()
+    for ax in fig.axes:
+        axes = [getattr(ax, a) for a in ("xaxis", "yaxis", "zaxis") if hasattr(ax, a)]
+        for axis in axes:
+            own.add(id(axis.offsetText))
+            for tick in (*axis.get_major_ticks(), *axis.get_minor_ticks()):
+                own.update((id(tick.label1), id(tick.label2)))
     for t in fig.findobj(Text):
-        t.set_parse_math(False)
+        if id(t) not in own:
+            t.set_parse_math(False)
     return ax_or_fig

@@ -83,19 +83,22 @@ class Comparison(Board):
         shown_box = row([widgets.Label("runs:"), *self._shown.values()], space="8px")
         self._sample = widgets.Dropdown(
             options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="140px"),
+            description="sample", layout=widgets.Layout(width="90px"),
+            tooltip="one sequence, or all of them (redraws only)",
             style={"description_width": "initial"})
         self._window = widgets.IntRangeSlider(
             value=(0, T), min=0, max=T, description="steps", continuous_update=False,
+            tooltip="the steps drawn, [first, last) (redraws only)",
             style={"description_width": "initial"}, layout=widgets.Layout(width="300px"))
         common = set.intersection(*(set(r.trace.parts) for r in self._runs.values()))
         parts = [("whole state", _ALL), ("top-layer h", _OUTPUT)] + [
             (p, p) for p in first.parts if p in common and len(common) > 1]
         self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      tooltip="the part of the state analysed",
                                       style={"description_width": "initial"},
                                       layout=widgets.Layout(width="max-content"))
 
-        self._table = widgets.HTML()
+        self._table = widgets.HTML(layout=widgets.Layout(width="100%"))
         self._table_message = widgets.HTML()
         self._cka = widgets.Image(format="png", layout=widgets.Layout(max_width="100%",
                                                                       display="none"))
@@ -138,17 +141,18 @@ class Comparison(Board):
         name = analysis.name
         colors = [self._colors[r.name] for r in runs]
         if not analysis.per_run:  # one overlay of every run on shared axes
-            fig, axes = _render.new_figure(1, layout=layout)
+            fig, axes = _render.new_figure(1, layout=layout, width=self._width_in)
             plot_overlay(name, {r.name: self._results(name, r) for r in runs}, ax=axes[0],
                          colors=colors)
             return fig
         # e.g. trajectories in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
-        ncols = min(len(runs), 4)
+        # about 230 px per panel at least, so that ticks and titles do not overprint
+        ncols = max(1, min(len(runs), 4, self.figure_px // 230))
         nrows = -(-len(runs) // ncols)
         row_height = 3.4 if projection == "3d" or ncols <= 2 else 2.9
         extra = int(analysis.overlay_row)  # what is comparable across runs, below
-        fig = Figure(figsize=(_render.WIDTH_IN, row_height * nrows + 2.4 * extra),
+        fig = Figure(figsize=(self._width_in, row_height * nrows + 2.4 * extra),
                      dpi=_render.DPI, layout=layout)
         FigureCanvasAgg(fig)
         grid = fig.add_gridspec(nrows + extra, ncols,
@@ -229,9 +233,13 @@ class Comparison(Board):
             results[run.name] = res
         self.comparison = comparison_of(results, {r.name: r.system for r in runs})
         names = list(self.comparison.names)
-        self._table.value = _table_html(self.comparison, self._colors)
-        size = min(1.6 + 0.7 * len(runs), 6.0)
-        fig, axes = _render.new_figure(1, height=size - 0.4, width=size + 1.8)
+        self._table.value = ("<div class='hiddenlens-scroll'>"
+                             f"{_table_html(self.comparison, self._colors)}</div>")
+        # about 0.55 in per run, names beside; never wider than the cell
+        longest = max(len(n) for n in names)
+        size = min(1.2 + 0.55 * len(runs), 4.5)
+        fig, axes = _render.new_figure(1, height=size, width=min(
+            size + 1.0 + 0.075 * longest, self._width_in))
         plot_cka(self.comparison.cka, names, ax=axes[0])
         self._cka.value = _render.png_bytes(fig)
         self._cka.layout.display = None

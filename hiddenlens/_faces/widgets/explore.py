@@ -65,14 +65,17 @@ class Explorer(Board):
 
         self._sample = widgets.Dropdown(
             options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="140px"),
+            description="sample", layout=widgets.Layout(width="90px"),
+            tooltip="one sequence, or all of them (redraws only)",
             style={"description_width": "initial"})
         self._window = widgets.IntRangeSlider(
             value=(0, T), min=0, max=T, step=1, description="steps", continuous_update=False,
+            tooltip="the steps drawn, [first, last) (redraws only)",
             style={"description_width": "initial"}, layout=widgets.Layout(width="340px"))
         parts = [("whole state", _ALL)] + [(p, p) for p in trace.parts] if len(trace.parts) > 1 \
             else [("whole state", _ALL)]
         self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      tooltip="the part of the state analysed",
                                       style={"description_width": "initial"},
                                       layout=widgets.Layout(width="max-content"),
                                       disabled=len(parts) == 1)
@@ -110,7 +113,8 @@ class Explorer(Board):
         analysis, run = panel.analysis, self.run
         n, projection = analysis.n_axes(view)
         fig, axes = _render.new_figure(n, projection=projection, layout=layout,
-                                       height=4.6 if projection == "3d" else _render.HEIGHT_IN)
+                                       height=4.6 if projection == "3d" else _render.HEIGHT_IN,
+                                       width=self._width_in)
         deps = {d: self._results(d, run) for d in analysis.needs}
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
         return fig
