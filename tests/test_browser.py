@@ -17,9 +17,8 @@ import re
 import time
 import xml.etree.ElementTree as ET
 
-import pytest
-
 import lab
+import pytest
 
 pytestmark = [pytest.mark.browser,
               pytest.mark.skipif(lab.CHROMIUM is None,

@@ -159,8 +159,10 @@ def labelled(w: widgets.Widget) -> widgets.Widget:
     if not tip or not desc or isinstance(w, (widgets.Checkbox, widgets.Button)):
         return w
     w.description = ""
-    label = widgets.Label(desc, tooltip=tip, layout=widgets.Layout(margin="0 4px 0 0"))
-    label.add_class("hiddenlens-label")
+    # an HTML label: a Label widget's view does not carry the tooltip as a title either
+    label = widgets.HTML(f"<span class='hiddenlens-label' title='{_render.esc(tip)}' "
+                         f"style='font-size:var(--jp-widgets-font-size)'>{_render.esc(desc)}"
+                         "</span>", layout=widgets.Layout(margin="0 4px 0 0"))
     box = widgets.HBox([label, w], layout=widgets.Layout(align_items="center"))
     box.add_class("hiddenlens-control")
     return box

@@ -257,7 +257,8 @@ class Comparison(Board):
 def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
     """Runs as columns, key figures as rows, each difference beside its value."""
     names = list(comparison.names)
-    head = "".join(f"<th style='text-align:right;padding:2px 10px;color:{colors[n]}'>"
+    head = "".join(f"<th style='text-align:right;padding:2px 10px;white-space:nowrap;"
+                   f"color:{colors[n]}'>"
                    f"{_render.esc(n)}</th>" for n in names)
     rows = []
     for fr in figure_rows({n: comparison.figures[n] for n in names}):
@@ -268,8 +269,9 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
             if delta is not None and fr.numeric:
                 text += (f" <span style='color:#718096;font-size:11.5px'>(Δ "
                          f"{_render.esc(format_delta(fr.key, delta))})</span>")
-            cells.append(f"<td style='text-align:right;padding:2px 10px'>{text}</td>")
-        rows.append(f"<tr><td style='padding:2px 10px'>{_render.esc(fr.text)}</td>"
+            cells.append(f"<td style='text-align:right;padding:2px 10px;white-space:nowrap'>"
+                         f"{text}</td>")
+        rows.append(f"<tr><td style='padding:2px 10px;min-width:12em'>{_render.esc(fr.text)}</td>"
                     f"{''.join(cells)}</tr>")
     return ("<table class='hiddenlens-table' style='border-collapse:collapse;font-size:13px'>"
             f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
