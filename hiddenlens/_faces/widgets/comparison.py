@@ -21,7 +21,7 @@ from ..._analyses.figures import (
 from ..._analyses.runner import AnalysisResults, ModelLike, Sequences
 from ..._core.record import record
 from ..._core.validation import as_sequences
-from ..._plotting.style import RUN_COLORS
+from ..._plotting.style import RUN_COLORS, thin_ticks
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses, row
 from .jobs import Step
@@ -166,8 +166,13 @@ class Comparison(Board):
             if analysis.run_title is not None:
                 title += f" · {analysis.run_title(result)}"
             ax.set_title(title, color=self._colors[run.name], fontsize="medium")
-            if ax.get_legend() is not None and len(runs) > 1:
-                ax.get_legend().remove()
+            last_in_row = i % ncols == ncols - 1 or i == len(runs) - 1
+            if ax.get_legend() is not None and len(runs) > 1 and not last_in_row:
+                ax.get_legend().remove()  # one key per row, beside its last panel
+            if len(runs) > 1 and not last_in_row:
+                _drop_colour_bars(ax)  # the same key (e.g. step) is drawn once per row
+            if ncols > 1 and projection is None:
+                thin_ticks(ax, max_x=3, max_y=4)  # small multiples: no overprinted ticks
         if extra:
             plot_overlay(name, {r.name: self._results(name, r) for r in runs},
                          ax=fig.add_subplot(grid[nrows, :]), colors=colors)
@@ -252,6 +257,15 @@ class Comparison(Board):
             return []
         return [f"<h4 style='margin:10px 0 2px'>{_TABLE_TAB}</h4>",
                 _table_html(self.comparison, self._colors)]
+
+
+def _drop_colour_bars(ax: Any) -> None:
+    """Remove the colour bars of what is drawn on ``ax`` (matplotlib's ``Colorbar.remove``
+    also gives the Axes back the room the bar took)."""
+    for artist in (*ax.collections, *ax.images):
+        bar = getattr(artist, "colorbar", None)
+        if bar is not None:
+            bar.remove()
 
 
 def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
