@@ -58,12 +58,12 @@ def main() -> None:
         with lab.lab_server(tmp, root) as url, sync_playwright() as pw:
             browser = pw.chromium.launch(executable_path=lab.CHROMIUM, args=lab.CHROMIUM_ARGS)
             try:
-                page = browser.new_page(viewport={"width": widths[0], "height": 1000})
+                page = browser.new_page(viewport={"width": widths[0], "height": 2200})
                 page.set_default_timeout(240_000)
                 lab.open_and_run(page, url, "boards.ipynb")
                 page.locator(".hiddenlens-board").nth(1).wait_for()
                 for width in widths:
-                    page.set_viewport_size({"width": width, "height": 1000})
+                    page.set_viewport_size({"width": width, "height": 2200})
                     for b, what in ((0, "explore"), (1, "compare")):
                         board = lab.board(page, b)
                         tabs = board.locator(".lm-TabBar-tab")

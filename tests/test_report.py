@@ -97,7 +97,7 @@ def test_report_states_cautions_and_inputs(single):
     if "memory" in sections:
         assert "Measured in probe mode" in sections["memory"]
     if "fixed_points" in sections:
-        assert "Constant input x* = 0 on every feature; 8 starting states" in \
+        assert "Constant input held at zero on every feature; 8 starting states" in \
             sections["fixed_points"]
     if "lyapunov" in sections:
         assert "7 warm-up steps" in sections["lyapunov"]  # min(100, T // 4), T = 30
@@ -283,7 +283,7 @@ def test_every_image_has_alt_text(diagnosed, single):
         assert all(len(img.get("alt", "").strip()) > 10 for img in p.imgs)
     # per-run figures carry their key figures in words
     alts = [img["alt"] for img in parsed.imgs]
-    assert any(a.startswith("Figure: rnn") and "effective dimension" in a for a in alts)
+    assert any(a.startswith("Figure: rnn") and "participation ratio" in a for a in alts)
 
 
 def test_report_without_task_still_diagnoses_and_rejects_bad_task(results, tmp_path):

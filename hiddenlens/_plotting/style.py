@@ -16,6 +16,7 @@ __all__ = [
     "color_by_sample",
     "get_axes",
     "keep_labels_inside",
+    "name_titles",
     "no_mathtext",
     "plain_text",
     "run_style",
@@ -173,6 +174,21 @@ def _linspace(n: int):
     return np.linspace(0.0, 1.0, max(n, 1))
 
 
+def name_titles(ax_or_fig: Any, model_class: Any, name: Any):
+    """Titles that start with the model's class name (``"GRUNet: gradient flow"``) start
+    with the run's name instead, which is what a reader compares; returns the argument."""
+    fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    old = f"{model_class}: "
+    if not model_class or not name or str(model_class) == str(name):
+        return ax_or_fig
+    for ax in fig.axes:
+        for loc in ("center", "left", "right"):
+            title = ax.get_title(loc)
+            if title.startswith(old):
+                ax.set_title(f"{name}: {title[len(old):]}", loc=loc)
+    return ax_or_fig
+
+
 def no_mathtext(ax_or_fig: Any):
     """Draw every text of a figure as plain text (no mathtext), and return the argument.
 
@@ -180,15 +196,23 @@ def no_mathtext(ax_or_fig: Any):
     mathtext and fail when the figure is drawn.
     """
     from matplotlib.text import Text
+    from matplotlib.ticker import FixedFormatter, FuncFormatter
 
     fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
-    # tick labels and offsets are written by matplotlib's formatters (log axes use mathtext
-    # such as 10^{-1}): they stay as they are
+    # tick labels and offsets written by matplotlib's formatters (log axes use mathtext such
+    # as 10^{-1}) stay as they are; labels given as text (run names) are plain text
     own = set()
     for ax in fig.axes:
         axes = [getattr(ax, a) for a in ("xaxis", "yaxis", "zaxis") if hasattr(ax, a)]
         for axis in axes:
             own.add(id(axis.offsetText))
+            fmt = axis.get_major_formatter()
+            if isinstance(fmt, (FixedFormatter, FuncFormatter)) \
+                    and not getattr(fmt, "_hiddenlens_plain", False):
+                # labels given as text (run names), made again at every draw: escaped
+                plain = FuncFormatter(lambda x, pos, f=fmt: plain_text(f(x, pos)))
+                plain._hiddenlens_plain = True
+                axis.set_major_formatter(plain)
             for tick in (*axis.get_major_ticks(), *axis.get_minor_ticks()):
                 own.update((id(tick.label1), id(tick.label2)))
     for t in fig.findobj(Text):

@@ -193,9 +193,19 @@ class Board(widgets.VBox):
 
     def _build(self, analyses: Sequence[str], *, title: str, background: bool,
                executor: Executor | None, extra_tabs: Sequence[tuple[str, widgets.Widget]] = (),
-               shared: Sequence[widgets.Widget] = ()) -> None:
+               shared: Sequence[widgets.Widget] = (),
+               interactive: bool | None = None) -> None:
         for w, what in ((self._sample, "sample"), (self._window, "window"), (self._part, "part")):
             w.add_class(f"hiddenlens-{what}")  # stable hooks for styling and browser tests
+        if interactive not in (None, True, False):
+            raise TypeError(f"interactive must be True, False or None, got {interactive!r}")
+        has_ipympl = _render.interactive_available()
+        #: figures as ipympl canvases (zoom, pan, a read-out of the point under the cursor)
+        #: instead of PNG images; PNG where ipympl is not installed
+        self.interactive = bool(has_ipympl and interactive is not False)
+        self._interactive_note = "" if has_ipympl or not interactive else (
+            "Interactive figures need the optional extra ipympl (pip install "
+            "'hiddenlens[interactive]'); showing PNG figures instead.")
         self._cache = Cache()
         self._runner = Runner(self._cache, background=background, executor=executor,
                               on_progress=self._on_progress)
@@ -445,9 +455,27 @@ class Board(widgets.VBox):
             panel.png = png
             panel.image.value = png
             panel.image.layout.display = None
-            panel.message.value = ""
+            panel.message.value = _render.note_box(self._interactive_note, tone="warn") \
+                if self._interactive_note else ""
+            if self.interactive:
+                self._show_live(panel, view)
             self._set_export(panel, png, view)
             self.last_draw_seconds = time.perf_counter() - t0
+
+    def _show_live(self, panel: Panel, view: View) -> None:
+        """Put an ipympl canvas of the figure in place of the PNG (the PNG stays for export
+        and for front ends without the ipympl extension)."""
+        canvas = _render.live_canvas(self._draw_panel(panel, view, "constrained"))
+        canvas.add_class("hiddenlens-live")
+        box = list(panel.box.children)
+        old = [w for w in box if "hiddenlens-live" in getattr(w, "_dom_classes", ())]
+        if old:
+            box[box.index(old[0])] = canvas
+            old[0].close()
+        else:
+            box.insert(box.index(panel.image) + 1, canvas)
+        panel.image.layout.display = "none"
+        panel.box.children = box
 
     # ------------------------------------------------------------------ export, alt text
     def _alt(self, panel: Panel) -> str:
@@ -694,7 +722,8 @@ class Board(widgets.VBox):
             png = b"" if compute else panel.png
             if errs:
                 parts.append(_render.error_box(errs[0], what=panel.analysis.label))
-            elif compute and all(s.key in self._cache for s in steps):
+            elif (compute or not png) and all(s.key in self._cache for s in steps):
+                # computed (by 'Run all', say) but never drawn: draw it now
                 try:
                     with self._draw_lock:
                         png = _render.png_bytes(self._draw_panel(panel, self._view(panel)))
@@ -703,7 +732,8 @@ class Board(widgets.VBox):
             if png:
                 parts.append(f"<img style='max-width:100%' src='{_render.png_data_uri(png)}'>")
             elif not errs:
-                parts.append(_render.note_box("not computed yet"))
+                parts.append(_render.note_box("not computed yet: open the tab or press "
+                                              "'Run all'"))
             if panel.analysis.caution:
                 parts.append(_render.note_box(panel.analysis.caution))
         parts += self._static_extra()

@@ -48,7 +48,7 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  task: Mapping[str, Mapping[str, Any]] | None = None,
-                 **wrap_options: Any) -> None:
+                 interactive: bool | None = None, **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
         if task is not None:
@@ -110,7 +110,8 @@ class Comparison(Board):
                  f"sequence{'s' if B != 1 else ''} × {T} steps</span></div>")
         self._build(tabs, title=title, background=background, executor=executor,
                     extra_tabs=[(_TABLE_TAB, table_box)],
-                    shared=[shown_box, self._sample, self._window, self._part])
+                    shared=[shown_box, self._sample, self._window, self._part],
+                    interactive=interactive)
         for box in self._shown.values():
             box.observe(lambda _: self._guard(self._on_shared), names="value")
 
@@ -147,8 +148,8 @@ class Comparison(Board):
             return fig
         # e.g. trajectories in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
-        # about 230 px per panel at least, so that ticks and titles do not overprint
-        ncols = max(1, min(len(runs), 4, self.figure_px // 230))
+        # about 215 px per panel at least, so that ticks and titles do not overprint
+        ncols = max(1, min(len(runs), 4, self.figure_px // 215))
         nrows = -(-len(runs) // ncols)
         row_height = 3.4 if projection == "3d" or ncols <= 2 else 2.9
         extra = int(analysis.overlay_row)  # what is comparable across runs, below
@@ -190,9 +191,15 @@ class Comparison(Board):
             lines.append(f"{dot} <b>{_render.esc(run.name)}</b>: {body}")
         hint = "<div style='color:#718096'>The 'Key figures' tab computes every analysis and " \
                "lists the figures side by side.</div>"
+        # folded beyond two runs: the figures stay in view, the words one click away
+        fold = "" if len(lines) <= 2 else " open" if not any(
+            self._results(n, r) is not None for r in self._runs.values()
+            for n in self._panels) else ""
         return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
                 "#3b6ea5;padding:6px 10px;font-size:13.5px;line-height:1.5'>"
-                + "<br>".join(lines) + hint + "</div>")
+                f"<details{' open' if len(lines) <= 2 else fold}><summary style='cursor:pointer'>"
+                f"Key figures in words ({len(lines)} runs)</summary>"
+                + "<br>".join(lines) + hint + "</details></div>")
 
     # ------------------------------------------------------------------ key-figures tab
     def _table_steps(self) -> list[Step]:
@@ -295,7 +302,7 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
             task: Mapping[str, Mapping[str, Any]] | None = None,
-            **wrap_options: Any) -> Comparison:
+            interactive: bool | None = None, **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
     Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
@@ -311,7 +318,7 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         state sizes may differ, the input size must be the same.
     inputs : Tensor or ndarray of shape (B, T, I)
         The same sequences for every run.
-    h0, analyses, background, executor, seed, **wrap_options
+    h0, analyses, background, executor, seed, interactive, **wrap_options
         As in :func:`hiddenlens.explore`.
     task : Mapping[str, Mapping], optional
         Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
@@ -324,4 +331,5 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         ``.comparison`` holds the :class:`~hiddenlens.RunComparison` once the table is shown.
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
-                      executor=executor, seed=seed, task=task, **wrap_options)
+                      executor=executor, seed=seed, task=task, interactive=interactive,
+                      **wrap_options)

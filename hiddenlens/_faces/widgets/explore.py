@@ -12,6 +12,7 @@ import numpy as np
 from ..._analyses.runner import ModelLike, Sequences
 from ..._core.record import as_system, record
 from ..._core.validation import as_sequences
+from ..._plotting.style import name_titles
 from ..summary import key_figures, summary_sentence
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses
@@ -46,7 +47,8 @@ class Explorer(Board):
     def __init__(self, model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
-                 task: Mapping[str, Any] | None = None, **wrap_options: Any) -> None:
+                 task: Mapping[str, Any] | None = None, interactive: bool | None = None,
+                 **wrap_options: Any) -> None:
         names = check_analyses(analyses)
         if task is not None and not isinstance(task, Mapping):
             raise TypeError("task must be a mapping of the model's task metrics (e.g. "
@@ -86,7 +88,7 @@ class Explorer(Board):
                  f"<span style='color:#4a5568'>· {system.kind} · {size} · {B} sequence"
                  f"{'s' if B != 1 else ''} × {T} steps</span></div>")
         self._build(names, title=title, background=background, executor=executor,
-                    shared=[self._sample, self._window, self._part])
+                    shared=[self._sample, self._window, self._part], interactive=interactive)
 
     # ------------------------------------------------------------------ hooks
     @property
@@ -117,7 +119,7 @@ class Explorer(Board):
                                        width=self._width_in)
         deps = {d: self._results(d, run) for d in analysis.needs}
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
-        return fig
+        return name_titles(fig, run.trace.metadata.get("model_class"), run.name)
 
     def _summary_html(self) -> str:
         results = {n: self._results(n, self.run) for n in self._panels}
@@ -129,7 +131,7 @@ class Explorer(Board):
         rest = ""
         if missing:
             names = _render.esc(", ".join(missing))
-            rest = (f"<span style='color:#718096'> Not computed yet: {names} (open their tabs "
+            rest = (f"<span style='color:#718096'> Tabs not opened yet: {names} (open them "
                     "or press 'Run all').</span>")
         return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
                 f"#3b6ea5;padding:6px 10px;font-size:13.5px'>{body}{rest}</div>")
@@ -138,7 +140,8 @@ class Explorer(Board):
 def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
-            task: Mapping[str, Any] | None = None, **wrap_options: Any) -> Explorer:
+            task: Mapping[str, Any] | None = None, interactive: bool | None = None,
+            **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
     The model is recorded once on ``inputs``; each tab shows one analysis and is computed only
@@ -172,6 +175,11 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
         ``n_eval``, ``horizon``; see :func:`hiddenlens.diagnose`): a diagnosis line
         at the top reads the key figures against them.
+    interactive : bool, optional
+        Show figures as ipympl canvases (zoom, pan, a read-out of the coordinates under the
+        cursor). Default None: where the optional extra is installed (``pip install
+        'hiddenlens[interactive]'``); True without it shows PNG figures with a note; False:
+        PNG figures always (fastest redraws).
 
     Returns
     -------
@@ -187,4 +195,4 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    task=task, **wrap_options)
+                    task=task, interactive=interactive, **wrap_options)
