@@ -95,9 +95,9 @@ def interactive_available() -> bool:
 def live_canvas(fig: Figure):
     """An ipympl canvas widget showing ``fig``: zoom, pan, and the coordinates under the
     cursor in its footer (the hover read-out). Needs ipympl (``interactive_available()``)."""
-    from ipympl.backend_nbagg import Canvas, FigureManager
-
     import warnings
+
+    from ipympl.backend_nbagg import Canvas, FigureManager
 
     canvas = Canvas(fig)
     with warnings.catch_warnings():
