@@ -64,6 +64,7 @@ def main() -> None:
                 page.locator(".hiddenlens-board").nth(1).wait_for()
                 for width in widths:
                     page.set_viewport_size({"width": width, "height": 2200})
+                    page.wait_for_timeout(2000)  # the boards measure the new width, redraw
                     for b, what in ((0, "explore"), (1, "compare")):
                         board = lab.board(page, b)
                         tabs = board.locator(".lm-TabBar-tab")

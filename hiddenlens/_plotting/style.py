@@ -16,6 +16,7 @@ __all__ = [
     "color_by_sample",
     "get_axes",
     "keep_labels_inside",
+    "legend_outside",
     "name_titles",
     "no_mathtext",
     "plain_text",
@@ -23,6 +24,7 @@ __all__ = [
     "style_axes",
     "thin_ticks",
     "time_colors",
+    "wrap_titles",
 ]
 
 #: The Okabe-Ito palette, distinguishable under the common colour-vision deficiencies
@@ -172,6 +174,41 @@ def _linspace(n: int):
     import numpy as np
 
     return np.linspace(0.0, 1.0, max(n, 1))
+
+
+def legend_outside(ax: Any) -> Any:
+    """Move ``ax``'s legend (if any) outside the data, to the right of the Axes; returns it.
+
+    Only for Axes with nothing drawn beside them (no colour bar), where the room is free."""
+    leg = ax.get_legend()
+    if leg is None:
+        return None
+    handles = list(getattr(leg, "legend_handles", None) or leg.legendHandles)
+    labels = [t.get_text() for t in leg.get_texts()]
+    title = leg.get_title().get_text() or None
+    return ax.legend(handles=handles, labels=labels, title=title, fontsize="small",
+                     loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+
+
+def wrap_titles(fig: Any, width_px: float) -> Any:
+    """Break Axes titles longer than their share of ``width_px`` onto two lines (a narrow
+    figure would otherwise clip them); returns ``fig``."""
+    import textwrap
+
+    cols = {}
+    for ax in fig.axes:
+        spec = ax.get_subplotspec() if hasattr(ax, "get_subplotspec") else None
+        if spec is None:
+            continue
+        grid = spec.get_gridspec()
+        cols[ax] = max(1, grid.ncols // max(1, spec.colspan.stop - spec.colspan.start))
+    for ax, n in cols.items():
+        title = ax.get_title()
+        size = ax.title.get_fontsize()  # points; at 100 dpi about 0.55 em per character
+        room = int(0.75 * width_px / n / (size * 100 / 72 * 0.55))
+        if title and "\n" not in title and len(title) > room > 10:
+            ax.set_title("\n".join(textwrap.wrap(title, room)[:2]))
+    return fig
 
 
 def name_titles(ax_or_fig: Any, model_class: Any, name: Any):

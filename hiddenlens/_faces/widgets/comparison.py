@@ -21,7 +21,7 @@ from ..._analyses.figures import (
 from ..._analyses.runner import AnalysisResults, ModelLike, Sequences
 from ..._core.record import record
 from ..._core.validation import as_sequences
-from ..._plotting.style import RUN_COLORS, thin_ticks
+from ..._plotting.style import RUN_COLORS, legend_outside, thin_ticks, wrap_titles
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses, row
 from .jobs import Step
@@ -145,7 +145,8 @@ class Comparison(Board):
             fig, axes = _render.new_figure(1, layout=layout, width=self._width_in)
             plot_overlay(name, {r.name: self._results(name, r) for r in runs}, ax=axes[0],
                          colors=colors)
-            return fig
+            legend_outside(axes[0])  # the runs' key beside the data, not over it
+            return wrap_titles(fig, self.figure_px)
         # e.g. trajectories in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
         # about 215 px per panel at least, so that ticks and titles do not overprint
@@ -177,7 +178,7 @@ class Comparison(Board):
         if extra:
             plot_overlay(name, {r.name: self._results(name, r) for r in runs},
                          ax=fig.add_subplot(grid[nrows, :]), colors=colors)
-        return fig
+        return wrap_titles(fig, self.figure_px)
 
     def _summary_html(self) -> str:
         lines = []

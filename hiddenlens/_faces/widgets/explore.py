@@ -12,7 +12,7 @@ import numpy as np
 from ..._analyses.runner import ModelLike, Sequences
 from ..._core.record import as_system, record
 from ..._core.validation import as_sequences
-from ..._plotting.style import name_titles
+from ..._plotting.style import legend_outside, name_titles, wrap_titles
 from ..summary import key_figures, summary_sentence
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses
@@ -119,7 +119,11 @@ class Explorer(Board):
                                        width=self._width_in)
         deps = {d: self._results(d, run) for d in analysis.needs}
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
-        return name_titles(fig, run.trace.metadata.get("model_class"), run.name)
+        if len(fig.axes) == len(axes) and projection is None:  # no colour bar beside them
+            for ax in axes:
+                legend_outside(ax)  # legends never over the data
+        name_titles(fig, run.trace.metadata.get("model_class"), run.name)
+        return wrap_titles(fig, self.figure_px)
 
     def _summary_html(self) -> str:
         results = {n: self._results(n, self.run) for n in self._panels}
