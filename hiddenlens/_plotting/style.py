@@ -250,8 +250,11 @@ def no_mathtext(ax_or_fig: Any):
                 plain = FuncFormatter(lambda x, pos, f=fmt: plain_text(f(x, pos)))
                 plain._hiddenlens_plain = True
                 axis.set_major_formatter(plain)
-            for tick in (*axis.get_major_ticks(), *axis.get_minor_ticks()):
-                own.update((id(tick.label1), id(tick.label2)))
+    # the ticks made so far (asking an axis for its ticks would make one per location)
+    from matplotlib.axis import Tick
+
+    for tick in fig.findobj(Tick):
+        own.update((id(tick.label1), id(tick.label2)))
     for t in fig.findobj(Text):
         if id(t) not in own:
             t.set_parse_math(False)
