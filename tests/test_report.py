@@ -298,3 +298,21 @@ def test_report_without_task_still_diagnoses_and_rejects_bad_task(results, tmp_p
         write_report(results, tmp_path / "x.html", task={"other": {"accuracy": 0.5}})
     with pytest.raises(TypeError, match="task must be a mapping"):
         write_report(results, tmp_path / "x.html", task=[0.5])
+
+
+def test_runs_compared_in_one_row_share_their_y_range():
+    from matplotlib.figure import Figure
+
+    from hiddenlens._faces.report import _share_y
+
+    figs = []
+    for top in (1.0, 5.0):
+        fig = Figure()
+        ax = fig.add_subplot()
+        ax.plot([0, 1], [0.0, top])
+        ax.set_ylabel("same quantity")
+        figs.append([("", fig)])
+    _share_y(figs)
+    # matplotlib's own limits (autoscaled with its margins) give the union of both rows
+    (a,), (b,) = ([f.axes[0] for _, f in row] for row in figs)
+    assert a.get_ylim() == b.get_ylim() and a.get_ylim()[1] >= 5.0
