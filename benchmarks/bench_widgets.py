@@ -10,7 +10,8 @@ Prints, for torch's default thread count and for one thread:
 
 The CPU time is printed beside the wall time because on a shared machine the wall time of a
 single-threaded redraw mostly measures the other processes. Run: ``python
-benchmarks/bench_widgets.py`` (add ``--quick`` for fewer repetitions).
+benchmarks/bench_widgets.py`` (add ``--quick`` for fewer repetitions, ``--boards`` for the two
+headline redraw medians only: explore, and compare with 4 runs, targets 150 and 300 ms).
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ from hiddenlens.examples.sorting_line import SortingLineNet, make_inputs  # noqa
 
 H, T, B = 128, 500, 8
 TARGET_REDRAW_MS = 150.0
+TARGET_COMPARE_MS = 300.0  # compare with 4 runs, trajectories tab
 TARGET_FIRST_S = 2.0
 
 
@@ -130,6 +132,39 @@ def run(threads: int | None, repeats: int) -> None:
             limits.unregister()
 
 
+def _load() -> str:
+    return ", ".join(f"{v:.1f}" for v in os.getloadavg())
+
+
+def boards(repeats: int) -> None:
+    """The two headline figures: median view-only redraw of explore (GRU H=128) and of
+    compare with the 4 shipped sorting-line runs, trajectories tab, load printed beside."""
+    from hiddenlens.examples import load_run, sorting_line
+    from hiddenlens.widgets import compare, explore
+
+    x = make_inputs(B, T, seed=0)
+    ex = explore(SortingLineNet("gru", hidden_size=H, seed=0).eval(), x, analyses=["pca"],
+                 background=False)
+    names = ["gru", "rnn-gain0.5", "rnn-gain1.0", "rnn-gain2.0"]
+    cmp = compare({n: load_run(n) for n in names}, sorting_line.make_inputs(B, T, seed=0),
+                  analyses=["pca"], background=False)
+    for label, view, target in (("explore", ex, TARGET_REDRAW_MS),
+                                ("compare, 4 runs", cmp, TARGET_COMPARE_MS)):
+        load_before = _load()
+        walls, cpus = [], []
+        for control, values in ((view._sample, [1, 2, 3, "all"]),
+                                (view._window, [(0, 250), (100, 400), (250, 500), (0, 500)])):
+            w, c = redraws(view, control, values, repeats)
+            walls.append(w)
+            cpus.append(c)
+        wall, cpu = statistics.median(walls), statistics.median(cpus)
+        verdict = "ok" if wall * 1e3 <= target else "SLOWER than target (wall)"
+        print(f"{label:16s} trajectories tab, view-only redraw: median {wall * 1e3:6.0f} ms "
+              f"wall, {cpu * 1e3:6.0f} ms CPU; target {target:.0f} ms, ratio "
+              f"{wall * 1e3 / target:.2f} ({verdict}); load {load_before} -> {_load()}")
+        view.close()
+
+
 def main() -> None:
     repeats = 6 if "--quick" in sys.argv else 16
     t0 = time.perf_counter()
@@ -139,6 +174,9 @@ def main() -> None:
     print(f"GRU H={H}, T={T}, B={B}; CPU cores: {os.cpu_count()}; "
           f"load average: {', '.join(f'{v:.1f}' for v in os.getloadavg())}")
     print(f"torch.get_num_threads() = {torch.get_num_threads()}")
+    boards(repeats)
+    if "--boards" in sys.argv:
+        return
     # the very first widget of a process also pays for importing what the analyses use
     model = SortingLineNet("gru", hidden_size=H, seed=1).eval()
     built, shown, view = first_panel(model, make_inputs(B, T, seed=1))

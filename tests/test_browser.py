@@ -1,160 +1,165 @@
-"""The explore widget in a real browser: JupyterLab on 127.0.0.1 and headless Chromium.
+"""The explore and compare widgets in a real browser: JupyterLab on 127.0.0.1 and headless
+Chromium, one server and one page for every check of this file.
 
 Proves what the kernel-only tests cannot: the widget JavaScript loads, front end and kernel stay
-in sync, the figure drawn in the kernel's worker thread reaches the page, and moving a control
-redraws it. Nothing is installed or downloaded at run time; the test skips (with the reason)
-only where Chromium, Playwright or JupyterLab is missing.
+in sync, the figures drawn in the kernel reach the page, moving a control redraws, downloads
+hold the right bytes, tooltips reach the page, and a 900 px window keeps tab titles whole,
+figures drawn at the cell's width and the key-figure table scrolling. Nothing is installed or
+downloaded at run time; the tests skip (with the reason) only where Chromium, Playwright or
+JupyterLab is missing.
 """
 
 from __future__ import annotations
 
-import json
-import os
-import shutil
-import signal
-import socket
-import subprocess
-import sys
+import csv
+import io
+import re
 import time
-import urllib.request
-from pathlib import Path
+import xml.etree.ElementTree as ET
 
+import lab
 import pytest
 
-ROOT = Path(__file__).resolve().parents[1]
-NOTEBOOK = ROOT / "docs" / "notebooks" / "tour.ipynb"
-CHROMIUM = os.environ.get("CHROMIUM") or shutil.which("chromium") or shutil.which(
-    "chromium-browser")
-# Without these flags Chromium tries to reach the network, which a closed machine refuses.
-CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update",
-                 "--disable-sync"]
-PANEL = ".hiddenlens-panel-pca"  # every check is scoped to the widget's own elements
+pytestmark = [pytest.mark.browser,
+              pytest.mark.skipif(lab.CHROMIUM is None,
+                                 reason="no chromium binary (apt-get install chromium)")]
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
+EXPLORE, COMPARE = 0, 1  # the boards' order on the page
 
 
-def _child_pids(pid: int) -> list[int]:
-    kids = []
-    for stat in Path("/proc").glob("[0-9]*/stat"):
-        try:
-            if int(stat.read_text().rsplit(")", 1)[1].split()[1]) == pid:
-                kids.append(int(stat.parent.name))
-        except (OSError, IndexError, ValueError):
-            pass
-    return kids
-
-
-@pytest.fixture
-def lab_url(tmp_path):
-    """JupyterLab on 127.0.0.1:<free port> without a token, isolated settings; stopped by pid."""
+@pytest.fixture(scope="module")
+def page(tmp_path_factory):
+    """The notebook of tests/lab.py run in JupyterLab, both boards showing their first tab."""
     pytest.importorskip("jupyterlab", reason="jupyterlab is not installed (pip install "
                                              "jupyterlab)")
-    root = tmp_path / "root"
+    sync_api = pytest.importorskip("playwright.sync_api", reason="playwright is not "
+                                   "installed (pip install playwright)")
+    tmp = tmp_path_factory.mktemp("lab")
+    root = tmp / "root"
     root.mkdir()
-    shutil.copy(NOTEBOOK, root / NOTEBOOK.name)
-    # isolated user settings; also silences the "news" toast that would cover the page
-    cfg = tmp_path / ".lab/settings/@jupyterlab/apputils-extension"
-    cfg.mkdir(parents=True)
-    (cfg / "notification.jupyterlab-settings").write_text(
-        json.dumps({"fetchNews": "false", "checkForUpdates": False}))
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    path = os.environ.get("PYTHONPATH", "")
-    env = dict(os.environ, JUPYTER_CONFIG_DIR=str(tmp_path / ".cfg"),
-               JUPYTER_RUNTIME_DIR=str(tmp_path / ".rt"),
-               PYTHONPATH=str(ROOT) + (os.pathsep + path if path else ""))
-    log = open(tmp_path / "server.log", "wb")  # noqa: SIM115 - closed in the finally below
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "jupyterlab", "--no-browser", "--ServerApp.ip=127.0.0.1",
-         f"--ServerApp.port={port}", "--ServerApp.port_retries=0",
-         "--IdentityProvider.token=", "--ServerApp.password=", "--ServerApp.allow_root=True",
-         f"--ServerApp.root_dir={root}", f"--LabApp.user_settings_dir={tmp_path}/.lab/settings",
-         f"--LabApp.workspaces_dir={tmp_path}/.lab/ws", "--LabApp.news_url=None",
-         "--LabApp.extension_manager=readonly",
-         "--LabApp.check_for_updates_class=jupyterlab.NeverCheckForUpdate"],
-        cwd=root, env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
-    url = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + 60
-        while True:
-            if proc.poll() is not None:
-                pytest.fail("jupyter lab exited:\n" + (tmp_path / "server.log").read_text())
-            try:
-                urllib.request.urlopen(url + "/api/status", timeout=2).close()
-                break
-            except OSError:
-                if time.monotonic() > deadline:
-                    pytest.fail("jupyter lab did not answer within 60 s")
-                time.sleep(0.2)
-        yield url
-    finally:
-        kernels = _child_pids(proc.pid)
-        proc.send_signal(signal.SIGTERM)  # the server shuts its kernels down on SIGTERM
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=5)
-        for pid in kernels:  # safety net: only processes that were children of our server
-            try:
-                os.kill(pid, signal.SIGKILL)
-            except ProcessLookupError:
-                pass
-        log.close()
-
-
-@pytest.mark.browser
-@pytest.mark.timeout(300)
-@pytest.mark.skipif(CHROMIUM is None, reason="no chromium binary (apt-get install chromium)")
-def test_explore_widget_renders_and_redraws_in_chromium(lab_url, tmp_path):
-    sync_api = pytest.importorskip("playwright.sync_api",
-                                   reason="playwright is not installed (pip install playwright)")
-    expect = sync_api.expect
+    lab.board_notebook(root / "boards.ipynb", steps=60, explore=["pca", "lyapunov"],
+                       compare=["pca", "lyapunov"])
     t0 = time.monotonic()
-    with sync_api.sync_playwright() as pw:
+    with lab.lab_server(tmp, root) as url, sync_api.sync_playwright() as pw:
         # launch() adds --headless and a fresh temporary --user-data-dir itself
-        browser = pw.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS,
+        browser = pw.chromium.launch(executable_path=lab.CHROMIUM, args=lab.CHROMIUM_ARGS,
                                      timeout=60_000)
         try:
-            page = browser.new_page(viewport={"width": 1280, "height": 1000})
-            page.set_default_timeout(60_000)
-            page.goto(f"{lab_url}/lab/tree/{NOTEBOOK.name}")
-            page.get_by_text("Python 3 (ipykernel) | Idle").wait_for()
-            page.get_by_role("menuitem", name="Run", exact=True).click()
-            page.get_by_role("menuitem", name="Run All Cells", exact=True).click()
-
-            # the figure inside the widget's own Image (a broken widget manager would show
-            # the static HTML copy instead, which has no .widget-image)
-            img = page.locator(f"{PANEL} img.widget-image")
-            expect(img).to_have_count(1, timeout=180_000)
-            page.wait_for_function(
-                "sel => { const i = document.querySelector(sel);"
-                " return i && i.complete && i.naturalWidth > 0; }",
-                arg=f"{PANEL} img.widget-image", timeout=180_000)
-            page.get_by_text("Python 3 (ipykernel) | Idle").wait_for(timeout=180_000)
-            img.scroll_into_view_if_needed()
-            before_src = img.get_attribute("src")
-            before_pixels = img.screenshot()
-
-            # a view-only control: pick one sample in the shared "sample" drop-down
-            page.locator(".hiddenlens-sample select").select_option(label="3")
-            page.wait_for_function(
-                "([sel, old]) => { const i = document.querySelector(sel);"
-                " return i && i.src !== old && i.complete && i.naturalWidth > 0; }",
-                arg=[f"{PANEL} img.widget-image", before_src], timeout=60_000)
-            page.wait_for_timeout(300)  # let the new image paint before comparing pixels
-            assert img.screenshot() != before_pixels, "the figure did not change on screen"
-
-            expect(page.get_by_text("Error displaying widget")).to_have_count(0)
-            expect(page.get_by_text("Loading widget")).to_have_count(0)
-            expect(page.locator(".hiddenlens-board .hiddenlens-error")).to_have_count(0)
-            expect(page.locator(".hiddenlens-board .hiddenlens-summary")).to_have_count(1)
-            board = page.locator(".hiddenlens-board")
-            board.scroll_into_view_if_needed()
-            shot = tmp_path / "explore.png"
-            page.screenshot(path=shot, full_page=False)
-            board.screenshot(path=tmp_path / "explore-widget.png")
-            assert shot.stat().st_size > 10_000
+            p = browser.new_page(viewport={"width": 1400, "height": 1400},
+                                 accept_downloads=True)
+            p.set_default_timeout(60_000)
+            lab.open_and_run(p, url, "boards.ipynb")
+            for b in (EXPLORE, COMPARE):
+                lab.wait_image(p, b, "pca", timeout=120_000)
+            p.get_by_text("Python 3 (ipykernel) | Idle").wait_for(timeout=120_000)
+            yield p
+            sync_api.expect(p.get_by_text("Error displaying widget")).to_have_count(0)
+            sync_api.expect(p.locator(".hiddenlens-board .hiddenlens-error")).to_have_count(0)
+            p.screenshot(path=tmp / "page.png")
         finally:
             browser.close()
-    print(f"browser test: {time.monotonic() - t0:.1f} s after the server answered")
+    print(f"\nbrowser checks: {time.monotonic() - t0:.1f} s with the server")
+
+
+def _img(page, b: int, panel: str):
+    return lab.board(page, b).locator(f".hiddenlens-panel-{panel} img.widget-image")
+
+
+def test_diagnosis_line_is_on_the_page(page):
+    for b, runs in ((EXPLORE, ["gru"]), (COMPARE, ["gru", "rnn-gain0.5", "rnn-gain2.0"])):
+        line = lab.board(page, b).locator(".hiddenlens-diagnosis")
+        assert line.is_visible()
+        text = line.inner_text()
+        assert "Diagnosis" in text and "accuracy" in text
+        for n in runs:
+            assert f"{n}:" in text
+    # the trained GRU solves the task: its line must not call it failing
+    gru = lab.board(page, EXPLORE).locator(".hiddenlens-diagnosis").inner_text()
+    assert "failing" not in gru
+
+
+def test_a_view_control_changes_the_figure_on_screen(page):
+    img = _img(page, EXPLORE, "pca")
+    img.scroll_into_view_if_needed()
+    before_src, before_pixels = img.get_attribute("src"), img.screenshot()
+    lab.board(page, EXPLORE).locator(".hiddenlens-sample select").select_option(label="3")
+    lab.wait_image(page, EXPLORE, "pca", old=before_src)
+    page.wait_for_timeout(300)  # let the new image paint before comparing pixels
+    assert img.screenshot() != before_pixels, "the figure did not change on screen"
+    lab.board(page, EXPLORE).locator(".hiddenlens-sample select").select_option(label="all")
+
+
+def test_dropdown_and_box_tooltips_reach_the_page(page):
+    board = lab.board(page, EXPLORE)
+    sample = board.locator(".hiddenlens-sample select")
+    assert "redraws only" in (sample.get_attribute("title") or "")
+    labels = board.locator(".hiddenlens-label[title]")
+    assert labels.count() >= 3  # sample, steps, part at least
+    assert any("redraws only" in labels.nth(i).get_attribute("title")
+               for i in range(labels.count()))
+
+
+def _download(page, locator) -> tuple[str, bytes]:
+    with page.expect_download() as info:
+        locator.click()
+    d = info.value
+    with open(d.path(), "rb") as fh:
+        return d.suggested_filename, fh.read()
+
+
+def test_figure_and_table_downloads_hold_the_right_content(page):
+    board = lab.board(page, EXPLORE)
+    export = board.locator(".hiddenlens-panel-pca .hiddenlens-export")
+    name, data = _download(page, export.locator("a[download$='.png']"))
+    assert name.endswith(".png") and data.startswith(PNG_MAGIC)
+    # decoded by matplotlib's PNG reader (reference library): the figure shown on the page
+    import matplotlib.image
+
+    h, w = matplotlib.image.imread(io.BytesIO(data), format="png").shape[:2]
+    natural = _img(page, EXPLORE, "pca").evaluate("i => [i.naturalHeight, i.naturalWidth]")
+    assert [h, w] == natural
+
+    export.locator("button.hiddenlens-svg").click()  # the SVG is drawn on demand
+    name, data = _download(page, export.locator("a[download$='.svg']"))
+    # an SVG document: root <svg> in the SVG namespace (W3C SVG 1.1, section 5.1), parsed
+    # with the standard library's XML parser
+    assert name.endswith(".svg")
+    assert ET.fromstring(data).tag == "{http://www.w3.org/2000/svg}svg"
+
+    name, data = _download(page, board.locator(".hiddenlens-table-export a"))
+    rows = list(csv.DictReader(io.StringIO(data.decode("utf-8"))))  # stdlib CSV reader
+    assert name.endswith(".csv") and rows
+    pr = float(next(r["value"] for r in rows if r["figure"] == "participation_ratio"))
+    # the number in the file is the one the summary strip states (to its 3 digits)
+    strip = board.locator(".hiddenlens-summary").inner_text()
+    assert f"{pr:.3g}" in strip and 1.0 <= pr <= 32.0
+
+
+def test_a_900_px_window_keeps_titles_text_and_table_readable(page):
+    page.set_viewport_size({"width": 900, "height": 1400})
+    for b in (EXPLORE, COMPARE):
+        img = _img(page, b, "pca")
+        # drawn again at the cell's width: shown at its own size, not shrunk
+        page.wait_for_function(
+            "i => i.complete && i.naturalWidth > 0"
+            " && Math.abs(i.naturalWidth - i.clientWidth) <= 0.06 * i.naturalWidth"
+            " && i.naturalWidth < 800", arg=img.element_handle(), timeout=30_000)
+        labels = lab.board(page, b).locator(".lm-TabBar-tabLabel")
+        clipped = labels.evaluate_all(
+            "els => els.filter(e => e.scrollWidth > e.clientWidth + 1"
+            " || e.getBoundingClientRect().width < 10).map(e => e.textContent)")
+        assert clipped == [], f"tab titles truncated: {clipped}"
+    board = lab.board(page, COMPARE)
+    board.locator(".lm-TabBar-tab", has_text="Key figures").click()
+    scroller = board.locator(".hiddenlens-scroll")
+    scroller.wait_for(timeout=60_000)
+    box, edge = scroller.evaluate(
+        "e => [[e.scrollWidth, e.clientWidth, getComputedStyle(e).overflowX],"
+        " e.closest('.hiddenlens-board').getBoundingClientRect().right"
+        " - e.getBoundingClientRect().right]")
+    scroll_width, client_width, overflow = box
+    assert overflow == "auto" and edge >= 0  # inside the board
+    assert scroll_width > client_width, "the table fits: the check would prove nothing"
+    assert re.search(r"rnn-gain2\.0", scroller.inner_text())
+    page.set_viewport_size({"width": 1400, "height": 1400})

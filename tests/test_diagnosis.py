@@ -75,7 +75,7 @@ def test_degenerate_settings_are_flagged():
     text = " | ".join(d.warnings)
     assert "1 of 200 steps" in text and "warm-up of 199" in text
     assert "only up to 10 steps" in text
-    assert "effective dimension (participation ratio) could not be measured" in text
+    assert "participation ratio could not be measured" in text
     assert "2 starts" in text
 
 
@@ -94,7 +94,7 @@ def test_unknown_without_anything_and_nan_rate():
     ("fixed_point_norm", 0.0, "at the origin"),
     ("fixed_points_stable", 0, "none found"),
     ("memory_span", -1, "nothing decodable"),
-    ("participation_ratio", 2.23, "effective dimension (participation ratio): 2.23"),
+    ("participation_ratio", 2.23, "participation ratio: 2.23"),
     ("lyapunov_max", 0.065, "chaotic on these inputs"),
     ("accuracy", 0.999, "99.9%"),
 ])

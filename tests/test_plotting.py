@@ -122,3 +122,25 @@ def test_color_by_sample_legend_or_colour_bar():
     assert len(many) == 20 and len(fig2.axes) == 2  # the colour bar's axes
     with pytest.raises(ValueError, match="labels has 2 entries"):
         P.color_by_sample(ax, 3, labels=["a", "b"])
+
+
+def test_no_mathtext_keeps_the_log_tick_labels_and_names_plain():
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    from hiddenlens._plotting.style import no_mathtext
+
+    fig = Figure()
+    FigureCanvasAgg(fig)
+    ax, names = fig.add_subplot(1, 2, 1), fig.add_subplot(1, 2, 2)
+    ax.semilogy([1, 2, 3], [1.0, 0.1, 0.01], label="$x")
+    ax.set_title("run $a$")
+    names.set_xticks([0, 1], ["$\\foo$", "b_$x"])
+    no_mathtext(fig)
+    fig.canvas.draw()  # a user's "$\foo$" parsed as mathtext would raise here
+    # matplotlib's log formatter writes 10^k as mathtext (matplotlib.ticker docs): kept,
+    # so the ticks render as powers of ten, not as "$\mathdefault{...}$" source text
+    assert all(t.get_parse_math() for t in ax.get_yticklabels())
+    assert not ax.title.get_parse_math()
+    # drawn as the user wrote them: escaped dollars (matplotlib's mathtext docs: "\\$")
+    assert [t.get_text() for t in names.get_xticklabels()] == ["\\$\\foo\\$", "b_\\$x"]

@@ -97,7 +97,7 @@ def test_report_states_cautions_and_inputs(single):
     if "memory" in sections:
         assert "Measured in probe mode" in sections["memory"]
     if "fixed_points" in sections:
-        assert "Constant input x* = 0 on every feature; 8 starting states" in \
+        assert "Constant input held at zero on every feature; 8 starting states" in \
             sections["fixed_points"]
     if "lyapunov" in sections:
         assert "7 warm-up steps" in sections["lyapunov"]  # min(100, T // 4), T = 30
@@ -279,7 +279,7 @@ def test_every_image_has_alt_text(diagnosed, single):
         assert all(len(img.get("alt", "").strip()) > 10 for img in p.imgs)
     # per-run figures carry their key figures in words
     alts = [img["alt"] for img in parsed.imgs]
-    assert any(a.startswith("Figure: rnn") and "effective dimension" in a for a in alts)
+    assert any(a.startswith("Figure: rnn") and "participation ratio" in a for a in alts)
 
 
 def test_report_without_task_still_diagnoses_and_rejects_bad_task(results, tmp_path):
@@ -342,3 +342,21 @@ def test_over_training_section_from_a_monitor(results, inputs, tmp_path):
         [0.0, -5.0, -10.0]
     with pytest.raises(ValueError, match="not in the report"):
         write_report(results, tmp_path / "r2.html", timeline={"other": mon})
+
+
+def test_runs_compared_in_one_row_share_their_y_range():
+    from matplotlib.figure import Figure
+
+    from hiddenlens._faces.report import _share_y
+
+    figs = []
+    for top in (1.0, 5.0):
+        fig = Figure()
+        ax = fig.add_subplot()
+        ax.plot([0, 1], [0.0, top])
+        ax.set_ylabel("same quantity")
+        figs.append([("", fig)])
+    _share_y(figs)
+    # matplotlib's own limits (autoscaled with its margins) give the union of both rows
+    (a,), (b,) = ([f.axes[0] for _, f in row] for row in figs)
+    assert a.get_ylim() == b.get_ylim() and a.get_ylim()[1] >= 5.0

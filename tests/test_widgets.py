@@ -176,7 +176,7 @@ def test_summary_strip_uses_the_shared_key_figures(model, inputs):
     sentence = summary_sentence(key_figures(results))
     assert "Lyapunov" in sentence
     text = view._summary.value
-    assert sentence[1:] in text and "Not computed yet" not in text
+    assert sentence[1:] in text and "not opened yet" not in text
 
 
 def test_errors_are_shown_in_the_widget(model, inputs, monkeypatch):
@@ -481,3 +481,35 @@ def test_spectra_first_pass_on_fewer_sequences_then_all(model, inputs, calls, mo
     small = panels.fewer_sequences(view.run, work=1.0)
     np.testing.assert_array_equal(small.trace.states, view.trace.states[:1])
     assert panels.fewer_sequences(view.run, work=1.2e9) is None  # small run: no first pass
+
+
+# ---------------------------------------------------------------------- interactive figures
+def test_interactive_falls_back_to_png_without_ipympl(model, inputs, monkeypatch):
+    from hiddenlens._faces.widgets import render
+
+    monkeypatch.setattr(render, "interactive_available", lambda: False)
+    view = explore(model, inputs, analyses=["pca"], background=False, interactive=True)
+    panel = view._panels["pca"]
+    assert not view.interactive
+    assert "hiddenlens[interactive]" in panel.message.value  # says why, not silently
+    assert view.images["pca"].startswith(PNG_MAGIC) and panel.image.layout.display is None
+    assert not any("hiddenlens-live" in w._dom_classes for w in panel.box.children)
+    quiet = explore(model, inputs, analyses=["pca"], background=False)  # default: no note
+    assert not quiet.interactive and quiet._panels["pca"].message.value == ""
+    with pytest.raises(TypeError, match="interactive must be"):
+        explore(model, inputs, analyses=["pca"], background=False, interactive="yes")
+
+
+def test_interactive_canvas_where_ipympl_is_installed(model, inputs):
+    pytest.importorskip("ipympl", reason="ipympl (the 'interactive' extra) is not installed")
+    view = explore(model, inputs, analyses=["pca"], background=False)
+    panel = view._panels["pca"]
+    live = [w for w in panel.box.children if "hiddenlens-live" in w._dom_classes]
+    assert view.interactive and len(live) == 1
+    assert panel.image.layout.display == "none"
+    assert view.images["pca"].startswith(PNG_MAGIC)  # the PNG stays for export
+    view._sample.value = 1  # a redraw replaces the canvas, never adds one
+    live2 = [w for w in panel.box.children if "hiddenlens-live" in w._dom_classes]
+    assert len(live2) == 1 and live2[0] is not live[0]
+    # the canvas holds the same figure: its Axes carry the PCA axis labels
+    assert live2[0].figure.axes[0].get_xlabel().startswith("PC1")

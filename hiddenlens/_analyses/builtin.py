@@ -262,7 +262,7 @@ def _lyapunov_words(f: Mapping[str, Any]) -> list[str]:
 
 def _pca_words(f: Mapping[str, Any]) -> list[str]:
     pr = f.get("participation_ratio")
-    return [f"effective dimension {pr:.3g}"] if finite(pr) else []
+    return [f"participation ratio {pr:.3g}"] if finite(pr) else []
 
 
 def _fixed_point_words(f: Mapping[str, Any]) -> list[str]:
@@ -388,7 +388,7 @@ def _overlay_pca(runs: Runs, ax: Any, max_components: int = 30) -> None:
     for name, r in runs:
         y = np.asarray(r.cumulative, dtype=float)[:max_components]  # (<= 30,)
         ax.plot(np.arange(1, y.size + 1), y, "o-", ms=3,
-                label=f"{name} (PR {float(r.participation_ratio):.3g})")
+                label=f"{name} (participation ratio {float(r.participation_ratio):.3g})")
     ax.axhline(0.9, color="0.6", lw=0.8, ls=":")
     ax.set_xlabel("number of components")
     ax.set_ylabel("cumulative explained variance")
@@ -478,8 +478,8 @@ def _setting_memory(results: Mapping[str, Any]) -> str:
 
 def _setting_fixed_points(results: Mapping[str, Any]) -> str:
     xs = [np.asarray(r.x) for r in results.values()]
-    const = "x* = 0 on every feature" if not any(np.any(x) for x in xs) else \
-        "the given constant input x*"
+    const = "held at zero on every feature" if not any(np.any(x) for x in xs) else \
+        "held at the given constant value"
     starts = sorted({int(r.n_starts) for r in results.values()})
     return (f"Constant input {const}; {', '.join(map(str, starts))} starting states sampled "
             "from the recorded states.")

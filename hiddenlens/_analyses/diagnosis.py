@@ -35,7 +35,7 @@ TERMS: Mapping[str, str] = frozen_mapping({
     "task_memory_span": "task memory span",
     "memory_capacity": "memory capacity",
     "memory_max_lag": "longest memory lag tried",
-    "participation_ratio": "effective dimension (participation ratio)",
+    "participation_ratio": "participation ratio",
     "fixed_points_stable": "stable fixed points",
     "fixed_points_saddle": "saddle points",
     "fixed_points_unstable": "unstable fixed points",
@@ -354,6 +354,9 @@ def _gradient_clause(figures: Mapping[str, Any], horizon: float | None
         return None, clause, direction
     change = math.exp(abs(r) * horizon)  # factor over the horizon
     level = "ok" if change < _FALL_OK else "marginal" if change <= _FALL_FAIL else "failing"
+    if r > 0 and level != "ok":  # growth over the horizon is explosion, not a short memory
+        return level, (f"{clause}: they explode over the task's {horizon:.0f} steps "
+                       f"({level})"), direction
     return level, f"{clause}; the task needs {horizon:.0f}: {level}", direction
 
 

@@ -93,6 +93,8 @@ def format_figure(key: str, value: Any) -> str:
     v = float(value)
     if math.isnan(v):
         return "n/a"
+    if key == "gradient_half_life" and v == math.inf:
+        return "no decay seen"  # a statement, not an overflow
     if math.isinf(v):
         return "inf" if v > 0 else "-inf"
     return f"{v:.3g}"
@@ -102,6 +104,8 @@ def format_delta(key: str, delta: Any) -> str:
     """A difference as text, with its sign ("+0.2", "-3", "same", "-")."""
     if isinstance(delta, str) or delta is None:
         return delta or "-"
+    if math.isinf(float(delta)):
+        return "not comparable"  # one of the two is infinite: no finite difference
     text = format_figure(key, delta)
     return f"+{text}" if not isinstance(delta, str) and float(delta) > 0 else text
 

@@ -36,7 +36,7 @@ from .._analyses.figures import (
 from .._analyses.runner import AnalysisResults
 from .._core.registry import AnalysisSpec, analyses, registered
 from .._core.validation import optional_mapping
-from .._plotting.style import no_mathtext
+from .._plotting.style import name_titles, no_mathtext
 from .._version import __version__
 
 __all__ = ["write_report", "report_data", "GENERAL_CAUTIONS"]
@@ -84,6 +84,11 @@ code{background:#f4f4f4;padding:0 .2em}
 def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
          left: float = 0.15) -> str:
     """Run ``draw(ax)`` on a fresh Agg figure and return it as a base64 PNG string."""
+    return _encode(_figure(draw, figsize=figsize, projection=projection, left=left))
+
+
+def _figure(draw, *, figsize=(6.4, 4.0), projection: str | None = None, left: float = 0.15):
+    """A fresh Agg figure with ``draw(ax)`` done on its one Axes."""
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=figsize, dpi=80)
@@ -92,22 +97,58 @@ def _png(draw, *, figsize=(6.4, 4.0), projection: str | None = None,
     ax = fig.add_subplot(projection=projection)
     draw(ax)
     no_mathtext(fig)  # names come from users: never parse them as mathtext
+    return fig
+
+
+def _encode(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", metadata={"Software": None})
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
+def _share_y(per_run: list[list[tuple[str, Any]]]) -> None:
+    """One y-range for the i-th figure of every run (2-D plots on the same scale), so that a
+    row of runs' figures reads as one comparison."""
+    for row in zip(*per_run, strict=False):
+        axes = [fig.axes[0] for _, fig in row if fig.axes]
+        if len(axes) < 2 or any(getattr(ax, "name", "") != "rectilinear" for ax in axes) \
+                or len({ax.get_yscale() for ax in axes}) != 1 \
+                or len({ax.get_ylabel() for ax in axes}) != 1:
+            continue
+        lims = np.array([ax.get_ylim() for ax in axes], dtype=float)  # (runs, 2)
+        if not np.all(np.isfinite(lims)):
+            continue
+        flipped = lims[0, 0] > lims[0, 1]
+        lo, hi = lims.min(), lims.max()
+        for ax in axes:
+            ax.set_ylim((hi, lo) if flipped else (lo, hi))
+
+
+def _result_figs(spec: AnalysisSpec, result: Any, run: Mapping[str, Any], *,
+                 extras: bool = True, name: str | None = None) -> list[tuple[str, Any]]:
+    """The figures of one result as (caption, Figure) pairs, drawn as its spec says."""
+    out = []
+    trace = getattr(run, "trace", None)
+    cls = trace.metadata.get("model_class") if trace is not None else None
+    for d in spec.drawings(result, run, extras=extras):
+        size = (6.4, 5.0) if d.projection == "3d" else (6.4, 4.0)
+
+        def draw(ax, d=d):  # titles name the run, not the model's class
+            d.draw(ax)
+            name_titles(ax, cls, name)
+
+        out.append((d.caption, _figure(draw, projection=d.projection, figsize=size)))
+    return out
+
+
 def _result_pngs(spec: AnalysisSpec, result: Any, run: Mapping[str, Any], *,
-                 extras: bool = True) -> list[tuple[str, str]]:
+                 extras: bool = True, name: str | None = None) -> list[tuple[str, str]]:
     """The figures of one result as (caption, base64 PNG) pairs, drawn as its spec says.
 
     ``extras=False`` keeps only the main plots (a comparison shows the rest as overlays).
     """
-    out = []
-    for d in spec.drawings(result, run, extras=extras):
-        size = (6.4, 5.0) if d.projection == "3d" else (6.4, 4.0)
-        out.append((d.caption, _png(d.draw, projection=d.projection, figsize=size)))
-    return out
+    return [(c, _encode(f)) for c, f in _result_figs(spec, result, run, extras=extras,
+                                                       name=name)]
 
 
 def _setting(spec: AnalysisSpec, results: Mapping[str, Any]) -> str:
@@ -475,10 +516,16 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
                         f"Figure: {spec.title} of the runs {', '.join(present)} drawn "
                         "together, one line style and marker per run"))
         n_img += 1
+    figs = {}
     for n, res in present.items():
         if progress:
             progress(f"figure: {a} ({n})" if multi else f"figure: {a}")
-        for caption, b64 in _result_pngs(spec, res, runs[n], extras=not multi):
+        figs[n] = _result_figs(spec, res, runs[n], extras=not multi, name=n)
+    if multi:
+        _share_y(list(figs.values()))
+    for n, res in present.items():
+        for caption, fig in figs[n]:
+            b64 = _encode(fig)
             n_img += 1
             label = " \u00b7 ".join(c for c in ((n if multi else spec.title), caption) if c)
             out.append(_img(b64, label, _result_alt(spec, res, label)))

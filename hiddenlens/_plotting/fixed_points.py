@@ -38,7 +38,7 @@ def draw_fixed_points(result, ax: Any = None, *, coords: Any, along: Any, labels
     ax.set_ylabel(labels[1])
     if dims == 3:
         ax.set_zlabel(labels[2])
-    x_desc = "x* = 0" if not np.any(result.x) else "constant input x*"
+    x_desc = "input held at zero" if not np.any(result.x) else "input held constant"
     ax.set_title(f"fixed points ({x_desc}): {result.n_fixed} fixed, {result.n_slow} slow")
     ax.legend(loc="best", fontsize="small")
     return ax

@@ -36,6 +36,8 @@ def draw_lyapunov(result, ax: Any = None, *, kind: str = "convergence", **kw: An
         ax.errorbar(idx, result.exponents, yerr=yerr, **kw)
         ax.set_xlabel("index i")
         ax.set_ylabel("λ_i (per step)")
-        ax.set_title(f"Lyapunov spectrum, Kaplan–Yorke dimension {result.kaplan_yorke:.3g}")
+        ky = float(result.kaplan_yorke)
+        ax.set_title("Lyapunov spectrum: every exponent negative (Kaplan–Yorke dimension 0)"
+                     if ky == 0 else f"Lyapunov spectrum, Kaplan–Yorke dimension {ky:.3g}")
     ax.axhline(0.0, color="0.5", linewidth=0.8, linestyle=":")
     return ax

@@ -36,7 +36,9 @@ def draw_memory(result, ax: Any = None, *, log: bool | None = None, **kw: Any):
         ax.set_yscale("log")
     ax.set_xlabel("lag k (steps)")
     ax.set_ylabel(result.score_name)
+    span = int(result.span)
+    said = "nothing decodable" if span < 0 else f"span {span} step{'s' if span != 1 else ''}"
     ax.set_title(f"memory ({result.method}, {result.mode}): capacity {result.capacity:.3g}, "
-                 f"span {result.span}")
+                 f"{said}")
     ax.legend(fontsize="small")
     return ax

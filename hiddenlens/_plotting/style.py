@@ -18,12 +18,15 @@ __all__ = [
     "color_by_sample",
     "get_axes",
     "keep_labels_inside",
+    "legend_outside",
+    "name_titles",
     "no_mathtext",
     "plain_text",
     "run_style",
     "style_axes",
     "thin_ticks",
     "time_colors",
+    "wrap_titles",
 ]
 
 #: The Okabe-Ito palette, distinguishable under the common colour-vision deficiencies
@@ -178,6 +181,56 @@ def _linspace(n: int):
     return np.linspace(0.0, 1.0, max(n, 1))
 
 
+def legend_outside(ax: Any) -> Any:
+    """Move ``ax``'s legend (if any) outside the data, to the right of the Axes; returns it.
+
+    Only for Axes with nothing drawn beside them (no colour bar), where the room is free."""
+    leg = ax.get_legend()
+    if leg is None:
+        return None
+    handles = list(getattr(leg, "legend_handles", None) or leg.legendHandles)
+    labels = [t.get_text() for t in leg.get_texts()]
+    title = leg.get_title().get_text() or None
+    return ax.legend(handles=handles, labels=labels, title=title, fontsize="small",
+                     loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+
+
+def wrap_titles(fig: Any, width_px: float) -> Any:
+    """Break Axes titles longer than their share of ``width_px`` onto two lines (a narrow
+    figure would otherwise clip them); returns ``fig``."""
+    import textwrap
+
+    cols = {}
+    for ax in fig.axes:
+        spec = ax.get_subplotspec() if hasattr(ax, "get_subplotspec") else None
+        if spec is None:
+            continue
+        grid = spec.get_gridspec()
+        cols[ax] = max(1, grid.ncols // max(1, spec.colspan.stop - spec.colspan.start))
+    for ax, n in cols.items():
+        title = ax.get_title()
+        size = ax.title.get_fontsize()  # points; at 100 dpi about 0.55 em per character
+        room = int(0.75 * width_px / n / (size * 100 / 72 * 0.55))
+        if title and "\n" not in title and len(title) > room > 10:
+            ax.set_title("\n".join(textwrap.wrap(title, room)[:2]))
+    return fig
+
+
+def name_titles(ax_or_fig: Any, model_class: Any, name: Any):
+    """Titles that start with the model's class name (``"GRUNet: gradient flow"``) start
+    with the run's name instead, which is what a reader compares; returns the argument."""
+    fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    old = f"{model_class}: "
+    if not model_class or not name or str(model_class) == str(name):
+        return ax_or_fig
+    for ax in fig.axes:
+        for loc in ("center", "left", "right"):
+            title = ax.get_title(loc)
+            if title.startswith(old):
+                ax.set_title(f"{name}: {title[len(old):]}", loc=loc)
+    return ax_or_fig
+
+
 def no_mathtext(ax_or_fig: Any):
     """Draw every text of a figure as plain text (no mathtext), and return the argument.
 
@@ -185,10 +238,31 @@ def no_mathtext(ax_or_fig: Any):
     mathtext and fail when the figure is drawn.
     """
     from matplotlib.text import Text
+    from matplotlib.ticker import FixedFormatter, FuncFormatter
 
     fig = getattr(ax_or_fig, "figure", None) or ax_or_fig
+    # tick labels and offsets written by matplotlib's formatters (log axes use mathtext such
+    # as 10^{-1}) stay as they are; labels given as text (run names) are plain text
+    own = set()
+    for ax in fig.axes:
+        axes = [getattr(ax, a) for a in ("xaxis", "yaxis", "zaxis") if hasattr(ax, a)]
+        for axis in axes:
+            own.add(id(axis.offsetText))
+            fmt = axis.get_major_formatter()
+            if isinstance(fmt, (FixedFormatter, FuncFormatter)) \
+                    and not getattr(fmt, "_hiddenlens_plain", False):
+                # labels given as text (run names), made again at every draw: escaped
+                plain = FuncFormatter(lambda x, pos, f=fmt: plain_text(f(x, pos)))
+                plain._hiddenlens_plain = True
+                axis.set_major_formatter(plain)
+    # the ticks made so far (asking an axis for its ticks would make one per location)
+    from matplotlib.axis import Tick
+
+    for tick in fig.findobj(Tick):
+        own.update((id(tick.label1), id(tick.label2)))
     for t in fig.findobj(Text):
-        t.set_parse_math(False)
+        if id(t) not in own:
+            t.set_parse_math(False)
     return ax_or_fig
 
 

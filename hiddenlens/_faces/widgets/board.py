@@ -31,6 +31,42 @@ __all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses"]
 DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory")
 
 _ALL = "__all__"  # value of the "whole state" choice of the part control
+MIN_PX, MAX_PX = 360, 1400  # figures are drawn between these widths (pixels)
+
+# NOTE: [Drawing at the container's width]
+# A PNG drawn 900 px wide and shown in a 450 px cell halves every text (5 px labels). Widgets
+# cannot ask the page for a size, so the board carries a small HTML block whose image error
+# handler (handlers in widget HTML run; <script> does not) watches the tab area with a
+# ResizeObserver and types its inner width into a hidden Text widget, which syncs to the
+# kernel like any typed value. Figures are then drawn at that width (the layout memo and the
+# figure cache are keyed by it). Without a front end the default 900 px is kept. The same
+# block holds the board's style sheet: tab titles at their full length, wrapping onto a
+# second row in a narrow cell.
+_PAGE_JS = (
+    "var img=this,tries=0;function go(){var b=img.closest('.hiddenlens-board');"
+    "var inp=b&&b.querySelector('.hiddenlens-width input');"
+    "var c=b&&b.querySelector('.widget-tab-contents');"
+    "if(!inp||!c){if(tries++<50)setTimeout(go,200);return;}"
+    "function send(){var s=getComputedStyle(c);var w=Math.floor(c.clientWidth"
+    "-parseFloat(s.paddingLeft)-parseFloat(s.paddingRight))-4;"
+    "if(w>50&&String(w)!==inp.value){inp.value=String(w);"
+    "inp.dispatchEvent(new Event('input',{bubbles:true}));}}"
+    "new ResizeObserver(function(){clearTimeout(img._t);img._t=setTimeout(send,150);})"
+    ".observe(c);send();}go();"
+)
+_PAGE_CSS = (
+    ".hiddenlens-board .widget-tab>.lm-TabBar .lm-TabBar-content{flex-wrap:wrap}"
+    ".hiddenlens-board .widget-tab>.lm-TabBar{height:auto;min-height:fit-content}"
+    ".hiddenlens-board .widget-tab>.lm-TabBar .lm-TabBar-tab{flex:0 0 auto;min-width:"
+    "max-content;max-width:none}"
+    ".hiddenlens-board .widget-tab>.lm-TabBar .lm-TabBar-tabLabel{overflow:visible;"
+    "text-overflow:clip}"
+    ".hiddenlens-board .hiddenlens-scroll{overflow-x:auto;max-width:100%}"
+    ".hiddenlens-board .widget-html,.hiddenlens-board .widget-html-content{max-width:100%;"
+    "min-width:0}"
+)
+_PAGE_HTML = (f"<style>{_PAGE_CSS}</style><img alt='' src='data:,' style='display:none' "
+              f'onerror="{_PAGE_JS}">')
 _KEEP_PNGS = 48  # recent figures kept, so going back to a view needs no drawing
 
 
@@ -98,7 +134,7 @@ def _int_box(option: Option, run: Run) -> widgets.Widget:
     return widgets.BoundedIntText(
         value=min(max(value, option.low), high), min=option.low, max=high,
         description=option.label, tooltip=option.tip, continuous_update=False,
-        style={"description_width": "initial"}, layout=widgets.Layout(width="150px"))
+        style={"description_width": "initial"}, layout=widgets.Layout(width="90px"))
 
 
 def _dropdown(option: Option, run: Run) -> widgets.Widget:
@@ -111,12 +147,35 @@ def _dropdown(option: Option, run: Run) -> widgets.Widget:
                             layout=widgets.Layout(width="max-content"))
 
 
+def labelled(w: widgets.Widget) -> widgets.Widget:
+    """``w`` with its description moved into a Label beside it, both carrying the tooltip.
+
+    ipywidgets 8 puts a control's ``tooltip`` on the page only when its description is empty
+    (the description label otherwise gets no title either), so a described control with a
+    tooltip becomes a Label and the bare control, each with the tooltip as its title.
+    """
+    tip = getattr(w, "tooltip", None)
+    desc = getattr(w, "description", "")
+    if not tip or not desc or isinstance(w, (widgets.Checkbox, widgets.Button)):
+        return w
+    w.description = ""
+    # an HTML label: a Label widget's view does not carry the tooltip as a title either
+    label = widgets.HTML(f"<span class='hiddenlens-label' title='{_render.esc(tip)}' "
+                         f"style='font-size:var(--jp-widgets-font-size)'>{_render.esc(desc)}"
+                         "</span>", layout=widgets.Layout(margin="0 4px 0 0"))
+    box = widgets.HBox([label, w], layout=widgets.Layout(align_items="center"))
+    box.add_class("hiddenlens-control")
+    return box
+
+
 def row(children: Sequence[widgets.Widget], space: str = "16px") -> widgets.HBox:
-    """Controls in a wrapping row, ``space`` apart."""
-    for w in children:
+    """Controls in a wrapping row, ``space`` apart (described controls get their tooltip
+    onto the page, see :func:`labelled`)."""
+    items = [labelled(w) for w in children]
+    for w in items:
         w.layout.margin = f"2px {space} 2px 0"
-    return widgets.HBox(list(children), layout=widgets.Layout(flex_flow="row wrap",
-                                                              align_items="center"))
+    return widgets.HBox(items, layout=widgets.Layout(flex_flow="row wrap",
+                                                     align_items="center"))
 
 
 def make_control(option: Option, run: Run) -> widgets.Widget:
@@ -134,9 +193,19 @@ class Board(widgets.VBox):
 
     def _build(self, analyses: Sequence[str], *, title: str, background: bool,
                executor: Executor | None, extra_tabs: Sequence[tuple[str, widgets.Widget]] = (),
-               shared: Sequence[widgets.Widget] = ()) -> None:
+               shared: Sequence[widgets.Widget] = (),
+               interactive: bool | None = None) -> None:
         for w, what in ((self._sample, "sample"), (self._window, "window"), (self._part, "part")):
             w.add_class(f"hiddenlens-{what}")  # stable hooks for styling and browser tests
+        if interactive not in (None, True, False):
+            raise TypeError(f"interactive must be True, False or None, got {interactive!r}")
+        has_ipympl = _render.interactive_available()
+        #: figures as ipympl canvases (zoom, pan, a read-out of the point under the cursor)
+        #: instead of PNG images; PNG where ipympl is not installed
+        self.interactive = bool(has_ipympl and interactive is not False)
+        self._interactive_note = "" if has_ipympl or not interactive else (
+            "Interactive figures need the optional extra ipympl (pip install "
+            "'hiddenlens[interactive]'); showing PNG figures instead.")
         self._cache = Cache()
         self._runner = Runner(self._cache, background=background, executor=executor,
                               on_progress=self._on_progress)
@@ -180,9 +249,17 @@ class Board(widgets.VBox):
                                   layout=widgets.Layout(align_items="center", width="100%"))
         controls = row(self._shared)
 
+        # the width the figures are drawn at: the page reports the tabs' inner width into a
+        # hidden text box (NOTE: [Drawing at the container's width])
+        self.figure_px = int(_render.WIDTH_IN * _render.DPI)
+        self._width = widgets.Text("", layout=widgets.Layout(display="none"))
+        self._width.add_class("hiddenlens-width")
+        self._probe = widgets.HTML(_PAGE_HTML, layout=widgets.Layout(height="0px",
+                                                                      margin="0"))
+        self._width.observe(lambda ch: self._guard(self._on_width, ch["new"]), names="value")
         # status above the tabs, so it stays in view under tall figures
-        self.children = [self._title, self._diagnosis, self._summary, self._table_export,
-                         controls, status_row, self._tabs]
+        self.children = [self._probe, self._width, self._title, self._diagnosis,
+                         self._summary, self._table_export, controls, status_row, self._tabs]
         self.layout = widgets.Layout(width="100%", max_width="980px", padding="2px 6px")
         self.add_class("hiddenlens-board")
 
@@ -191,6 +268,23 @@ class Board(widgets.VBox):
             w.observe(lambda _: self._guard(self._on_shared), names="value")
         self._update_summary()
         self._on_tab()
+
+    # ------------------------------------------------------------------ width
+    def _on_width(self, value: str) -> None:
+        """Draw at the width the page reports (a few pixels either way are not redrawn)."""
+        try:
+            px = int(float(value))
+        except ValueError:
+            return
+        px = max(MIN_PX, min(MAX_PX, px))
+        if abs(px - self.figure_px) < 8:
+            return
+        self.figure_px = px
+        self._on_shared()  # the current tab; others draw at this width when opened
+
+    @property
+    def _width_in(self) -> float:
+        return self.figure_px / _render.DPI
 
     # ------------------------------------------------------------------ panels
     def _make_panel(self, analysis: Analysis, run: Run) -> Panel:
@@ -393,7 +487,7 @@ class Board(widgets.VBox):
             t0 = time.perf_counter()
             view = self._view(panel)
             seen = (tuple(s.key for s in steps), self._layout_key(panel, view), view.sample,
-                    view.window)
+                    view.window, self.figure_px)
             png = self._pngs.get(seen)
             if png is None:
                 try:
@@ -412,9 +506,27 @@ class Board(widgets.VBox):
             panel.png = png
             panel.image.value = png
             panel.image.layout.display = None
-            panel.message.value = ""
+            panel.message.value = _render.note_box(self._interactive_note, tone="warn") \
+                if self._interactive_note else ""
+            if self.interactive:
+                self._show_live(panel, view)
             self._set_export(panel, png, view)
             self.last_draw_seconds = time.perf_counter() - t0
+
+    def _show_live(self, panel: Panel, view: View) -> None:
+        """Put an ipympl canvas of the figure in place of the PNG (the PNG stays for export
+        and for front ends without the ipympl extension)."""
+        canvas = _render.live_canvas(self._draw_panel(panel, view, "constrained"))
+        canvas.add_class("hiddenlens-live")
+        box = list(panel.box.children)
+        old = [w for w in box if "hiddenlens-live" in getattr(w, "_dom_classes", ())]
+        if old:
+            box[box.index(old[0])] = canvas
+            old[0].close()
+        else:
+            box.insert(box.index(panel.image) + 1, canvas)
+        panel.image.layout.display = "none"
+        panel.box.children = box
 
     # ------------------------------------------------------------------ export, alt text
     def _alt(self, panel: Panel) -> str:
@@ -496,7 +608,7 @@ class Board(widgets.VBox):
     def _layout_key(self, panel: Panel, view: View) -> Hashable:
         # what decides the arrangement of Axes, colour bars and legends (not the data shown)
         return (panel.analysis.name, tuple(sorted(view.extra.items())), view.sample is None,
-                tuple(r.name for r in self._runs_for(panel)))
+                tuple(r.name for r in self._runs_for(panel)), self.figure_px)
 
     # ------------------------------------------------------------------ subclass hooks
     def _draw_panel(self, panel: Panel, view: View, layout: str | None = "constrained"):
@@ -665,7 +777,8 @@ class Board(widgets.VBox):
             png = b"" if compute else panel.png
             if errs:
                 parts.append(_render.error_box(errs[0], what=panel.analysis.label))
-            elif compute and all(s.key in self._cache for s in steps):
+            elif (compute or not png) and all(s.key in self._cache for s in steps):
+                # computed (by 'Run all', say) but never drawn: draw it now
                 try:
                     with self._draw_lock:
                         png = _render.png_bytes(self._draw_panel(panel, self._view(panel)))
@@ -674,7 +787,8 @@ class Board(widgets.VBox):
             if png:
                 parts.append(f"<img style='max-width:100%' src='{_render.png_data_uri(png)}'>")
             elif not errs:
-                parts.append(_render.note_box("not computed yet"))
+                parts.append(_render.note_box("not computed yet: open the tab or press "
+                                              "'Run all'"))
             if panel.analysis.caution:
                 parts.append(_render.note_box(panel.analysis.caution))
         parts += self._static_extra()

@@ -22,7 +22,7 @@ from ..._analyses.figures import (
 from ..._analyses.runner import AnalysisResults, ModelLike, Sequences
 from ..._core.record import record
 from ..._core.validation import as_sequences
-from ..._plotting.style import RUN_COLORS
+from ..._plotting.style import RUN_COLORS, legend_outside, thin_ticks, wrap_titles
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses, row
 from .jobs import Step
@@ -50,7 +50,8 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  task: Mapping[str, Mapping[str, Any]] | None = None,
-                 timelines: Any = None, **wrap_options: Any) -> None:
+                 timelines: Any = None, interactive: bool | None = None,
+                 **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
         checked_timelines = check_timelines(timelines, names)
@@ -86,19 +87,22 @@ class Comparison(Board):
         shown_box = row([widgets.Label("runs:"), *self._shown.values()], space="8px")
         self._sample = widgets.Dropdown(
             options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="140px"),
+            description="sample", layout=widgets.Layout(width="90px"),
+            tooltip="one sequence, or all of them (redraws only)",
             style={"description_width": "initial"})
         self._window = widgets.IntRangeSlider(
             value=(0, T), min=0, max=T, description="steps", continuous_update=False,
+            tooltip="the steps drawn, [first, last) (redraws only)",
             style={"description_width": "initial"}, layout=widgets.Layout(width="300px"))
         common = set.intersection(*(set(r.trace.parts) for r in self._runs.values()))
         parts = [("whole state", _ALL), ("top-layer h", _OUTPUT)] + [
             (p, p) for p in first.parts if p in common and len(common) > 1]
         self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      tooltip="the part of the state analysed",
                                       style={"description_width": "initial"},
                                       layout=widgets.Layout(width="max-content"))
 
-        self._table = widgets.HTML()
+        self._table = widgets.HTML(layout=widgets.Layout(width="100%"))
         self._table_message = widgets.HTML()
         self._cka = widgets.Image(format="png", layout=widgets.Layout(max_width="100%",
                                                                       display="none"))
@@ -115,7 +119,8 @@ class Comparison(Board):
         if self.over_training is not None:
             extra.append((TAB_TITLE, self.over_training.box))
         self._build(tabs, title=title, background=background, executor=executor,
-                    extra_tabs=extra, shared=[shown_box, self._sample, self._window, self._part])
+                    extra_tabs=extra, shared=[shown_box, self._sample, self._window, self._part],
+                    interactive=interactive)
         if self.over_training is not None:
             self.over_training.observe(lambda: self._guard(self.over_training.show))
         for box in self._shown.values():
@@ -148,17 +153,19 @@ class Comparison(Board):
         name = analysis.name
         colors = [self._colors[r.name] for r in runs]
         if not analysis.per_run:  # one overlay of every run on shared axes
-            fig, axes = _render.new_figure(1, layout=layout)
+            fig, axes = _render.new_figure(1, layout=layout, width=self._width_in)
             plot_overlay(name, {r.name: self._results(name, r) for r in runs}, ax=axes[0],
                          colors=colors)
-            return fig
+            legend_outside(axes[0])  # the runs' key beside the data, not over it
+            return wrap_titles(fig, self.figure_px)
         # e.g. trajectories in each run's own PCA axes: one panel per run
         _, projection = analysis.n_axes(view)
-        ncols = min(len(runs), 4)
+        # about 215 px per panel at least, so that ticks and titles do not overprint
+        ncols = max(1, min(len(runs), 4, self.figure_px // 215))
         nrows = -(-len(runs) // ncols)
         row_height = 3.4 if projection == "3d" or ncols <= 2 else 2.9
         extra = int(analysis.overlay_row)  # what is comparable across runs, below
-        fig = Figure(figsize=(_render.WIDTH_IN, row_height * nrows + 2.4 * extra),
+        fig = Figure(figsize=(self._width_in, row_height * nrows + 2.4 * extra),
                      dpi=_render.DPI, layout=layout)
         FigureCanvasAgg(fig)
         grid = fig.add_gridspec(nrows + extra, ncols,
@@ -172,12 +179,17 @@ class Comparison(Board):
             if analysis.run_title is not None:
                 title += f" · {analysis.run_title(result)}"
             ax.set_title(title, color=self._colors[run.name], fontsize="medium")
-            if ax.get_legend() is not None and len(runs) > 1:
-                ax.get_legend().remove()
+            last_in_row = i % ncols == ncols - 1 or i == len(runs) - 1
+            if ax.get_legend() is not None and len(runs) > 1 and not last_in_row:
+                ax.get_legend().remove()  # one key per row, beside its last panel
+            if len(runs) > 1 and not last_in_row:
+                _drop_colour_bars(ax)  # the same key (e.g. step) is drawn once per row
+            if ncols > 1 and projection is None:
+                thin_ticks(ax, max_x=3, max_y=4)  # small multiples: no overprinted ticks
         if extra:
             plot_overlay(name, {r.name: self._results(name, r) for r in runs},
                          ax=fig.add_subplot(grid[nrows, :]), colors=colors)
-        return fig
+        return wrap_titles(fig, self.figure_px)
 
     def _summary_html(self) -> str:
         lines = []
@@ -191,9 +203,15 @@ class Comparison(Board):
             lines.append(f"{dot} <b>{_render.esc(run.name)}</b>: {body}")
         hint = "<div style='color:#718096'>The 'Key figures' tab computes every analysis and " \
                "lists the figures side by side.</div>"
+        # folded beyond two runs: the figures stay in view, the words one click away
+        fold = "" if len(lines) <= 2 else " open" if not any(
+            self._results(n, r) is not None for r in self._runs.values()
+            for n in self._panels) else ""
         return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
                 "#3b6ea5;padding:6px 10px;font-size:13.5px;line-height:1.5'>"
-                + "<br>".join(lines) + hint + "</div>")
+                f"<details{' open' if len(lines) <= 2 else fold}><summary style='cursor:pointer'>"
+                f"Key figures in words ({len(lines)} runs)</summary>"
+                + "<br>".join(lines) + hint + "</details></div>")
 
     # ------------------------------------------------------------------ key-figures tab
     def _table_steps(self) -> list[Step]:
@@ -243,9 +261,13 @@ class Comparison(Board):
         self.comparison = comparison_of(results, {r.name: r.system for r in runs},
                                         seed=runs[0].seed)
         names = list(self.comparison.names)
-        self._table.value = _table_html(self.comparison, self._colors)
-        size = min(1.6 + 0.7 * len(runs), 6.0)
-        fig, axes = _render.new_figure(1, height=size - 0.4, width=size + 1.8)
+        self._table.value = ("<div class='hiddenlens-scroll'>"
+                             f"{_table_html(self.comparison, self._colors)}</div>")
+        # about 0.55 in per run, names beside; never wider than the cell
+        longest = max(len(n) for n in names)
+        size = min(1.2 + 0.55 * len(runs), 4.5)
+        fig, axes = _render.new_figure(1, height=size, width=min(
+            size + 1.0 + 0.075 * longest, self._width_in))
         plot_cka(self.comparison.cka, names, ax=axes[0])
         self._cka.value = _render.png_bytes(fig)
         self._cka.layout.display = None
@@ -268,10 +290,20 @@ class Comparison(Board):
         return out
 
 
+def _drop_colour_bars(ax: Any) -> None:
+    """Remove the colour bars of what is drawn on ``ax`` (matplotlib's ``Colorbar.remove``
+    also gives the Axes back the room the bar took)."""
+    for artist in (*ax.collections, *ax.images):
+        bar = getattr(artist, "colorbar", None)
+        if bar is not None:
+            bar.remove()
+
+
 def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
     """Runs as columns, key figures as rows, each difference beside its value."""
     names = list(comparison.names)
-    head = "".join(f"<th style='text-align:right;padding:2px 10px;color:{colors[n]}'>"
+    head = "".join(f"<th style='text-align:right;padding:2px 10px;white-space:nowrap;"
+                   f"color:{colors[n]}'>"
                    f"{_render.esc(n)}</th>" for n in names)
     rows = []
     for fr in figure_rows({n: comparison.figures[n] for n in names}):
@@ -291,8 +323,9 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
                 said = {True: ", within noise", False: ", beyond noise"}.get(noise, "")
                 text += (f" <span style='color:#718096;font-size:11.5px'>(Δ "
                          f"{_render.esc(format_delta(fr.key, delta))}{said})</span>")
-            cells.append(f"<td style='text-align:right;padding:2px 10px'>{text}</td>")
-        rows.append(f"<tr><td style='padding:2px 10px'>{_render.esc(fr.text)}</td>"
+            cells.append(f"<td style='text-align:right;padding:2px 10px;white-space:nowrap'>"
+                         f"{text}</td>")
+        rows.append(f"<tr><td style='padding:2px 10px;min-width:12em'>{_render.esc(fr.text)}</td>"
                     f"{''.join(cells)}</tr>")
     return ("<table class='hiddenlens-table' style='border-collapse:collapse;font-size:13px'>"
             f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
@@ -302,7 +335,8 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
             task: Mapping[str, Mapping[str, Any]] | None = None,
-            timelines: Any = None, **wrap_options: Any) -> Comparison:
+            timelines: Any = None, interactive: bool | None = None,
+            **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
     Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
@@ -318,7 +352,7 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         state sizes may differ, the input size must be the same.
     inputs : Tensor or ndarray of shape (B, T, I)
         The same sequences for every run.
-    h0, analyses, background, executor, seed, **wrap_options
+    h0, analyses, background, executor, seed, interactive, **wrap_options
         As in :func:`hiddenlens.explore`.
     task : Mapping[str, Mapping], optional
         Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
@@ -336,4 +370,5 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
                       executor=executor, seed=seed, task=task, timelines=timelines,
+                      interactive=interactive,
                       **wrap_options)

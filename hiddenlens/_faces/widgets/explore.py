@@ -13,6 +13,7 @@ import torch
 from ..._analyses.runner import ModelLike, Sequences
 from ..._core.record import as_system, record
 from ..._core.validation import as_sequences
+from ..._plotting.style import legend_outside, name_titles, wrap_titles
 from ..summary import key_figures, summary_sentence
 from . import render as _render
 from .board import _ALL, Board, Panel, check_analyses
@@ -49,6 +50,7 @@ class Explorer(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
                  task: Mapping[str, Any] | None = None, timeline: Any = None,
+                 interactive: bool | None = None,
                  **wrap_options: Any) -> None:
         names = check_analyses(analyses)
         if task is not None and not isinstance(task, Mapping):
@@ -78,14 +80,17 @@ class Explorer(Board):
 
         self._sample = widgets.Dropdown(
             options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="140px"),
+            description="sample", layout=widgets.Layout(width="90px"),
+            tooltip="one sequence, or all of them (redraws only)",
             style={"description_width": "initial"})
         self._window = widgets.IntRangeSlider(
             value=(0, T), min=0, max=T, step=1, description="steps", continuous_update=False,
+            tooltip="the steps drawn, [first, last) (redraws only)",
             style={"description_width": "initial"}, layout=widgets.Layout(width="340px"))
         parts = [("whole state", _ALL)] + [(p, p) for p in trace.parts] if len(trace.parts) > 1 \
             else [("whole state", _ALL)]
         self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",
+                                      tooltip="the part of the state analysed",
                                       style={"description_width": "initial"},
                                       layout=widgets.Layout(width="max-content"),
                                       disabled=len(parts) == 1)
@@ -99,7 +104,8 @@ class Explorer(Board):
         self.over_training = OverTraining(timelines) if timelines else None
         extra = [(TAB_TITLE, self.over_training.box)] if self.over_training else []
         self._build(names, title=title, background=background, executor=executor,
-                    extra_tabs=extra, shared=[self._sample, self._window, self._part])
+                    extra_tabs=extra, shared=[self._sample, self._window, self._part],
+                    interactive=interactive)
         if self.over_training is not None:
             self.over_training.observe(lambda: self._guard(self.over_training.show))
 
@@ -128,10 +134,15 @@ class Explorer(Board):
         analysis, run = panel.analysis, self.run
         n, projection = analysis.n_axes(view)
         fig, axes = _render.new_figure(n, projection=projection, layout=layout,
-                                       height=4.6 if projection == "3d" else _render.HEIGHT_IN)
+                                       height=4.6 if projection == "3d" else _render.HEIGHT_IN,
+                                       width=self._width_in)
         deps = {d: self._results(d, run) for d in analysis.needs}
         analysis.draw(self._results(analysis.name, run), axes, view, run, deps)
-        return fig
+        if len(fig.axes) == len(axes) and projection is None:  # no colour bar beside them
+            for ax in axes:
+                legend_outside(ax)  # legends never over the data
+        name_titles(fig, run.trace.metadata.get("model_class"), run.name)
+        return wrap_titles(fig, self.figure_px)
 
     def _show_extra(self, index: int) -> None:
         if self.over_training is not None and index == 0:
@@ -150,7 +161,7 @@ class Explorer(Board):
         rest = ""
         if missing:
             names = _render.esc(", ".join(missing))
-            rest = (f"<span style='color:#718096'> Not computed yet: {names} (open their tabs "
+            rest = (f"<span style='color:#718096'> Tabs not opened yet: {names} (open them "
                     "or press 'Run all').</span>")
         return ("<div class='hiddenlens-summary' style='background:#f3f6fa;border-left:4px solid "
                 f"#3b6ea5;padding:6px 10px;font-size:13.5px'>{body}{rest}</div>")
@@ -160,6 +171,7 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
             task: Mapping[str, Any] | None = None, timeline: Any = None,
+            interactive: bool | None = None,
             **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
@@ -200,6 +212,11 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         :class:`hiddenlens.Monitor` or its ``.timeline`` table): adds an "Over training" tab
         drawing each figure against step with its interval band (a figure chooser and a
         bands switch; nothing is computed).
+    interactive : bool, optional
+        Show figures as ipympl canvases (zoom, pan, a read-out of the coordinates under the
+        cursor). Default None: where the optional extra is installed (``pip install
+        'hiddenlens[interactive]'``); True without it shows PNG figures with a note; False:
+        PNG figures always (fastest redraws).
 
     Returns
     -------
@@ -215,4 +232,4 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    task=task, timeline=timeline, **wrap_options)
+                    task=task, timeline=timeline, interactive=interactive, **wrap_options)

@@ -14,7 +14,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 __all__ = ["LayoutMemo", "new_figure", "png_bytes", "png_data_uri", "error_box", "note_box",
-           "esc"]
+           "esc", "interactive_available", "live_canvas"]
 
 DPI = 100
 WIDTH_IN = 9.0  # 900 px: fits a JupyterLab cell at its default width
@@ -83,6 +83,33 @@ class LayoutMemo:
             with self._lock:
                 self._positions[key] = [ax.get_position(original=True) for ax in fig.axes]
         return png
+
+
+def interactive_available() -> bool:
+    """Whether ipympl (the optional extra ``interactive``) can be imported."""
+    import importlib.util
+
+    return importlib.util.find_spec("ipympl") is not None
+
+
+def live_canvas(fig: Figure):
+    """An ipympl canvas widget showing ``fig``: zoom, pan, and the coordinates under the
+    cursor in its footer (the hover read-out). Needs ipympl (``interactive_available()``)."""
+    import warnings
+
+    from ipympl.backend_nbagg import Canvas, FigureManager
+
+    canvas = Canvas(fig)
+    with warnings.catch_warnings():
+        # ipympl 0.10's toolbar passes its canvas on to traitlets, which warns that the
+        # argument is unrecognised (seen with traitlets 5 and matplotlib 3.11); harmless
+        warnings.filterwarnings("ignore", message="Passing unrecognized arguments",
+                                category=DeprecationWarning)
+        FigureManager(canvas, 0)  # gives the canvas its toolbar and cursor read-out
+    canvas.header_visible = False
+    canvas.toolbar_position = "right"
+    canvas.layout.max_width = "100%"
+    return canvas
 
 
 def png_data_uri(png: bytes) -> str:
