@@ -14,11 +14,14 @@ import numbers
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .._core.results import frozen_mapping, readonly
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike, Sequences
 
 __all__ = [
     "FigureIntervals",
@@ -407,8 +410,8 @@ def _batch_size(results: Mapping[str, Any]) -> int:
 
 
 def bootstrap_figures(
-    model_or_system: Any,
-    inputs: Any,
+    model_or_system: ModelLike,
+    inputs: Sequences,
     *,
     which: Iterable[str] | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,

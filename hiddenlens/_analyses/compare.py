@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -16,6 +16,9 @@ from .._core.trace import Trace
 from .bootstrap import FigureIntervals, figure_intervals, within_noise
 from .figures import figure_rows, key_figures, summary_sentence
 from .runner import AnalysisResults, ModelLike, Sequences, run_analyses
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ArrayLike
 
 __all__ = ["RunComparison", "compare_runs", "comparison_of", "figure_table", "linear_cka",
            "plot_overlay", "plot_cka", "check_intervals", "run_intervals"]
@@ -43,7 +46,7 @@ def _as_matrix(a: Any, name: str) -> np.ndarray:
     return a.astype(np.float64)
 
 
-def linear_cka(X: Any, Y: Any) -> float:
+def linear_cka(X: ArrayLike, Y: ArrayLike) -> float:
     """Linear centred kernel alignment between two representations of the same examples.
 
     Parameters

@@ -8,7 +8,7 @@ import numbers
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -23,6 +23,9 @@ from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.threads import single_thread
 from .._core.trace import Trace, unit_names
 from .._core.validation import as_float_tensor, check_finite, describe
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike
 
 __all__ = ["FixedPoints", "find_fixed_points", "STABILITY_CLASSES"]
 
@@ -294,7 +297,7 @@ class FixedPoints(Result):
 
 @analysis("find_fixed_points")
 def find_fixed_points(
-    model_or_system: Any,
+    model_or_system: ModelLike,
     trace: Trace | None,
     x: Any = None,
     *,

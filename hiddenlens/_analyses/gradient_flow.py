@@ -12,7 +12,7 @@ import math
 import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -24,6 +24,10 @@ from .._core.results import Result, frozen_mapping, readonly
 from .._core.stepcheck import step_errors
 from .._core.threads import single_thread_below
 from .._core.validation import as_float_tensor
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike, Sequences
+    from .._core.trace import Trace
 
 __all__ = ["GradientFlow", "LossGradientNorms", "gradient_flow", "loss_gradient_norms",
            "VERDICTS"]
@@ -134,8 +138,8 @@ class GradientFlow(Result):
 # ---------------------------------------------------------------------- computation
 @analysis("gradient_flow")
 def gradient_flow(
-    system: Any,
-    trace: Any,
+    system: ModelLike,
+    trace: Trace,
     *,
     max_lag: int | None = None,
     end: int | None = None,
@@ -576,7 +580,7 @@ class LossGradientNorms(Result):
 
 def loss_gradient_norms(
     model: nn.Module,
-    inputs: Any,
+    inputs: Sequences,
     loss_fn: Callable[..., torch.Tensor],
     *,
     targets: Any = None,

@@ -11,7 +11,7 @@ import math
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, replace
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -26,6 +26,9 @@ from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.threads import single_thread
 from .._core.trace import Trace
 from .._core.validation import as_dtype, as_sequences, check_trace_finite, check_trace_fits
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ArrayLike, ModelLike, TraceOrInputs
 
 __all__ = ["LyapunovSpectrum", "lyapunov_spectrum", "kaplan_yorke_dimension",
            "StationaryTrajectoryWarning"]
@@ -199,7 +202,7 @@ class LyapunovSpectrum(Result):
         raise ValueError(f"table must be 'exponents', 'per_sample' or 'running', got {table!r}")
 
 
-def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> float:
+def kaplan_yorke_dimension(exponents: ArrayLike, state_size: int | None = None) -> float:
     """Kaplan-Yorke dimension ``j + (λ_1 + ... + λ_j) / |λ_{j+1}|`` of a Lyapunov spectrum.
 
     ``j`` is the largest index whose partial sum is non-negative (Kaplan & Yorke 1979).
@@ -249,8 +252,8 @@ def kaplan_yorke_dimension(exponents: Any, state_size: int | None = None) -> flo
 # ---------------------------------------------------------------------- the analysis
 @analysis("lyapunov_spectrum")
 def lyapunov_spectrum(
-    system: Any,
-    trace: Trace | Any = None,
+    system: ModelLike,
+    trace: TraceOrInputs | None = None,
     k: int | None = None,
     *,
     warmup: int | None = None,

@@ -11,7 +11,7 @@ import math
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -25,6 +25,9 @@ from .._core.stepcheck import step_errors
 from .._core.systems import RecurrentSystem, refuse_random_steps
 from .._core.trace import Trace
 from .._core.validation import check_trace_finite, check_trace_fits
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike
 
 __all__ = ["MemoryCurve", "memory_curve"]
 
@@ -199,7 +202,7 @@ def check_alphas(alphas: Any, default: Any = DEFAULT_ALPHAS) -> np.ndarray:
 # ====================================================================== entry point
 @analysis("memory_curve")
 def memory_curve(
-    model_or_system: Any,
+    model_or_system: ModelLike,
     trace: Trace | None = None,
     *,
     max_lag: int = 50,

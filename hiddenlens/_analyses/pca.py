@@ -6,7 +6,7 @@ import inspect
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -16,6 +16,9 @@ from .._core.results import Result, frozen_mapping, readonly
 from .._core.systems import RecurrentSystem
 from .._core.trace import Trace
 from .._core.validation import check_trace_fits
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike
 
 __all__ = ["MAX_CONDITIONS", "PCATrajectories", "pca_analysis", "pca_trajectories"]
 
@@ -275,7 +278,7 @@ MAX_CATEGORIES = 8
 
 @analysis("pca_trajectories")
 def pca_trajectories(
-    system: Any,
+    system: ModelLike | Trace,
     trace: Trace | None = None,
     *legacy: Any,
     k: int | None = None,

@@ -7,9 +7,7 @@ import time
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
-import numpy as np
-import torch
-
+from .._core.aliases import ModelLike, Sequences
 from .._core.record import as_system, record
 from .._core.registry import AnalysisSpec, analysis_spec, check_names, registered
 from .._core.systems import RecurrentSystem
@@ -20,10 +18,6 @@ __all__ = ["AnalysisResults", "ModelLike", "Sequences", "analysis_options", "bud
            "run_analyses"]
 
 ProgressCallback = Callable[[str, int, int], Any]
-#: What :func:`hiddenlens.wrap` accepts: a system, a recurrent module, or a step function.
-ModelLike = RecurrentSystem | torch.nn.Module | Callable[..., Any]
-#: Input sequences (B, T, I) or (T, I), batch first.
-Sequences = torch.Tensor | np.ndarray
 
 
 class AnalysisResults(dict):

@@ -7,7 +7,7 @@ import numbers
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -23,6 +23,10 @@ from .._core.options import analysis, check_options, int_seed, progress_bar
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.threads import parallel_map, single_thread, usable_cores
 from .._core.validation import as_dtype
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import ModelLike
+    from .._core.trace import Trace
 
 __all__ = ["JacobianSpectra", "jacobian_spectra", "top_singular_values"]
 
@@ -159,8 +163,8 @@ class JacobianSpectra(Result):
 
 @analysis("jacobian_spectra")
 def jacobian_spectra(
-    system: Any,
-    trace: Any,
+    system: ModelLike,
+    trace: Trace,
     k: int | None = None,
     *,
     method: str = "auto",

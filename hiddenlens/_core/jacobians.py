@@ -9,7 +9,7 @@ system uses torch.func transforms batched over all requested states at once.
 from __future__ import annotations
 
 import warnings
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -19,6 +19,10 @@ from torch.func import jacrev, jvp, vjp, vmap
 from .systems import LayerWeights, RecurrentSystem, refuse_random_steps
 from .threads import single_thread
 from .validation import as_dtype
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .aliases import ModelLike
+    from .trace import Trace
 
 __all__ = [
     "StepLinearization",
@@ -611,7 +615,7 @@ def check_chunk(chunk: Any, name: str = "chunk") -> int | None:
     return int(chunk)
 
 
-def jacobians(system: Any, trace: Any, *, wrt: str = "state", dtype: Any = None,
+def jacobians(system: ModelLike, trace: Trace, *, wrt: str = "state", dtype: Any = None,
               chunk: int | None = None, progress: bool | None = None) -> np.ndarray:
     """Per-step Jacobians along a recorded trace, materialised.
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import warnings
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -13,6 +13,9 @@ from .._version import __version__
 from .systems import RecurrentSystem, wrap
 from .trace import Trace
 from .validation import as_float_tensor, as_sequences, check_finite, describe
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .aliases import ModelLike, Sequences
 
 __all__ = ["record", "as_system", "initial_states", "valid_steps", "NonFiniteStateWarning"]
 
@@ -127,8 +130,9 @@ def valid_steps(trace: Trace) -> np.ndarray | None:
     return np.arange(trace.n_steps)[None, :] < n[:, None]
 
 
-def record(model_or_system: Any, inputs: Any, h0: Any = None, *, progress: bool | None = None,
-           lengths: Any = None, mask: Any = None, **wrap_options: Any) -> Trace:
+def record(model_or_system: ModelLike, inputs: Sequences, h0: Sequences | None = None, *,
+           progress: bool | None = None, lengths: Any = None, mask: Any = None,
+           **wrap_options: Any) -> Trace:
     """Run a recurrent model or system over input sequences and record its hidden states.
 
     Parameters

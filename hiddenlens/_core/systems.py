@@ -16,7 +16,7 @@ import types
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -25,6 +25,9 @@ from torch import nn
 
 from .results import frozen_mapping
 from .validation import as_dtype
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .aliases import ModelLike
 
 __all__ = ["LayerWeights", "RecurrentSystem", "wrap", "CELL_KINDS"]
 
@@ -441,7 +444,7 @@ def _check_step_output(s, B, S, t=0):
 
 # ---------------------------------------------------------------------- wrapping
 def wrap(
-    obj: Any,
+    obj: ModelLike,
     *,
     dtype: Any = torch.float32,
     submodule: str | None = None,

@@ -12,11 +12,14 @@ import math
 import os
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .monitor import DEFAULT_FIGURES, check_figures, check_probe_inputs
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import Sequences
 
 __all__ = ["sweep", "SweepResult", "ENGINES"]
 
@@ -236,7 +239,7 @@ def _progress(items, total, progress):
 # ---------------------------------------------------------------------- public function
 def sweep(
     runs: Sequence[Any],
-    inputs: Any,
+    inputs: Sequences,
     *,
     params: Any = None,
     engine: str = "local",

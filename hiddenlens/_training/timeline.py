@@ -13,11 +13,14 @@ import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from .monitor import DEFAULT_FIGURES, check_figures, plot_timeline, probe_figures
+
+if TYPE_CHECKING:  # the aliases of the public signatures
+    from .._core.aliases import PathLike, Sequences
 
 __all__ = ["timeline", "Timeline", "as_timeline", "checkpoint_order", "SUFFIXES"]
 
@@ -291,9 +294,9 @@ def _loaded(make: Any, state: Any) -> Any:
 
 # ---------------------------------------------------------------------- public function
 def timeline(
-    checkpoints: Any,
-    factory: Any,
-    inputs: Any,
+    checkpoints: PathLike | Sequence[PathLike],
+    factory: Callable[..., Any] | str,
+    inputs: Sequences,
     *,
     figures: Sequence[str] = DEFAULT_FIGURES,
     seed: int = 0,
