@@ -17,7 +17,7 @@ from .._record import record
 from .._runner import AnalysisResults, ModelLike, Sequences
 from .._validation import as_sequences
 from . import _render
-from ._board import _ALL, Board, Panel, check_analyses, row
+from ._board import _ALL, Board, Panel, check_analyses, row, task_context
 from ._jobs import Step
 from ._panels import Run, View, tab
 
@@ -41,8 +41,8 @@ class Comparison(Board):
     def __init__(self, runs: Mapping[str, Any], inputs: Any, *, h0: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
-                 task: Mapping[str, Mapping[str, Any]] | None = None,
-                 **wrap_options: Any) -> None:
+                 task: Mapping[str, Mapping[str, Any]] | None = None, targets: Any = None,
+                 onsets: Any = None, **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
         if task is not None:
@@ -55,12 +55,15 @@ class Comparison(Board):
             if unknown:
                 raise ValueError(f"task names runs that are not compared: {', '.join(unknown)};"
                                  f" the runs are {', '.join(names)}")
-        tabs = check_analyses(analyses)
+        tabs = check_analyses(analyses, ("targets", "onsets") if targets is not None else ())
         recorded = {}
+        context = None
         for n, system in systems.items():
             x = as_sequences(inputs, system.input_size, system.dtype,
                              what=f"run {n!r} ({system.source})")  # (B, T, I)
-            recorded[n] = Run(n, system, record(system, x, h0), x, None, seed)
+            if context is None:
+                context = task_context(targets, onsets, x.shape[0], x.shape[1])
+            recorded[n] = Run(n, system, record(system, x, h0), x, None, seed, context)
         super().__init__()  # only once the arguments are known to be good
         self._runs = recorded
         self._task = {str(k): dict(v) for k, v in (task or {}).items() if v}
@@ -264,8 +267,8 @@ def _table_html(comparison: RunComparison, colors: Mapping[str, str]) -> str:
 def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
-            task: Mapping[str, Mapping[str, Any]] | None = None,
-            **wrap_options: Any) -> Comparison:
+            task: Mapping[str, Mapping[str, Any]] | None = None, targets: Any = None,
+            onsets: Any = None, **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
     Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
@@ -281,8 +284,9 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         state sizes may differ, the input size must be the same.
     inputs : Tensor or ndarray of shape (B, T, I)
         The same sequences for every run.
-    h0, analyses, background, executor, seed, **wrap_options
-        As in :func:`hiddenlens.explore`.
+    h0, analyses, background, executor, seed, targets, onsets, **wrap_options
+        As in :func:`hiddenlens.explore`; ``targets`` (a task variable of the shared inputs)
+        adds the task-memory tab, each run decoded on its own states.
     task : Mapping[str, Mapping], optional
         Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
         diagnosis line per run at the top.
@@ -294,4 +298,5 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         ``.comparison`` holds the :class:`~hiddenlens.RunComparison` once the table is shown.
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
-                      executor=executor, seed=seed, task=task, **wrap_options)
+                      executor=executor, seed=seed, task=task, targets=targets,
+                      onsets=onsets, **wrap_options)

@@ -14,7 +14,7 @@ from .._runner import ModelLike, Sequences
 from .._summary import key_figures, summary_sentence
 from .._validation import as_sequences
 from . import _render
-from ._board import _ALL, Board, Panel, check_analyses
+from ._board import _ALL, Board, Panel, check_analyses, task_context
 from ._panels import Run, View, tab
 
 __all__ = ["Explorer", "explore"]
@@ -46,17 +46,19 @@ class Explorer(Board):
     def __init__(self, model_or_system: Any, inputs: Any, *, h0: Any = None, labels: Any = None,
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
-                 task: Mapping[str, Any] | None = None, **wrap_options: Any) -> None:
-        names = check_analyses(analyses)
+                 task: Mapping[str, Any] | None = None, targets: Any = None,
+                 onsets: Any = None, **wrap_options: Any) -> None:
+        names = check_analyses(analyses, ("targets", "onsets") if targets is not None else ())
         if task is not None and not isinstance(task, Mapping):
             raise TypeError("task must be a mapping of the model's task metrics (e.g. "
                             f"{{'accuracy': 0.97, 'chance': 0.5}}), got {type(task).__name__}")
         system = as_system(model_or_system, **wrap_options)
         x = as_sequences(inputs, system.input_size, system.dtype,
                          what=f"the {system.source} system")  # (B, T, I)
+        context = task_context(targets, onsets, x.shape[0], x.shape[1])
         trace = record(system, x, h0)
         run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
-                  seed)
+                  seed, context)
         super().__init__()  # only once the arguments are known to be good
         self._runs = {run.name: run}
         self._task = {run.name: dict(task)} if task else {}
@@ -134,7 +136,8 @@ class Explorer(Board):
 def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, labels: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
-            task: Mapping[str, Any] | None = None, **wrap_options: Any) -> Explorer:
+            task: Mapping[str, Any] | None = None, targets: Any = None, onsets: Any = None,
+            **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
     The model is recorded once on ``inputs``; each tab shows one analysis and is computed only
@@ -154,7 +157,8 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     analyses : sequence of str, optional
         Which tabs to show, in order (default: every available analysis, trajectories first).
         Names: those of :func:`hiddenlens.analyses` ("pca", "spectra", "gradient_flow",
-        "lyapunov", "fixed_points", "memory" and any registered analysis).
+        "lyapunov", "fixed_points", "memory", "task_memory" (needs ``targets``) and any
+        registered analysis).
     background : bool, default True
         Compute in a worker thread. False computes inline, in the calling thread (scripts,
         tests); the widget then behaves the same but blocks while computing.
@@ -168,6 +172,13 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         Task metrics measured for the model (``accuracy``, ``chance``, ``loss``, ``r2``,
         ``n_eval``, ``horizon``; see :func:`hiddenlens._diagnosis.diagnose`): a diagnosis line
         at the top reads the key figures against them.
+    targets : array_like of shape (B,) or (B, T), optional
+        A task variable of the input sequences (a cue's identity per sequence, a value per
+        step): adds the task-memory tab, which decodes it from the state at each lag after its
+        onset (:func:`hiddenlens.task_memory`). Without targets that tab is left out.
+    onsets : array_like of int, shape (B,), optional
+        With ``targets``: the event step of each sequence that the lags count from (default:
+        the first step).
 
     Returns
     -------
@@ -183,4 +194,4 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    task=task, **wrap_options)
+                    task=task, targets=targets, onsets=onsets, **wrap_options)
