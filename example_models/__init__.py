@@ -60,9 +60,11 @@ __all__ = [
     "TaskTrials",
     "list_runs",
     "load_run",
+    "load_tally",
     "make_run_inputs",
     "probe_inputs_path",
     "task_metrics",
+    "tally_weights_path",
     "task_trials",
     "weights_path",
 ]
@@ -166,6 +168,31 @@ def load_run(name: str) -> nn.Module:
     model = _import_factory(run.factory)()
     state = torch.load(path, map_location="cpu", weights_only=True)
     model.load_state_dict(state)
+    return model.eval()
+
+
+def tally_weights_path() -> Path:
+    """Path of the trained buffer-tally integrator's ``state_dict`` (``weights/tally-rnn.pt``;
+    ``python -m hiddenlens.examples.train --tally`` writes it)."""
+    return _HERE / "weights" / "tally-rnn.pt"
+
+
+def load_tally() -> nn.Module:
+    """The tanh RNN trained on the buffer tally (:func:`sorting_line.make_tally`), in eval
+    mode: an integrator of crates entering (+1) and leaving (-1) the buffer lane, whose zero
+    input holds a line of slow points (a line attractor).
+
+    Not one of :data:`RUNS` (its inputs are the tally's two light barriers, not the sorting
+    line's five channels). Weights are read with ``torch.load(..., weights_only=True)``.
+    """
+    from .sorting_line import make_tally_rnn
+
+    path = tally_weights_path()
+    if not path.is_file():
+        raise FileNotFoundError(f"weights of the buffer tally not found at {path}; create them "
+                                "with `python -m hiddenlens.examples.train --tally`")
+    model = make_tally_rnn()
+    model.load_state_dict(torch.load(path, map_location="cpu", weights_only=True))
     return model.eval()
 
 

@@ -409,3 +409,59 @@ def test_greenhouse_lstm_keeps_the_days_weather_into_the_night():
     tm = hiddenlens.task_memory(trace, trials.targets, onsets=trials.onsets, max_lag=50,
                                 n_folds=3, n_permutations=19, cross_temporal=False, max_iter=100)
     assert tm.scores[0] > 0.9 and tm.span >= 20
+
+
+def test_buffer_tally_counts_crates():
+    data = sl.make_tally(8, 60, seed=2)
+    x = data.inputs
+    assert not np.any((x[..., 0] > 0) & (x[..., 1] > 0))  # never in and out at once
+    np.testing.assert_allclose(data.targets[..., 0] * sl.TALLY_UNIT,
+                               np.cumsum(x[..., 0] - x[..., 1], axis=1))
+
+
+@pytest.mark.skipif(not example_models.tally_weights_path().is_file(),
+                    reason="tally weights not trained yet")
+def test_line_attractor_of_the_trained_integrator_with_default_settings():
+    # An RNN trained to integrate has a line of slow points under zero input, along which the
+    # Jacobian has an eigenvalue near 1 (Seung 1996; Sussillo & Barak 2013; Mante et al. 2013)
+    import hiddenlens
+
+    model = example_models.load_tally()
+    data = sl.make_tally(64, 50, seed=1)
+    with torch.no_grad():
+        out = model(torch.from_numpy(data.inputs))
+    # it integrates: the shipped weights' error is small against the count's variance
+    assert float(torch.mean((out - torch.from_numpy(data.targets)) ** 2)) < 0.1 * np.var(
+        data.targets)
+    trace = hiddenlens.record(model, data.inputs)
+    fp = hiddenlens.find_fixed_points(model, trace)  # default settings
+    assert fp.slow_set_dimension == 1
+    assert fp.summary.startswith("approximate line attractor:")
+    assert "along one direction" in fp.summary
+    members = int(np.asarray(fp.in_slow_set).sum())
+    assert members >= 50 and abs(fp.tangent_eigenvalue - 1) < 0.05
+    # reference: numpy's eigenvalues of torch.func's Jacobian of the step at the middle member
+    rnn = model.rnn
+    order = np.asarray(fp.slow_set_order)
+    s = torch.tensor(fp.points[order[len(order) // 2]], dtype=torch.float32)
+
+    def step(h):
+        return torch.tanh(rnn.weight_hh_l0 @ h + rnn.bias_hh_l0 + rnn.bias_ih_l0)  # x* = 0
+
+    J = torch.func.jacrev(step)(s).detach().double().numpy()
+    assert np.min(np.abs(np.abs(np.linalg.eigvals(J)) - 1)) < 0.05
+    # along the line, the readout runs through the counts the net held: ordered points give an
+    # ordered count (scipy's Spearman rank correlation)
+    with torch.no_grad():
+        count = model.readout(torch.tensor(fp.points[order], dtype=torch.float32))[:, 0]
+    rho = stats.spearmanr(np.arange(len(order)), count.numpy()).statistic
+    assert abs(rho) > 0.95
+    assert float(count.max() - count.min()) > 1.0  # more than 5 crates of range
+
+
+def test_fit_tally_trains_from_its_seed():
+    from hiddenlens.examples.train import fit_tally
+
+    a, b = fit_tally(steps=3), fit_tally(steps=3)
+    for (k, v), w in zip(a.state_dict().items(), b.state_dict().values()):
+        assert torch.equal(v, w), k
