@@ -66,6 +66,7 @@ _LAZY = {
     "TaskMemory": "_task_memory",
     "FixedPoints": "_fixed_points",
     "MemoryCurve": "_memory",
+    "MemoryRangeWarning": "_memory",
     "RunComparison": "_compare",
     # over training and across runs
     "Monitor": "_monitor",

@@ -26,7 +26,7 @@ from ._systems import RecurrentSystem
 from ._trace import Trace
 from ._validation import check_trace_fits
 
-__all__ = ["MemoryCurve", "memory_curve"]
+__all__ = ["MemoryCurve", "MemoryRangeWarning", "memory_curve"]
 
 METHODS = ("decoding", "perturbation", "sensitivity")
 MODES = ("probe", "data")
@@ -34,6 +34,19 @@ DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-4, 6, 11))
 
 # Jacobian chunks of the sensitivity method stay below this many bytes
 _CHUNK_BYTES = 64 * 2**20
+
+
+class MemoryRangeWarning(RuntimeWarning):
+    """A memory curve measured where the model does not work: probe inputs drove the states
+    outside the range they keep on the model's own inputs, or the decoders score test R^2
+    below -1 (worse than predicting the mean). Decode the model's inputs (``mode="data"``) or
+    lower ``scale``; see docs/memory.md."""
+
+
+# share of the probe-state values allowed outside the reference box before warning
+_OUTSIDE_SHARE = 0.05
+# fewer recorded states than this set no range worth checking against
+_MIN_REFERENCE = 100
 
 
 # ====================================================================== result
@@ -250,6 +263,7 @@ def memory_curve(
     progress: bool | Callable[[int, int, str], Any] | None = None,
     threads: int | None = None,
     inputs: Any = None,
+    reference: Trace | None = None,
     **wrap_options: Any,
 ) -> MemoryCurve:
     """How many steps back a recurrent system still holds its inputs, as a curve over lag.
@@ -316,6 +330,12 @@ def memory_curve(
         Initial states, see :func:`hiddenlens.record`.
     progress : bool, optional
         Show progress bars (default: only for long runs).
+    reference : Trace, optional
+        Probe mode: states recorded on the model's own inputs. When more than 5% of the probe
+        states' values fall outside the box of the reference states (widened by 10% of each
+        unit's range), a :class:`MemoryRangeWarning` says so: the curve then describes the
+        model where its own inputs never take it. The share is in ``metadata["outside_share"]``
+        (None when unchecked: no reference, or one of fewer than 100 recorded states).
     **wrap_options
         Passed to :func:`hiddenlens.wrap` when ``model_or_system`` is not yet a system.
 
@@ -367,9 +387,20 @@ def memory_curve(
             "memory_curve(system, hiddenlens.record(system, inputs, h0))",
             DeprecationWarning, stacklevel=3)
     opts = _check_options(system, inputs, locals())
+    if reference is not None:
+        if not isinstance(reference, Trace):
+            raise TypeError(f"reference must be a Trace recorded on the model's own inputs, got "
+                            f"{type(reference).__name__}; pass hiddenlens.record(model, inputs)")
+        if reference.state_size != system.state_size:
+            raise ValueError(f"reference has {reference.state_size} states but the system has "
+                             f"{system.state_size}; record the reference with the same model")
     with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
+        outside = None
+        if reference is not None and opts["mode"] == "probe" \
+                and reference.batch_size * reference.n_steps >= _MIN_REFERENCE:
+            outside = _outside_share(trace, reference, cols)
         meta = {
             "model_class": system.source,
             "state_columns": int(len(cols)),
@@ -379,6 +410,7 @@ def memory_curve(
             "washout": opts["washout"],
             "scale": opts["scale"] if opts["mode"] == "probe" else None,
             "seed": seed,
+            "outside_share": None if outside is None else outside[0],
         }
         if opts["method"] == "decoding":
             return _decoding(trace, cols, opts, meta, progress)
@@ -482,6 +514,28 @@ def _check_options(system: RecurrentSystem, inputs: Any, given: dict[str, Any]) 
     }
 
 
+def _outside_share(trace: Trace, reference: Trace, cols: np.ndarray) -> tuple[float, ...]:
+    """Share of the probe states' values outside the reference box, and warn above 5%.
+
+    The box: each unit's range over the reference states, widened by 10% of that range (the
+    reachable region of hiddenlens._fixed_points). Returns (share, largest |s| under the
+    probes, largest |s| on the reference)."""
+    ref = np.asarray(reference.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
+    got = np.asarray(trace.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
+    lo, hi = ref.min(axis=0), ref.max(axis=0)
+    pad = 0.1 * (hi - lo)
+    share = float(np.mean((got < lo - pad) | (got > hi + pad)))
+    big, usual = float(np.abs(got).max()), float(np.abs(ref).max())
+    if share > _OUTSIDE_SHARE:
+        warnings.warn(
+            f"the probe inputs drive {100 * share:.1f}% of the state values outside the range "
+            f"they keep on the model's own inputs (largest |s| {big:.3g} under the probes, "
+            f"{usual:.3g} on the inputs): the memory curve describes the model where its own "
+            "inputs never take it; decode the model's inputs (mode='data') or lower scale",
+            MemoryRangeWarning, stacklevel=4)
+    return share, big, usual
+
+
 def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: Any,
                progress: bool | None) -> tuple[Trace, np.ndarray]:
     """Record the states; return the trace and the inputs' standard deviation per feature."""
@@ -578,14 +632,12 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
         if var.sum() > 0:
             weighted = feature_scores @ var / var.sum()  # (K + 1,)
         if np.nanmin(scores) < -1:
-            import warnings
-
             warnings.warn(
                 f"the decoders score test R^2 down to {np.nanmin(scores):.3g} (below -1: "
                 "worse than predicting the mean); the states may lie far outside what the "
                 "readout saw in training (probe inputs pushing the state out of its usual "
                 "range, or too few rows): decode the model's own inputs (mode='data') or "
-                "lower scale", RuntimeWarning, stacklevel=3)
+                "lower scale", MemoryRangeWarning, stacklevel=4)
     base = base_spread = base_cap = None
     if opts["mode"] == "data":
         w = opts["baseline_window"]

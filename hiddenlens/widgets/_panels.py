@@ -263,8 +263,9 @@ def _held_input(run: Run, options: dict[str, Any]) -> dict[str, Any]:
 
 
 def _memory_inputs(run: Run, options: dict[str, Any]) -> dict[str, Any]:
-    if options.get("mode") == "data":
-        options["inputs"] = run.inputs
+    # data mode decodes the run's recorded trace; probe mode checks its states against it
+    if options.get("mode") == "probe":
+        options["reference"] = run.trace
     return options
 
 
@@ -326,9 +327,10 @@ register(Analysis(
                                        ("perturbation", "perturbation"),
                                        ("sensitivity", "sensitivity")],
                     tip="read inputs back from the state, follow an impulse, or use gradients"),
-             Option("mode", "inputs", lambda r: "probe",
-                    choices=lambda r: [("random probe", "probe"), ("these inputs", "data")],
-                    tip="i.i.d. probe inputs (default) or the sequences given to the widget"),
+             Option("mode", "inputs", lambda r: "data",
+                    choices=lambda r: [("these inputs", "data"), ("random probe", "probe")],
+                    tip="the sequences given to the widget (default) or i.i.d. probe inputs "
+                        "(a warning says when they drive the states outside their range)"),
              Option("max_lag", "max lag", _default("memory", "max_lag", lambda r: 40),
                     high=lambda r: max(1, r.trace.n_steps - 1),
                     tip="the longest lag the memory curve reaches")),
