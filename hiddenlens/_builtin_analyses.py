@@ -286,8 +286,8 @@ def _memory_words(f: Mapping[str, Any]) -> list[str]:
     parts = []
     span, limit = f.get("memory_span"), f.get("memory_max_lag")
     # beside a task-memory span, this one is what the state keeps of the inputs themselves
-    # (random probes by default), not what it keeps of the task
-    what = "memory of random probe inputs" if finite(f.get("task_memory_span")) else \
+    # (each input channel read back), not what it keeps of the task
+    what = "memory of the raw inputs" if finite(f.get("task_memory_span")) else \
         "memory span"
     if finite(span):
         if span < 0:

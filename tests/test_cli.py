@@ -250,7 +250,9 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
         assert_allclose(run["arrays"]["lyapunov"]["exponents"], lyap.exponents, rtol=THREAD_RTOL)
         assert_allclose(run["key_figures"]["lyapunov_max"], lyap.exponents[0], rtol=THREAD_RTOL)
     if "memory" in present:
-        mem = hiddenlens.memory_curve(model, **opts["memory"])
+        # data mode by default: the memory of the demo's own inputs, on the recorded trace
+        assert opts["memory"]["mode"] == "data"
+        mem = hiddenlens.memory_curve(model, trace, **opts["memory"])
         assert run["key_figures"]["memory_span"] == mem.span
         assert_allclose(run["arrays"]["memory"]["scores"], mem.scores, rtol=THREAD_RTOL)
     if "fixed_points" in present:
