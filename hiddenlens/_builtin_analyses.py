@@ -103,8 +103,11 @@ def _budget_memory(system: Any, trace: Any, seed: int, *, options: Mapping[str, 
         # the user's sequences set the size of a data-mode curve: no probe budget; lags up to
         # 40 leaving at least half the steps (and 10) as decoded rows. Fewer sequences than
         # the 5 folds: folds are blocks of time with max_lag steps of gap on each side
-        shape = np.shape(data) if data is not None else (trace.batch_size, trace.n_steps)
-        B, T = (1, shape[0]) if len(shape) == 2 else (int(shape[0]), int(shape[1]))
+        if data is None:
+            B, T = trace.batch_size, trace.n_steps
+        else:  # (B, T, I) or one sequence (T, I)
+            shape = np.shape(data)
+            B, T = (1, int(shape[0])) if len(shape) == 2 else (int(shape[0]), int(shape[1]))
         room = min(T // 2, T - 10) if B >= 5 else (T - 10) // 4
         return {"max_lag": max(0, min(40, room)), "mode": "data", "seed": seed,
                 "progress": False}

@@ -575,3 +575,15 @@ def test_report_and_widget_default_to_the_users_inputs():
     probe = run_analyses(system, x, which=["memory"], options={"memory": {"mode": "probe"}})
     assert probe["memory"].mode == "probe"
     assert probe["memory"].metadata["outside_share"] is not None  # checked against the trace
+
+
+def test_data_mode_budget_fits_the_recorded_steps():
+    from hiddenlens._runner import run_analyses
+
+    system = _leaky_system()
+    rng = np.random.default_rng(3)
+    # 8 sequences of 150 steps: lags up to 40; 3 sequences (time-block folds): (T - 10) // 4
+    assert run_analyses(system, rng.standard_normal((8, 150, 1)),
+                        which=["memory"]).options["memory"]["max_lag"] == 40
+    assert run_analyses(system, rng.standard_normal((3, 50, 1)),
+                        which=["memory"]).options["memory"]["max_lag"] == 10
