@@ -518,22 +518,27 @@ def _outside_share(trace: Trace, reference: Trace, cols: np.ndarray) -> tuple[fl
     """Share of the probe states' values outside the reference box, and warn above 5%.
 
     The box: each unit's range over the reference states, widened by 10% of that range (the
-    reachable region of hiddenlens._fixed_points). Returns (share, largest |s| under the
-    probes, largest |s| on the reference)."""
+    reachable region of hiddenlens._fixed_points). Returns (share, the value the probes reach
+    on the unit pushed furthest past its range, that unit's reference range lo, hi)."""
     ref = np.asarray(reference.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
     got = np.asarray(trace.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
     lo, hi = ref.min(axis=0), ref.max(axis=0)
     pad = 0.1 * (hi - lo)
     share = float(np.mean((got < lo - pad) | (got > hi + pad)))
-    big, usual = float(np.abs(got).max()), float(np.abs(ref).max())
+    # the unit the probes push furthest past its range, in units of that range
+    width = np.where(hi > lo, hi - lo, 1.0)
+    excess = np.maximum(lo - got.min(axis=0), got.max(axis=0) - hi) / width  # (S,)
+    u = int(np.argmax(excess))
+    far = float(got[:, u].min() if lo[u] - got[:, u].min() > got[:, u].max() - hi[u]
+                else got[:, u].max())
     if share > _OUTSIDE_SHARE:
         warnings.warn(
             f"the probe inputs drive {100 * share:.1f}% of the state values outside the range "
-            f"they keep on the model's own inputs (largest |s| {big:.3g} under the probes, "
-            f"{usual:.3g} on the inputs): the memory curve describes the model where its own "
-            "inputs never take it; decode the model's inputs (mode='data') or lower scale",
-            MemoryRangeWarning, stacklevel=4)
-    return share, big, usual
+            f"they keep on the model's own inputs (state unit {int(cols[u])} reaches {far:.3g} "
+            f"where the inputs keep it in [{lo[u]:.3g}, {hi[u]:.3g}]): the memory curve "
+            "describes the model where its own inputs never take it; decode the model's inputs "
+            "(mode='data') or lower scale", MemoryRangeWarning, stacklevel=4)
+    return share, far, float(lo[u]), float(hi[u])
 
 
 def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: Any,
