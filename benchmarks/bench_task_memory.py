@@ -40,36 +40,30 @@ def main() -> None:
     x = 0.1 * rng.standard_normal((B, T, I)).astype(np.float32)
     x[np.arange(B), onsets, cues] += 2.0
 
+    print(f"torch threads {torch.get_num_threads()}", flush=True)
     t0 = time.perf_counter()
     trace = hiddenlens.record(gru, x)
     t_record = time.perf_counter() - t0
-    loads = [_load()]
+    print(f"record H={H} T={T} B={B}: {t_record:.2f} s (load {_load()})", flush=True)
 
     t0 = time.perf_counter()
     r = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG, cross_temporal=False)
-    t_curve = time.perf_counter() - t0
-    loads.append(_load())
+    t = time.perf_counter() - t0
+    print(f"task_memory logistic, max_lag={MAX_LAG}: {t:.2f} s = {t / t_record:.1f}x recording "
+          f"(target 20x); span {r.span} (load {_load()})", flush=True)
 
     t0 = time.perf_counter()
-    rc = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG)
-    t_cross = time.perf_counter() - t0
-    loads.append(_load())
+    r = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG)
+    t = time.perf_counter() - t0
+    print(f"task_memory logistic + cross-temporal {MAX_LAG + 1}x{MAX_LAG + 1}: {t:.2f} s = "
+          f"{t / t_record:.1f}x recording (target 60x); span {r.span} (load {_load()})",
+          flush=True)
 
     t0 = time.perf_counter()
     hiddenlens.task_memory(trace, cues.astype(float), onsets=onsets, max_lag=MAX_LAG)
-    t_ridge = time.perf_counter() - t0
-    loads.append(_load())
-
-    print(f"torch threads {torch.get_num_threads()}")
-    print(f"record H={H} T={T} B={B}: {t_record:.2f} s (load {loads[0]})")
-    print(f"task_memory logistic, max_lag={MAX_LAG}: {t_curve:.2f} s = "
-          f"{t_curve / t_record:.1f}x recording (target 20x); span {r.span} (load {loads[1]})")
-    print(f"task_memory logistic + cross-temporal {MAX_LAG + 1}x{MAX_LAG + 1}: {t_cross:.2f} s "
-          f"= {t_cross / t_record:.1f}x recording (target 60x); span {rc.span} "
-          f"(load {loads[2]})")
-    print(f"task_memory ridge + cross-temporal: {t_ridge:.2f} s = "
-          f"{t_ridge / t_record:.1f}x recording (load {loads[3]})")
-
+    t = time.perf_counter() - t0
+    print(f"task_memory ridge + cross-temporal: {t:.2f} s = {t / t_record:.1f}x recording "
+          f"(load {_load()})", flush=True)
 
 if __name__ == "__main__":
     main()
