@@ -19,6 +19,10 @@ import hiddenlens
 H, T, B, I, MAX_LAG = 256, 500, 256, 4, 100
 
 
+def _load() -> str:
+    return "/".join(f"{v:.1f}" for v in os.getloadavg())  # 1, 5 and 15 min averages
+
+
 def main() -> None:
     global H, T, B, MAX_LAG
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -36,31 +40,30 @@ def main() -> None:
     x = 0.1 * rng.standard_normal((B, T, I)).astype(np.float32)
     x[np.arange(B), onsets, cues] += 2.0
 
+    print(f"torch threads {torch.get_num_threads()}", flush=True)
     t0 = time.perf_counter()
     trace = hiddenlens.record(gru, x)
     t_record = time.perf_counter() - t0
+    print(f"record H={H} T={T} B={B}: {t_record:.2f} s (load {_load()})", flush=True)
 
     t0 = time.perf_counter()
     r = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG, cross_temporal=False)
-    t_curve = time.perf_counter() - t0
+    t = time.perf_counter() - t0
+    print(f"task_memory logistic, max_lag={MAX_LAG}: {t:.2f} s = {t / t_record:.1f}x recording "
+          f"(target 20x); span {r.span} (load {_load()})", flush=True)
 
     t0 = time.perf_counter()
-    rc = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG)
-    t_cross = time.perf_counter() - t0
+    r = hiddenlens.task_memory(trace, cues, onsets=onsets, max_lag=MAX_LAG)
+    t = time.perf_counter() - t0
+    print(f"task_memory logistic + cross-temporal {MAX_LAG + 1}x{MAX_LAG + 1}: {t:.2f} s = "
+          f"{t / t_record:.1f}x recording (target 60x); span {r.span} (load {_load()})",
+          flush=True)
 
     t0 = time.perf_counter()
     hiddenlens.task_memory(trace, cues.astype(float), onsets=onsets, max_lag=MAX_LAG)
-    t_ridge = time.perf_counter() - t0
-
-    print(f"load average {os.getloadavg()}, torch threads {torch.get_num_threads()}")
-    print(f"record H={H} T={T} B={B}: {t_record:.2f} s")
-    print(f"task_memory logistic, max_lag={MAX_LAG}: {t_curve:.2f} s = "
-          f"{t_curve / t_record:.1f}x recording (target 20x); span {r.span}")
-    print(f"task_memory logistic + cross-temporal {MAX_LAG + 1}x{MAX_LAG + 1}: {t_cross:.2f} s "
-          f"= {t_cross / t_record:.1f}x recording (target 60x); span {rc.span}")
-    print(f"task_memory ridge + cross-temporal: {t_ridge:.2f} s = "
-          f"{t_ridge / t_record:.1f}x recording")
-
+    t = time.perf_counter() - t0
+    print(f"task_memory ridge + cross-temporal: {t:.2f} s = {t / t_record:.1f}x recording "
+          f"(load {_load()})", flush=True)
 
 if __name__ == "__main__":
     main()

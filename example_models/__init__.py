@@ -57,11 +57,15 @@ from torch import nn
 __all__ = [
     "RUNS",
     "Run",
+    "TaskTrials",
     "list_runs",
     "load_run",
+    "load_tally",
     "make_run_inputs",
     "probe_inputs_path",
     "task_metrics",
+    "tally_weights_path",
+    "task_trials",
     "weights_path",
 ]
 
@@ -167,6 +171,31 @@ def load_run(name: str) -> nn.Module:
     return model.eval()
 
 
+def tally_weights_path() -> Path:
+    """Path of the trained buffer-tally integrator's ``state_dict`` (``weights/tally-rnn.pt``;
+    ``python -m hiddenlens.examples.train --tally`` writes it)."""
+    return _HERE / "weights" / "tally-rnn.pt"
+
+
+def load_tally() -> nn.Module:
+    """The tanh RNN trained on the buffer tally (:func:`sorting_line.make_tally`), in eval
+    mode: an integrator of crates entering (+1) and leaving (-1) the buffer lane, whose zero
+    input holds a line of slow points (a line attractor).
+
+    Not one of :data:`RUNS` (its inputs are the tally's two light barriers, not the sorting
+    line's five channels). Weights are read with ``torch.load(..., weights_only=True)``.
+    """
+    from .sorting_line import make_tally_rnn
+
+    path = tally_weights_path()
+    if not path.is_file():
+        raise FileNotFoundError(f"weights of the buffer tally not found at {path}; create them "
+                                "with `python -m hiddenlens.examples.train --tally`")
+    model = make_tally_rnn()
+    model.load_state_dict(torch.load(path, map_location="cpu", weights_only=True))
+    return model.eval()
+
+
 def make_run_inputs(
     name: str, n_sequences: int = 16, n_steps: int | None = None, *, seed: int = 0
 ) -> np.ndarray:
@@ -178,6 +207,62 @@ def make_run_inputs(
     if n_steps is None:
         return task.make_inputs(n_sequences, seed=seed)
     return task.make_inputs(n_sequences, n_steps, seed=seed)
+
+
+class TaskTrials(NamedTuple):
+    """Trials of a run's task with the task variable to decode (:func:`task_trials`).
+
+    Attributes
+    ----------
+    inputs : ndarray of shape (B, T, I), float32
+    targets : ndarray of shape (B,), int64
+        The task variable of each trial, an index into ``labels``.
+    onsets : ndarray of shape (B,), int64
+        The step each trial's lags count from.
+    labels : tuple of str
+        The names of the target values.
+    description : str
+        What the trials are and what is decoded, in words.
+    """
+
+    inputs: np.ndarray
+    targets: np.ndarray
+    onsets: np.ndarray
+    labels: tuple[str, ...]
+    description: str
+
+
+def task_trials(name: str, n_sequences: int = 96, *, seed: int = 0) -> TaskTrials:
+    """Trials of run ``name``'s task with its task variable, ready for task memory.
+
+    Sorting line: one crate per trial (:func:`sorting_line.make_trials`, 80 steps, no gate
+    cue), the target its tag colour, the onset its tag flash. Greenhouse: one calm day of a
+    known weather per trial (:func:`greenhouse.make_days`, 300 steps), the target that weather,
+    the onset its sunset.
+
+    Examples
+    --------
+    >>> import hiddenlens
+    >>> from hiddenlens.examples import load_run, task_trials
+    >>> trials = task_trials("gru")
+    >>> hiddenlens.explore(load_run("gru"), trials.inputs, targets=trials.targets,
+    ...                    onsets=trials.onsets)  # doctest: +SKIP
+    """
+    task = _run(name).task
+    if task == _SORTING:
+        from . import sorting_line
+
+        t = sorting_line.make_trials(n_sequences, 80, seed=seed)
+        return TaskTrials(t.inputs, t.colour, t.onset, sorting_line.BINS,
+                          f"{n_sequences} one-crate trials of 80 steps; the crate's tag colour "
+                          "decoded at each step after its flash")
+    from . import greenhouse
+
+    d = greenhouse.make_days(n_sequences, 300, seed=seed)
+    return TaskTrials(d.inputs, d.weather, d.sunset, greenhouse.WEATHER,
+                      f"{n_sequences} greenhouse sequences of 300 steps, each starting with one "
+                      "calm day of known weather; the weather decoded at each step after "
+                      "sunset")
 
 
 # Task facts for the diagnosis: chance accuracy (three tag colours, uniform) and the horizon,

@@ -20,9 +20,24 @@ import torch
 
 from ._nets import RecurrentReadout, check_count, check_seed
 
-__all__ = ["BINS", "IGNORE", "N_INPUTS", "CueTrials", "SortingLineData", "SortingLineNet",
-    "accuracy", "cue_events", "make_dataset", "make_gru", "make_inputs", "make_tanh_rnn",
-    "make_trials"]
+__all__ = [
+    "BINS",
+    "IGNORE",
+    "N_INPUTS",
+    "CueTrials",
+    "SortingLineData",
+    "SortingLineNet",
+    "TallyData",
+    "accuracy",
+    "cue_events",
+    "make_dataset",
+    "make_gru",
+    "make_inputs",
+    "make_tally",
+    "make_tally_rnn",
+    "make_tanh_rnn",
+    "make_trials",
+]
 
 BINS: tuple[str, ...] = ("red", "green", "yellow")
 N_INPUTS = 5
@@ -281,3 +296,59 @@ def accuracy(
     logits = model(torch.as_tensor(np.asarray(inputs), dtype=dtype))  # (B, T, 3)
     predicted = logits.argmax(dim=-1).numpy()  # (B, T)
     return float(np.mean(predicted[mask] == targets[mask]))
+
+
+# ---------------------------------------------------------------------- the buffer tally
+#: crates per unit of the tally's output: the output stays near the tanh units' range
+TALLY_UNIT = 5.0
+_TALLY_RATE = 0.08  # chance per step that a crate enters the buffer lane (and that one leaves)
+
+
+class TallyData(NamedTuple):
+    """Sequences of the buffer tally: crates entering and leaving the buffer lane.
+
+    Attributes
+    ----------
+    inputs : ndarray of shape (B, T, 2), float32
+        Channel 0: a crate enters the buffer lane (1 for one step); channel 1: one leaves.
+    targets : ndarray of shape (B, T, 1), float32
+        The running count of crates in the lane (entered minus left since the start), in units
+        of :data:`TALLY_UNIT` crates.
+    """
+
+    inputs: np.ndarray
+    targets: np.ndarray
+
+
+def make_tally(n_sequences: int = 32, n_steps: int = 50, *, seed: int = 0) -> TallyData:
+    """The buffer tally: keep a running count of the crates in the buffer lane.
+
+    Before the diverter, crates queue in a buffer lane; a light barrier at its entrance and
+    one at its exit each flash for one step when a crate passes (each with chance 0.08 per
+    step, never both at once). The network outputs the count so far, in units of 5 crates:
+    an integrator, which between events must hold any count it has reached. A network that
+    learns it well has a line of slow points under zero input, one per count (a line
+    attractor; Seung 1996, Sussillo & Barak 2013).
+    """
+    n_seq = check_count("n_sequences", n_sequences, 1, 32)
+    n_t = check_count("n_steps", n_steps, 1, 50)
+    rng = np.random.default_rng(check_seed(seed))
+    event = rng.random((n_seq, n_t))  # (B, T)
+    inputs = np.zeros((n_seq, n_t, 2), dtype=np.float32)  # (B, T, 2)
+    inputs[..., 0] = event < _TALLY_RATE
+    inputs[..., 1] = event > 1.0 - _TALLY_RATE
+    count = np.cumsum(inputs[..., 0] - inputs[..., 1], axis=1)  # (B, T)
+    return TallyData(inputs, (count / TALLY_UNIT)[..., None].astype(np.float32))
+
+
+class TallyNet(RecurrentReadout):
+    """tanh ``nn.RNN`` plus a linear readout for the buffer tally: (B, T, 2) -> (B, T, 1)."""
+
+    def __init__(self, hidden_size: int = 16, *, gain: float = 1.0, seed: int = 0) -> None:
+        super().__init__(2, 1, cell="rnn", hidden_size=hidden_size, gain=gain, input_std=0.5,
+                         seed=seed)
+
+
+def make_tally_rnn(*, gain: float = 1.0, seed: int = 0) -> TallyNet:
+    """Untrained tanh ``nn.RNN`` buffer-tally model with 16 states."""
+    return TallyNet(16, gain=gain, seed=seed)

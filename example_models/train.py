@@ -23,7 +23,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from . import RUNS, list_runs, probe_inputs_path, weights_path
+from . import RUNS, list_runs, probe_inputs_path, tally_weights_path, weights_path
 from . import greenhouse as gh
 from . import sorting_line as sl
 from ._nets import RecurrentReadout, recurrent_spectral_radii
@@ -207,6 +207,28 @@ def fit(
     return model.eval()
 
 
+def fit_tally(*, steps: int = 800, seed: int = 0, lr: float = 3e-3) -> RecurrentReadout:
+    """Train :func:`sorting_line.make_tally_rnn` on the buffer tally; returned in eval mode.
+
+    A few seconds on one CPU core: Adam, batches of 32 sequences of 50 steps (data seed
+    TRAIN_SEED + k for batch k), mean squared error on every step, gradient norm clipped at 1.
+    The trained net integrates its inputs: ``hiddenlens.find_fixed_points`` finds its line
+    attractor with default settings (tests/test_example_models.py).
+    """
+    model = sl.make_tally_rnn(seed=seed)
+    optimiser = torch.optim.Adam(model.parameters(), lr=lr)
+    model.train()
+    for k in range(steps):
+        data = sl.make_tally(32, 50, seed=TRAIN_SEED + k)
+        x, y = torch.from_numpy(data.inputs), torch.from_numpy(data.targets)
+        loss = nn.functional.mse_loss(model(x), y)
+        optimiser.zero_grad()
+        loss.backward()
+        nn.utils.clip_grad_norm_(model.parameters(), 1.0)
+        optimiser.step()
+    return model.eval()
+
+
 def train_run(name: str, *, log_every: int = 250) -> tuple[RecurrentReadout, dict]:
     """Train run ``name`` from its recipe; returns the model (eval mode) and its figures."""
     recipe = RECIPES[name]
@@ -305,24 +327,44 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument(
         "--no-save", action="store_true", help="train and report without writing any file"
     )
+    parser.add_argument(
+        "--tally", action="store_true",
+        help="retrain only the buffer-tally integrator (weights/tally-rnn.pt)",
+    )
     args = parser.parse_args(argv)
-    names = args.only or list_runs()
+    names = [] if args.tally and not args.only else (args.only or list_runs())
+    tally = args.tally or not args.only
     threads = torch.get_num_threads()
     # One thread is faster for these small layers and keeps the arithmetic order fixed.
     torch.set_num_threads(1)
     torch.set_flush_denormal(True)  # saturated tanh units otherwise slow the CPU down
     try:
-        return _train_and_report(names, save=not args.no_save)
+        return _train_and_report(names, save=not args.no_save, tally=tally)
     finally:
         torch.set_num_threads(threads)
         torch.set_flush_denormal(False)
 
 
-def _train_and_report(names: Sequence[str], *, save: bool) -> int:
+def _train_and_report(names: Sequence[str], *, save: bool, tally: bool = False) -> int:
     print(f"torch {torch.__version__}, {torch.get_num_threads()} thread(s)")
     if save:
         _write_probe_inputs()
     lines = []
+    if tally:
+        start = time.perf_counter()
+        model = fit_tally()
+        data = sl.make_tally(256, 50, seed=EVAL_SEED)
+        with torch.no_grad():
+            mse = float(nn.functional.mse_loss(model(torch.from_numpy(data.inputs)),
+                                               torch.from_numpy(data.targets)))
+        lines.append(f"{'tally-rnn':<16} {time.perf_counter() - start:6.1f} s  "
+                     f"MSE {mse:.4f} (target variance {float(np.var(data.targets)):.4f})")
+        print(lines[-1])
+        if save:
+            path = tally_weights_path()
+            state = {k: v.detach().clone().contiguous() for k, v in model.state_dict().items()}
+            _atomic_write_bytes(path, lambda p: torch.save(state, p))
+            print(f"  wrote {path} ({path.stat().st_size} bytes)")
     for name in names:
         print(f"training {name} ...")
         model, figures = train_run(name)

@@ -66,6 +66,7 @@ _LAZY = {
     "TaskMemory": "_analyses.task_memory",
     "FixedPoints": "_analyses.fixed_points",
     "MemoryCurve": "_analyses.memory",
+    "MemoryRangeWarning": "_analyses.memory",
     "RunComparison": "_analyses.compare",
     # over training and across runs
     "Monitor": "_training.monitor",

@@ -257,7 +257,9 @@ def test_demo_report_on_the_example_models(tmp_path, capsys):
         assert_allclose(run["arrays"]["lyapunov"]["exponents"], lyap.exponents, rtol=THREAD_RTOL)
         assert_allclose(run["key_figures"]["lyapunov_max"], lyap.exponents[0], rtol=THREAD_RTOL)
     if "memory" in present:
-        mem = hiddenlens.memory_curve(model, **opts["memory"])
+        # data mode by default: the memory of the demo's own inputs, on the recorded trace
+        assert opts["memory"]["mode"] == "data"
+        mem = hiddenlens.memory_curve(model, trace, **opts["memory"])
         assert run["key_figures"]["memory_span"] == mem.span
         assert_allclose(run["arrays"]["memory"]["scores"], mem.scores, rtol=THREAD_RTOL)
     if "fixed_points" in present:
@@ -337,3 +339,16 @@ def test_report_takes_targets_and_onsets(weights, tmp_path, capsys):
     assert "task_memory_span" in run["key_figures"]
     code = cli.main([*base, "--targets", str(tmp_path / "y.npz"), "-o", str(tmp_path / "s")])
     assert code == 1 and "pick one with --targets" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not _demo_weights_present(), reason="example weights not trained yet")
+def test_demo_of_the_greenhouse_decodes_the_weather(tmp_path, capsys):
+    code = cli.main(["demo", "--task", "greenhouse", "--analyses", "pca", "task_memory",
+                     "-o", str(tmp_path / "gh"), "-q"])
+    assert code == 0
+    doc = json.loads((tmp_path / "gh" / "report.json").read_text())
+    figs = doc["runs"]["greenhouse-lstm"]["key_figures"]
+    # the day's weather stays decodable into the night (tests/test_example_models.py)
+    assert figs["task_memory_span"] >= 20 and figs["task_memory_score"] == "balanced accuracy"
+    assert "weather decoded at each step after sunset" in doc["inputs"]["description"]

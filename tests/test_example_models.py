@@ -359,3 +359,109 @@ def test_cue_events_match_the_dataset():
     assert seq.size == int((data.targets != sl.IGNORE).sum())
     assert np.all(data.inputs[seq, onset, colour] > 0.5)  # the tag flash of each crate
     assert np.all(data.inputs[seq, onset + delay, 3] > 0.5)  # its gate cue
+
+
+def test_weather_days_ship_their_task_variable():
+    days = gh.make_days(30, 200, seed=4)
+    B, T = 30, 200
+    assert days.inputs.shape == (B, T, 3) and days.weather.shape == (B,)
+    assert np.all(days.sunset == days.sunrise + 75)  # half of the 150-step day-night cycle
+    steps = np.arange(T)[None]
+    first_day = (steps >= days.sunrise[:, None]) & (steps < days.sunset[:, None])
+    # clear-sky sunlight of the day: sin(2 pi (t - sunrise) / 150) on the lit steps
+    clear = np.sin(2 * np.pi * (steps - days.sunrise[:, None]) / 150)
+    lit = first_day & (clear > 0.1)
+    cloud = days.inputs[..., 0] / np.where(lit, clear, 1.0)
+    level = np.array([0.45, 0.7, 0.95])[days.weather][:, None]
+    assert np.all(np.abs(np.where(lit, cloud - level, 0.0)) <= 0.05 + 1e-6)
+    assert np.all(days.inputs[..., 2][first_day] == 0.0)  # heater off on the calm day
+    assert np.allclose(days.inputs[..., 1][first_day], 0.5)  # vent half open
+    np.testing.assert_allclose(days.targets[..., 0], gh.air_temperature(days.inputs), rtol=1e-5,
+                               atol=1e-5)
+    means = [days.sunshine[days.weather == k].mean() for k in range(3)]
+    assert means[0] < means[1] < means[2]
+    np.testing.assert_array_equal(gh.make_days(30, 200, seed=4).inputs, days.inputs)
+    with pytest.raises(ValueError, match="before the latest sunset"):
+        gh.make_days(4, 90)
+
+
+def test_task_trials_of_every_run():
+    for name in example_models.list_runs():
+        trials = example_models.task_trials(name, 12, seed=1)
+        B = 12
+        assert trials.targets.shape == (B,) and trials.onsets.shape == (B,)
+        assert trials.inputs.shape[0] == B and trials.targets.max() < len(trials.labels)
+        assert trials.onsets.max() < trials.inputs.shape[1]
+    with pytest.raises(KeyError, match="no example run"):
+        example_models.task_trials("nope")
+
+
+@pytest.mark.skipif(not example_models.weights_path("greenhouse-lstm").is_file(),
+                    reason="example weights not trained yet")
+def test_greenhouse_lstm_keeps_the_days_weather_into_the_night():
+    # the air (time constant 20 steps) and the soil (150 steps) carry the day's sunshine into
+    # the night (example_models/greenhouse.py); the trained LSTM predicts the air temperature,
+    # so it must keep the weather well past sunset
+    import hiddenlens
+
+    trials = example_models.task_trials("greenhouse-lstm", 48, seed=0)
+    trace = hiddenlens.record(example_models.load_run("greenhouse-lstm"), trials.inputs)
+    tm = hiddenlens.task_memory(trace, trials.targets, onsets=trials.onsets, max_lag=50,
+                                n_folds=3, n_permutations=19, cross_temporal=False, max_iter=100)
+    assert tm.scores[0] > 0.9 and tm.span >= 20
+
+
+def test_buffer_tally_counts_crates():
+    data = sl.make_tally(8, 60, seed=2)
+    x = data.inputs
+    assert not np.any((x[..., 0] > 0) & (x[..., 1] > 0))  # never in and out at once
+    np.testing.assert_allclose(data.targets[..., 0] * sl.TALLY_UNIT,
+                               np.cumsum(x[..., 0] - x[..., 1], axis=1))
+
+
+@pytest.mark.skipif(not example_models.tally_weights_path().is_file(),
+                    reason="tally weights not trained yet")
+def test_line_attractor_of_the_trained_integrator_with_default_settings():
+    # An RNN trained to integrate has a line of slow points under zero input, along which the
+    # Jacobian has an eigenvalue near 1 (Seung 1996; Sussillo & Barak 2013; Mante et al. 2013)
+    import hiddenlens
+
+    model = example_models.load_tally()
+    data = sl.make_tally(64, 50, seed=1)
+    with torch.no_grad():
+        out = model(torch.from_numpy(data.inputs))
+    # it integrates: the shipped weights' error is small against the count's variance
+    assert float(torch.mean((out - torch.from_numpy(data.targets)) ** 2)) < 0.1 * np.var(
+        data.targets)
+    trace = hiddenlens.record(model, data.inputs)
+    fp = hiddenlens.find_fixed_points(model, trace)  # default settings
+    assert fp.slow_set_dimension == 1
+    assert fp.summary.startswith("approximate line attractor:")
+    assert "along one direction" in fp.summary
+    members = int(np.asarray(fp.in_slow_set).sum())
+    assert members >= 50 and abs(fp.tangent_eigenvalue - 1) < 0.05
+    # reference: numpy's eigenvalues of torch.func's Jacobian of the step at the middle member
+    rnn = model.rnn
+    order = np.asarray(fp.slow_set_order)
+    s = torch.tensor(fp.points[order[len(order) // 2]], dtype=torch.float32)
+
+    def step(h):
+        return torch.tanh(rnn.weight_hh_l0 @ h + rnn.bias_hh_l0 + rnn.bias_ih_l0)  # x* = 0
+
+    J = torch.func.jacrev(step)(s).detach().double().numpy()
+    assert np.min(np.abs(np.abs(np.linalg.eigvals(J)) - 1)) < 0.05
+    # along the line, the readout runs through the counts the net held: ordered points give an
+    # ordered count (scipy's Spearman rank correlation)
+    with torch.no_grad():
+        count = model.readout(torch.tensor(fp.points[order], dtype=torch.float32))[:, 0]
+    rho = stats.spearmanr(np.arange(len(order)), count.numpy()).statistic
+    assert abs(rho) > 0.95
+    assert float(count.max() - count.min()) > 1.0  # more than 5 crates of range
+
+
+def test_fit_tally_trains_from_its_seed():
+    from hiddenlens.examples.train import fit_tally
+
+    a, b = fit_tally(steps=3), fit_tally(steps=3)
+    for (k, v), w in zip(a.state_dict().items(), b.state_dict().values()):
+        assert torch.equal(v, w), k

@@ -514,3 +514,76 @@ def test_variance_weighted_r2_beside_the_mean():
     assert two.weighted_scores.shape == (5,)
     w = np.array([1.0, 9.0])
     np.testing.assert_allclose(two.weighted_scores, two.feature_scores @ w / w.sum(), rtol=0.05)
+
+
+# ---------------------------------------------------------------------- range warnings
+def _leaky_system(a=0.9):
+    def step(s, x):
+        return a * s + x
+
+    return hiddenlens.wrap(step, state_size=1, input_size=1, dtype=torch.float64)
+
+
+def test_probes_outside_the_recorded_range_warn():
+    system = _leaky_system()
+    rng = np.random.default_rng(0)
+    small = hiddenlens.record(system, 0.01 * rng.standard_normal((4, 300, 1)))
+    with pytest.warns(hiddenlens.MemoryRangeWarning, match="outside the range"):
+        curve = memory_curve(system, max_lag=5, reference=small, n_steps=400)
+    # reference: the share of probe states outside the reference box widened by 10% of its
+    # range, recomputed with numpy from a recording of the same probes
+    probe = np.random.default_rng(0).standard_normal((5, 400, 1))
+    states = hiddenlens.record(system, probe).states.ravel()
+    lo, hi = small.states.min(), small.states.max()
+    pad = 0.1 * (hi - lo)
+    expected = np.mean((states < lo - pad) | (states > hi + pad))
+    np.testing.assert_allclose(curve.metadata["outside_share"], expected)
+    # probes of the inputs' own scale stay inside: no warning (warnings are errors here)
+    wide = hiddenlens.record(system, rng.standard_normal((8, 2000, 1)))
+    quiet = memory_curve(system, max_lag=5, reference=wide, n_steps=400)
+    assert quiet.metadata["outside_share"] <= 0.05
+    with pytest.raises(TypeError, match="reference must be a Trace"):
+        memory_curve(system, max_lag=5, reference=small.states)
+
+
+def test_test_r2_below_minus_one_warns():
+    # the state holds only channel 1; channel 0 is a per-sequence offset with tiny spread, so
+    # a held-out sequence's offset is predicted by the training mean: R^2 far below -1
+    # (scikit-learn's r2_score convention, 1 - SSE / SST)
+    def step(s, x):
+        return x[..., 1:]
+
+    system = hiddenlens.wrap(step, state_size=1, input_size=2, dtype=torch.float64)
+    rng = np.random.default_rng(1)
+    x = np.stack([np.arange(5)[:, None] + 0.01 * rng.standard_normal((5, 60)),
+                  rng.standard_normal((5, 60))], axis=-1)
+    with pytest.warns(hiddenlens.MemoryRangeWarning, match="below -1"):
+        curve = memory_curve(system, hiddenlens.record(system, x), max_lag=2)
+    assert curve.scores.min() < -1
+
+
+def test_report_and_widget_default_to_the_users_inputs():
+    from hiddenlens._analyses.runner import run_analyses
+
+    system = _leaky_system()
+    x = np.random.default_rng(2).standard_normal((4, 60, 1))
+    out = run_analyses(system, x, which=["memory"])
+    assert out["memory"].mode == "data" and out.options["memory"]["mode"] == "data"
+    direct = memory_curve(system, out.trace, **{k: v for k, v in out.options["memory"].items()
+                                                if k != "mode"})
+    np.testing.assert_allclose(out["memory"].scores, direct.scores)
+    probe = run_analyses(system, x, which=["memory"], options={"memory": {"mode": "probe"}})
+    assert probe["memory"].mode == "probe"
+    assert probe["memory"].metadata["outside_share"] is not None  # checked against the trace
+
+
+def test_data_mode_budget_fits_the_recorded_steps():
+    from hiddenlens._analyses.runner import run_analyses
+
+    system = _leaky_system()
+    rng = np.random.default_rng(3)
+    # 8 sequences of 150 steps: lags up to 40; 3 sequences (time-block folds): (T - 10) // 4
+    assert run_analyses(system, rng.standard_normal((8, 150, 1)),
+                        which=["memory"]).options["memory"]["max_lag"] == 40
+    assert run_analyses(system, rng.standard_normal((3, 50, 1)),
+                        which=["memory"]).options["memory"]["max_lag"] == 10

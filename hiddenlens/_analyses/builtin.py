@@ -31,16 +31,18 @@ Runs = Sequence[tuple[str, Any]]
 
 # ---------------------------------------------------------------------- call adapters
 def _call_memory(fn: Callable[..., Any], system: Any, trace: Any, **opts: Any) -> Any:
-    # probe mode unless the caller gives the data: i.i.d. probes keep the inputs' own
-    # autocorrelation out of the curve. Data mode: the recorded trace, or sequences given as
-    # options={"memory": {"inputs": x}} (recorded here, once)
+    # data mode on the recorded trace by default: the model's own inputs keep its states where
+    # it works (probes once drove a trained LSTM's |c| to 1903, against 28 on its inputs).
+    # Sequences given as options={"memory": {"inputs": x}} are recorded here, once; probe mode
+    # on request, its states checked against the recorded trace's range
     data = opts.pop("inputs", None)
     if data is not None:
         from .._core.record import record
 
         return fn(system, record(system, data), **opts)
-    if opts.get("mode") == "data":
+    if opts.get("mode", "data") == "data":
         return fn(system, trace, **opts)
+    opts.setdefault("reference", trace)
     return fn(system, **opts)  # memory_curve(system): probe mode
 
 
@@ -107,20 +109,41 @@ def _budget_fixed_points(system: Any, trace: Any, seed: int) -> dict[str, Any]:
 
 def _budget_memory(system: Any, trace: Any, seed: int, *, options: Mapping[str, Any]
                    ) -> dict[str, Any]:
-    if options.get("inputs") is not None or options.get("mode") == "data":
-        # the user's sequences set the size of a data-mode curve: no probe budget
-        return {"max_lag": 40, "seed": seed, "progress": False}
+    data = options.get("inputs")
+    # probe-only options without a mode ask for probe mode
+    probing = any(options.get(k) is not None for k in ("n_sequences", "n_steps"))
+    if data is not None or options.get("mode", "probe" if probing else "data") == "data":
+        # the user's sequences set the size of a data-mode curve: no probe budget; lags up to
+        # 40 leaving at least half the steps (and 10) as decoded rows. Fewer sequences than
+        # the 5 folds: folds are blocks of time with max_lag steps of gap on each side
+        if data is None:
+            B, T = trace.batch_size, trace.n_steps
+        else:  # (B, T, I) or one sequence (T, I)
+            shape = np.shape(data)
+            B, T = (1, int(shape[0])) if len(shape) == 2 else (int(shape[0]), int(shape[1]))
+        room = min(T // 2, T - 10) if B >= 5 else (T - 10) // 4
+        return {"max_lag": max(0, min(40, room)), "mode": "data", "seed": seed,
+                "progress": False}
     # probe mode: 5 sequences of 600 counted steps fit 41 lags of ridge readouts in well under
     # a second for S = 32 (the library default of 2000 steps is for final numbers)
-    return {"max_lag": 40, "n_steps": 40 + 600, "seed": seed, "progress": False}
+    return {"max_lag": 40, "n_steps": 40 + 600, "mode": "probe", "seed": seed,
+            "progress": False}
 
 
-def _budget_task_memory(system: Any, trace: Any, seed: int) -> dict[str, Any]:
+def _budget_task_memory(system: Any, trace: Any, seed: int, *,
+                        options: Mapping[str, Any] | None = None) -> dict[str, Any]:
     # 19 permutations reach the 5% band (the smallest p-value is 1/20); 3 folds of whole
     # sequences, lags up to 50 and no cross-temporal matrix keep the shipped 64-unit GRU on 96
     # trials at a few seconds (the library defaults, 5 folds x 20 permutations with the
     # matrix, are for final numbers)
-    return {"max_lag": min(50, max(trace.n_steps - 1, 0)), "n_folds": 3,
+    options = options or {}
+    data = options.get("inputs")
+    T = int(np.shape(data)[1]) if data is not None and np.ndim(data) == 3 else trace.n_steps
+    onsets = options.get("onsets")
+    latest = int(np.max(onsets)) if onsets is not None and np.size(onsets) else 0
+    per_step = np.ndim(options.get("targets")) == 2 and np.shape(options["targets"])[1] > 1
+    room = (T - latest) // 2 if per_step else T - 1 - latest
+    return {"max_lag": max(0, min(50, room)), "n_folds": 3,
             "n_permutations": 19, "cross_temporal": False, "max_iter": 100, "seed": seed}
 
 
@@ -290,8 +313,8 @@ def _memory_words(f: Mapping[str, Any]) -> list[str]:
     parts = []
     span, limit = f.get("memory_span"), f.get("memory_max_lag")
     # beside a task-memory span, this one is what the state keeps of the inputs themselves
-    # (random probes by default), not what it keeps of the task
-    what = "memory of random probe inputs" if finite(f.get("task_memory_span")) else \
+    # (each input channel read back), not what it keeps of the task
+    what = "memory of the raw inputs" if finite(f.get("task_memory_span")) else \
         "memory span"
     if finite(span):
         if span < 0:

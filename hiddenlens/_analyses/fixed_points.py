@@ -501,10 +501,7 @@ def _slow_set(P: np.ndarray, J: np.ndarray, fixed: np.ndarray, outside: Any,
             explained = var / total
             d = int(np.searchsorted(np.cumsum(explained), 0.95) + 1)
             T = Vt[:d].T  # (S, d)
-            restricted = np.einsum("sd,msr,re->mde", T, J[member], T)  # (k, d, d)
-            ev = np.abs(np.linalg.eigvals(restricted))  # (k, d)
-            closest = np.take_along_axis(ev, np.argmin(np.abs(ev - 1), axis=1)[:, None], 1)
-            lam_t = float(np.median(closest))
+            lam_t = float(np.median(_tangent_moduli(J[member], T)))
             if abs(lam_t - 1) <= margin:
                 dim, lam = d, lam_t
                 coord = (P - mean) @ Vt[0]
@@ -533,6 +530,21 @@ def _slow_set(P: np.ndarray, J: np.ndarray, fixed: np.ndarray, outside: Any,
             "slow_set_coordinate": readonly(coord, np.float64),
             "slow_set_order": readonly(order, np.int64), "tangent_eigenvalue": lam,
             "summary": words}
+
+
+def _tangent_moduli(J: np.ndarray, T: np.ndarray) -> np.ndarray:
+    """Per point, the |λ| closest to 1 among the d eigenvalues of J whose eigenvectors lie
+    most in the tangent span of T (S, d): (k,).
+
+    Eigenvectors rather than the restriction Tᵀ J T, whose eigenvalues differ from J's when J
+    is not normal (a trained net's Jacobian: the Rayleigh quotient along a line attractor's
+    tangent read 1.10 where its eigenvalue was 1.03)."""
+    d = T.shape[1]
+    w, v = np.linalg.eig(J)  # (k, S), (k, S, S) columns unit-norm
+    along = np.linalg.norm(np.einsum("sd,msj->mdj", T, v), axis=1)  # (k, S) in [0, 1]
+    top = np.argsort(-along, axis=1)[:, :d]  # (k, d)
+    mod = np.abs(np.take_along_axis(w, top, axis=1))  # (k, d)
+    return np.take_along_axis(mod, np.argmin(np.abs(mod - 1), axis=1)[:, None], 1)[:, 0]
 
 
 def _mean_input(x: Any, trace: Any, I: int) -> Any:

@@ -29,7 +29,7 @@ from .._core.validation import check_trace_finite, check_trace_fits
 if TYPE_CHECKING:  # the aliases of the public signatures
     from .._core.aliases import ModelLike
 
-__all__ = ["MemoryCurve", "memory_curve"]
+__all__ = ["MemoryCurve", "MemoryRangeWarning", "memory_curve"]
 
 METHODS = ("decoding", "perturbation", "sensitivity")
 MODES = ("probe", "data")
@@ -37,6 +37,19 @@ DEFAULT_ALPHAS = tuple(float(a) for a in np.logspace(-4, 6, 11))
 
 # Jacobian chunks of the sensitivity method stay below this many bytes
 _CHUNK_BYTES = 64 * 2**20
+
+
+class MemoryRangeWarning(RuntimeWarning):
+    """A memory curve measured where the model does not work: probe inputs drove the states
+    outside the range they keep on the model's own inputs, or the decoders score test R^2
+    below -1 (worse than predicting the mean). Decode the model's inputs (``mode="data"``) or
+    lower ``scale``; see docs/memory.md."""
+
+
+# share of the probe-state values allowed outside the reference box before warning
+_OUTSIDE_SHARE = 0.05
+# fewer recorded states than this set no range worth checking against
+_MIN_REFERENCE = 100
 
 
 # ====================================================================== result
@@ -225,6 +238,7 @@ def memory_curve(
     progress: bool | Callable[[int, int, str], Any] | None = None,
     threads: int | None = None,
     inputs: Any = None,
+    reference: Trace | None = None,
     **wrap_options: Any,
 ) -> MemoryCurve:
     """How many steps back a recurrent system still holds its inputs, as a curve over lag.
@@ -291,6 +305,12 @@ def memory_curve(
         Initial states, see :func:`hiddenlens.record`.
     progress : bool, optional
         Show progress bars (default: only for long runs).
+    reference : Trace, optional
+        Probe mode: states recorded on the model's own inputs. When more than 5% of the probe
+        states' values fall outside the box of the reference states (widened by 10% of each
+        unit's range), a :class:`MemoryRangeWarning` says so: the curve then describes the
+        model where its own inputs never take it. The share is in ``metadata["outside_share"]``
+        (None when unchecked: no reference, or one of fewer than 100 recorded states).
     **wrap_options
         Passed to :func:`hiddenlens.wrap` when ``model_or_system`` is not yet a system.
 
@@ -346,9 +366,20 @@ def memory_curve(
     if isinstance(trace, Trace) and opts["method"] != "decoding":
         check_trace_finite(trace, "memory_curve", ("initial",))  # the steps start there
         refuse_random_steps(system, trace.initial[:1], trace.inputs[:1, 0])  # before any draw
+    if reference is not None:
+        if not isinstance(reference, Trace):
+            raise TypeError(f"reference must be a Trace recorded on the model's own inputs, got "
+                            f"{type(reference).__name__}; pass hiddenlens.record(model, inputs)")
+        if reference.state_size != system.state_size:
+            raise ValueError(f"reference has {reference.state_size} states but the system has "
+                             f"{system.state_size}; record the reference with the same model")
     with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
+        outside = None
+        if reference is not None and opts["mode"] == "probe" \
+                and reference.batch_size * reference.n_steps >= _MIN_REFERENCE:
+            outside = _outside_share(trace, reference, cols)
         meta = {
             "model_class": system.source,
             "state_columns": int(len(cols)),
@@ -358,6 +389,7 @@ def memory_curve(
             "washout": opts["washout"],
             "scale": opts["scale"] if opts["mode"] == "probe" else None,
             "seed": seed,
+            "outside_share": None if outside is None else outside[0],
         }
         if opts["method"] == "decoding":
             return _decoding(trace, cols, opts, meta, progress)
@@ -477,6 +509,33 @@ def _check_parts(system: RecurrentSystem, parts: Any) -> list[str] | None:
     return names
 
 
+def _outside_share(trace: Trace, reference: Trace, cols: np.ndarray) -> tuple[float, ...]:
+    """Share of the probe states' values outside the reference box, and warn above 5%.
+
+    The box: each unit's range over the reference states, widened by 10% of that range (the
+    reachable region of find_fixed_points). Returns (share, the value the probes reach
+    on the unit pushed furthest past its range, that unit's reference range lo, hi)."""
+    ref = np.asarray(reference.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
+    got = np.asarray(trace.states[..., cols], dtype=np.float64).reshape(-1, cols.size)
+    lo, hi = ref.min(axis=0), ref.max(axis=0)
+    pad = 0.1 * (hi - lo)
+    share = float(np.mean((got < lo - pad) | (got > hi + pad)))
+    # the unit the probes push furthest past its range, in units of that range
+    width = np.where(hi > lo, hi - lo, 1.0)
+    excess = np.maximum(lo - got.min(axis=0), got.max(axis=0) - hi) / width  # (S,)
+    u = int(np.argmax(excess))
+    far = float(got[:, u].min() if lo[u] - got[:, u].min() > got[:, u].max() - hi[u]
+                else got[:, u].max())
+    if share > _OUTSIDE_SHARE:
+        warnings.warn(
+            f"the probe inputs drive {100 * share:.1f}% of the state values outside the range "
+            f"they keep on the model's own inputs (state unit {int(cols[u])} reaches {far:.3g} "
+            f"where the inputs keep it in [{lo[u]:.3g}, {hi[u]:.3g}]): the memory curve "
+            "describes the model where its own inputs never take it; decode the model's inputs "
+            "(mode='data') or lower scale", MemoryRangeWarning, stacklevel=4)
+    return share, far, float(lo[u]), float(hi[u])
+
+
 def _get_trace(system: RecurrentSystem, inputs: Any, opts: dict[str, Any], h0: Any,
                progress: bool | None) -> tuple[Trace, np.ndarray]:
     """Record the states; return the trace and the inputs' standard deviation per feature."""
@@ -592,14 +651,12 @@ def _decoding(trace: Trace, cols: np.ndarray, opts: dict[str, Any], meta: dict[s
         if var.sum() > 0:
             weighted = feature_scores @ var / var.sum()  # (K + 1,)
         if np.nanmin(scores) < -1:
-            import warnings
-
             warnings.warn(
                 f"the decoders score test R^2 down to {np.nanmin(scores):.3g} (below -1: "
                 "worse than predicting the mean); the states may lie far outside what the "
                 "readout saw in training (probe inputs pushing the state out of its usual "
                 "range, or too few rows): decode the model's own inputs (mode='data') or "
-                "lower scale", RuntimeWarning, stacklevel=3)
+                "lower scale", MemoryRangeWarning, stacklevel=4)
     base = base_spread = base_cap = None
     if opts["mode"] == "data":
         w = opts["baseline_window"]

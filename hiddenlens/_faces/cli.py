@@ -25,6 +25,8 @@ DEFAULT_PROBE = (8, 200)
 DEMO_PROBE = (8, 150)
 #: one-crate trials (sequences, steps) of the demo's task-variable memory
 DEMO_TRIALS = (48, 80)
+#: greenhouse inputs (sequences, steps) of ``hiddenlens demo --task greenhouse``
+DEMO_DAYS = (8, 300)
 
 
 class CommandError(Exception):
@@ -76,9 +78,13 @@ def build_parser() -> argparse.ArgumentParser:
     demo = sub.add_parser(
         "demo", help="report on the shipped example runs (sorting-line task)",
         description="Compare the shipped example runs (tanh RNNs trained from three recurrent "
-                    "init gains and a GRU, all on the sorting-line task) and write the report.",
+                    "init gains and a GRU, all on the sorting-line task) and write the report; "
+                    "--task greenhouse reports on the greenhouse LSTM instead.",
     )
     _common_options(demo, default_output="hiddenlens-demo", threads=1)
+    demo.add_argument("--task", choices=("sorting_line", "greenhouse"), default="sorting_line",
+                      help="which example task's runs to report on (default sorting_line: "
+                           "task memory of the tag colour; greenhouse: of the day's weather)")
     _add_timeline_parser(sub)
     return parser
 
@@ -638,22 +644,21 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
-def demo_runs() -> dict[str, Any]:
-    """The shipped example runs of the sorting-line task, name -> trained model."""
+def demo_runs(task: str = "sorting_line") -> dict[str, Any]:
+    """The shipped example runs of one example task, name -> trained model."""
     try:
         from .. import examples
-        from ..examples import sorting_line
     except ImportError as err:
         raise CommandError(f"the example models are not available ({err}); install hiddenlens "
                            "from its source tree") from err
     runs = {}
-    for name in examples.list_runs(task=sorting_line):
+    for name in examples.list_runs(task=f"hiddenlens.examples.{task}"):
         try:
             runs[name] = examples.load_run(name)
         except FileNotFoundError as err:
             raise CommandError(str(err)) from err
     if not runs:
-        raise CommandError("no sorting-line example run is shipped with hiddenlens.examples")
+        raise CommandError(f"no {task} example run is shipped with hiddenlens.examples")
     return runs
 
 
@@ -671,28 +676,36 @@ def _demo_task(runs: dict[str, Any]) -> dict[str, dict[str, Any]]:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from ..examples import sorting_line
+    import importlib
+
+    from .. import examples
 
     which = _analyses(args.analyses)
     out = _output_paths(args.output, args.force)
-    runs = demo_runs()
-    n, t = DEMO_PROBE
-    inputs = sorting_line.make_inputs(n, t, seed=args.seed)
-    source = (f"sorting-line task inputs (tag flashes, gate cues, belt vibration), "
-              f"{n} x {t} steps, seed {args.seed}")
-    # the task variable: one crate per trial, its tag colour decoded at each step after the
-    # flash, on trials of their own (no gate cue, so the tag must be kept to the end)
-    trials = sorting_line.make_trials(*DEMO_TRIALS, seed=args.seed)
-    source += (f"; task-variable memory and the PCA trajectories on {DEMO_TRIALS[0]} one-crate "
-               f"trials of {DEMO_TRIALS[1]} steps (tag colour from its flash; the PCA draws the "
-               "mean trajectory of each tag colour, aligned to the flash)")
+    task_name = getattr(args, "task", "sorting_line")
+    runs = demo_runs(task_name)
+    module = importlib.import_module(f"hiddenlens.examples.{task_name}")
+    n, t = DEMO_PROBE if task_name == "sorting_line" else DEMO_DAYS
+    inputs = module.make_inputs(n, t, seed=args.seed)
+    what = ("sorting-line task inputs (tag flashes, gate cues, belt vibration)"
+            if task_name == "sorting_line" else
+            "greenhouse task inputs (sunlight, vent opening, heater power)")
+    source = f"{what}, {n} x {t} steps, seed {args.seed}"
+    # the task variable on trials of their own: the tag colour from its flash (no gate cue,
+    # so the tag must be kept to the end), or the weather of a calm day from its sunset
+    trials = examples.task_trials(next(iter(runs)), DEMO_TRIALS[0], seed=args.seed)
+    source += f"; task-variable memory on {trials.description}"
+    # the PCA is fitted on the same trials and draws the mean trajectory of each value of the
+    # task variable, aligned to its onset
+    source += "; the PCA trajectories on the same trials (the mean of each value, aligned)"
     task = _demo_task(runs)
+    title = ("hiddenlens demo: sorting-line runs compared" if task_name == "sorting_line" else
+             "hiddenlens demo: the greenhouse LSTM")
     path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
-                       keep_going=args.keep_going, quiet=args.quiet,
-                       title="hiddenlens demo: sorting-line runs compared", source=source,
-                       options={"task_memory": {"inputs": trials.inputs},
+                       keep_going=args.keep_going, quiet=args.quiet, title=title,
+                       source=source, options={"task_memory": {"inputs": trials.inputs},
                                 "pca": {"inputs": trials.inputs}},
-                       context={"targets": trials.colour, "onsets": trials.onset},
+                       context={"targets": trials.targets, "onsets": trials.onsets},
                        task=task)
     print(path)
     return 0

@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import ipywidgets as widgets
+import numpy as np
 
 from ..._core.registry import analyses as registered_analyses
 from ..._core.registry import analysis_spec
@@ -24,11 +25,12 @@ from . import render as _render
 from .jobs import Cache, Job, Runner, Step
 from .panels import Analysis, Option, Run, View, tab
 
-__all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses"]
+__all__ = ["Board", "Panel", "StaticView", "DEFAULT_ORDER", "check_analyses", "task_context"]
 
 #: Tab order of the built-in analyses: the cheap overview first, so the first figure shows up
 #: quickly; other registered analyses follow in registry order.
-DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory")
+DEFAULT_ORDER = ("pca", "spectra", "gradient_flow", "lyapunov", "fixed_points", "memory",
+                 "task_memory")
 
 _ALL = "__all__"  # value of the "whole state" choice of the part control
 MIN_PX, MAX_PX = 360, 1400  # figures are drawn between these widths (pixels)
@@ -70,15 +72,19 @@ _PAGE_HTML = (f"<style>{_PAGE_CSS}</style><img alt='' src='data:,' style='displa
 _KEEP_PNGS = 48  # recent figures kept, so going back to a view needs no drawing
 
 
-def check_analyses(analyses: Sequence[str] | None) -> list[str]:
-    """Validate the ``analyses`` argument; None means every available analysis."""
+def check_analyses(analyses: Sequence[str] | None, context: Sequence[str] = ()) -> list[str]:
+    """Validate the ``analyses`` argument; None means every available analysis.
+
+    ``context`` names the data the board was given besides the inputs (e.g. ``"targets"``):
+    by default an analysis that needs data the board lacks is left out; naming it is an error.
+    """
     known = registered_analyses()
+    given = set(context)
     if analyses is None:
         order = [n for n in DEFAULT_ORDER if n in known] + [
             n for n in known if n not in DEFAULT_ORDER]
-        # analyses that need context (task targets) are left out: the boards take none yet
         return [n for n in order
-                if analysis_spec(n).available() and not analysis_spec(n).needs]
+                if analysis_spec(n).available() and set(analysis_spec(n).needs) <= given]
     if isinstance(analyses, str):
         analyses = [analyses]
     names = list(analyses)
@@ -90,7 +96,40 @@ def check_analyses(analyses: Sequence[str] | None) -> list[str]:
     if missing:
         raise ValueError(f"analyses {missing} are not available in this installation; "
                          "leave them out of analyses=")
+    for n in names:
+        absent = [k for k in analysis_spec(n).needs if k not in given]
+        if absent:
+            raise ValueError(f"the {n!r} analysis needs {', '.join(absent)}; pass "
+                             f"{absent[0]}=... (e.g. targets=labels of shape (B,) or (B, T)) "
+                             f"or leave {n!r} out of analyses=")
     return names
+
+
+def task_context(targets: Any, onsets: Any, batch: int, n_steps: int) -> dict[str, Any]:
+    """``targets`` and ``onsets`` of a board as the analyses' context, shapes checked here so a
+    wrong one fails at once rather than inside a tab."""
+    if targets is None:
+        if onsets is not None:
+            raise ValueError("onsets were given without targets; pass targets= (the task "
+                             "variable whose lags count from the onsets) or drop onsets")
+        return {}
+    y = np.asarray(targets.detach().cpu().numpy() if hasattr(targets, "detach") else targets)
+    if y.shape not in ((batch,), (batch, 1), (batch, n_steps)):
+        raise ValueError(f"targets has shape {y.shape} but the inputs hold {batch} sequences "
+                         f"of {n_steps} steps; pass one value per sequence (shape ({batch},)) "
+                         f"or per step (shape ({batch}, {n_steps}))")
+    context = {"targets": y}
+    if onsets is not None:
+        on = np.asarray(onsets.detach().cpu().numpy() if hasattr(onsets, "detach") else onsets)
+        if on.shape != (batch,) or on.dtype.kind not in "iu":
+            raise ValueError(f"onsets must be integer steps of shape ({batch},), got "
+                             f"{on.dtype} of shape {on.shape}; pass the event step of each "
+                             "sequence")
+        if on.size and (on.min() < 0 or on.max() >= n_steps):
+            raise ValueError(f"onsets must lie in 0..{n_steps - 1} (the steps of the inputs), "
+                             f"got {int(on.min())}..{int(on.max())}")
+        context["onsets"] = on
+    return context
 
 
 @dataclass(eq=False)

@@ -24,7 +24,7 @@ from ..._core.record import record
 from ..._core.validation import as_sequences
 from ..._plotting.style import RUN_COLORS, legend_outside, thin_ticks, wrap_titles
 from . import render as _render
-from .board import _ALL, Board, Panel, check_analyses, row
+from .board import _ALL, Board, Panel, check_analyses, row, task_context
 from .jobs import Step
 from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
@@ -50,8 +50,8 @@ class Comparison(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0,
                  task: Mapping[str, Mapping[str, Any]] | None = None,
-                 timelines: Any = None, interactive: bool | None = None,
-                 **wrap_options: Any) -> None:
+                 timelines: Any = None, interactive: bool | None = None, targets: Any = None,
+                 onsets: Any = None, **wrap_options: Any) -> None:
         systems = check_runs(runs, **wrap_options)
         names = list(systems)
         checked_timelines = check_timelines(timelines, names)
@@ -65,12 +65,15 @@ class Comparison(Board):
             if unknown:
                 raise ValueError(f"task names runs that are not compared: {', '.join(unknown)};"
                                  f" the runs are {', '.join(names)}")
-        tabs = check_analyses(analyses)
+        tabs = check_analyses(analyses, ("targets", "onsets") if targets is not None else ())
         recorded = {}
+        context = None
         for n, system in systems.items():
             x = as_sequences(inputs, system.input_size, system.dtype,
                              what=f"run {n!r} ({system.source})")  # (B, T, I)
-            recorded[n] = Run(n, system, record(system, x, h0), x, None, seed)
+            if context is None:
+                context = task_context(targets, onsets, x.shape[0], x.shape[1])
+            recorded[n] = Run(n, system, record(system, x, h0), x, None, seed, context)
         super().__init__()  # only once the arguments are known to be good
         self._runs = recorded
         self._task = {str(k): dict(v) for k, v in (task or {}).items() if v}
@@ -335,8 +338,8 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0,
             task: Mapping[str, Mapping[str, Any]] | None = None,
-            timelines: Any = None, interactive: bool | None = None,
-            **wrap_options: Any) -> Comparison:
+            timelines: Any = None, interactive: bool | None = None, targets: Any = None,
+            onsets: Any = None, **wrap_options: Any) -> Comparison:
     """An interactive notebook view of several runs side by side, on the same inputs.
 
     Each analysis tab overlays the runs with the analysis' own overlay (spectra, gradient
@@ -352,8 +355,9 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
         state sizes may differ, the input size must be the same.
     inputs : Tensor or ndarray of shape (B, T, I)
         The same sequences for every run.
-    h0, analyses, background, executor, seed, interactive, **wrap_options
-        As in :func:`hiddenlens.explore`.
+    h0, analyses, background, executor, seed, interactive, targets, onsets, **wrap_options
+        As in :func:`hiddenlens.explore`; ``targets`` (a task variable of the shared inputs)
+        adds the task-memory tab, each run decoded on its own states.
     task : Mapping[str, Mapping], optional
         Run name -> task metrics measured for that run (see :func:`hiddenlens.explore`): a
         diagnosis line per run at the top.
@@ -370,5 +374,5 @@ def compare(runs: Mapping[str, ModelLike], inputs: Sequences, *, h0: Any = None,
     """
     return Comparison(runs, inputs, h0=h0, analyses=analyses, background=background,
                       executor=executor, seed=seed, task=task, timelines=timelines,
-                      interactive=interactive,
+                      interactive=interactive, targets=targets, onsets=onsets,
                       **wrap_options)

@@ -16,7 +16,7 @@ from ..._core.validation import as_sequences
 from ..._plotting.style import legend_outside, name_titles, wrap_titles
 from ..summary import key_figures, summary_sentence
 from . import render as _render
-from .board import _ALL, Board, Panel, check_analyses
+from .board import _ALL, Board, Panel, check_analyses, task_context
 from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
 
@@ -50,9 +50,9 @@ class Explorer(Board):
                  analyses: Sequence[str] | None = None, background: bool = True,
                  executor: Executor | None = None, seed: int = 0, name: str | None = None,
                  task: Mapping[str, Any] | None = None, timeline: Any = None,
-                 interactive: bool | None = None,
+                 interactive: bool | None = None, targets: Any = None, onsets: Any = None,
                  **wrap_options: Any) -> None:
-        names = check_analyses(analyses)
+        names = check_analyses(analyses, ("targets", "onsets") if targets is not None else ())
         if task is not None and not isinstance(task, Mapping):
             raise TypeError("task must be a mapping of the model's task metrics (e.g. "
                             f"{{'accuracy': 0.97, 'chance': 0.5}}), got {type(task).__name__}")
@@ -69,8 +69,9 @@ class Explorer(Board):
             if system.time_reversed:
                 x = x.flip(1)
             system = system.without_front()
+        context = task_context(targets, onsets, x.shape[0], x.shape[1])
         run = Run(name or system.source, system, trace, x, _labels(labels, trace.batch_size),
-                  seed)
+                  seed, context)
         timelines = check_timelines(timeline, [run.name])
         super().__init__()  # only once the arguments are known to be good
         self._runs = {run.name: run}
@@ -171,7 +172,7 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
             analyses: Sequence[str] | None = None, background: bool = True,
             executor: Executor | None = None, seed: int = 0, name: str | None = None,
             task: Mapping[str, Any] | None = None, timeline: Any = None,
-            interactive: bool | None = None,
+            interactive: bool | None = None, targets: Any = None, onsets: Any = None,
             **wrap_options: Any) -> Explorer:
     """An interactive notebook view of one model's hidden-state dynamics.
 
@@ -193,7 +194,8 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     analyses : sequence of str, optional
         Which tabs to show, in order (default: every available analysis, trajectories first).
         Names: those of :func:`hiddenlens.analyses` ("pca", "spectra", "gradient_flow",
-        "lyapunov", "fixed_points", "memory" and any registered analysis).
+        "lyapunov", "fixed_points", "memory", "task_memory" (needs ``targets``) and any
+        registered analysis).
     background : bool, default True
         Compute in a worker thread. False computes inline, in the calling thread (scripts,
         tests); the widget then behaves the same but blocks while computing.
@@ -217,6 +219,13 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
         cursor). Default None: where the optional extra is installed (``pip install
         'hiddenlens[interactive]'``); True without it shows PNG figures with a note; False:
         PNG figures always (fastest redraws).
+    targets : array_like of shape (B,) or (B, T), optional
+        A task variable of the input sequences (a cue's identity per sequence, a value per
+        step): adds the task-memory tab, which decodes it from the state at each lag after its
+        onset (:func:`hiddenlens.task_memory`). Without targets that tab is left out.
+    onsets : array_like of int, shape (B,), optional
+        With ``targets``: the event step of each sequence that the lags count from (default:
+        the first step).
 
     Returns
     -------
@@ -232,4 +241,5 @@ def explore(model_or_system: ModelLike, inputs: Sequences, *, h0: Any = None, la
     """
     return Explorer(model_or_system, inputs, h0=h0, labels=labels, analyses=analyses,
                     background=background, executor=executor, seed=seed, name=name,
-                    task=task, timeline=timeline, interactive=interactive, **wrap_options)
+                    task=task, timeline=timeline, interactive=interactive, targets=targets,
+                    onsets=onsets, **wrap_options)

@@ -35,6 +35,7 @@ class Run:
     inputs: torch.Tensor  # (B, T, I)
     labels: np.ndarray | None = None  # (B,) one label per sample, for colouring
     seed: int = 0
+    context: Mapping[str, Any] = field(default_factory=dict)  # e.g. targets, onsets
 
 
 @dataclass(frozen=True)
@@ -140,7 +141,8 @@ class Analysis:
         if self.prepare is not None:
             opts = self.prepare(run, opts)
         out = run_analyses(run.system, run.inputs, which=[self.name],
-                           options={self.name: opts}, seed=run.seed, trace=run.trace)
+                           options={self.name: opts}, seed=run.seed, trace=run.trace,
+                           context=run.context)
         if self.name not in out:
             raise ValueError(f"{self.label} was not run: {out.skipped.get(self.name, '')}")
         return out[self.name]
@@ -313,8 +315,9 @@ def _held_input(run: Run, options: dict[str, Any]) -> dict[str, Any]:
 
 
 def _memory_inputs(run: Run, options: dict[str, Any]) -> dict[str, Any]:
-    if options.get("mode") == "data":
-        options["inputs"] = run.inputs
+    # data mode decodes the run's recorded trace; probe mode checks its states against it
+    if options.get("mode") == "probe":
+        options["reference"] = run.trace
     return options
 
 
@@ -382,10 +385,51 @@ register(Analysis(
                                        ("perturbation", "perturbation"),
                                        ("sensitivity", "sensitivity")],
                     tip="read inputs back from the state, follow an impulse, or use gradients"),
-             Option("mode", "inputs", lambda r: "probe",
-                    choices=lambda r: [("random probe", "probe"), ("these inputs", "data")],
-                    tip="i.i.d. probe inputs (default) or the sequences given to the widget"),
+             Option("mode", "inputs", lambda r: "data",
+                    choices=lambda r: [("these inputs", "data"), ("random probe", "probe")],
+                    tip="the sequences given to the widget (default) or i.i.d. probe inputs "
+                        "(a warning says when they drive the states outside their range)"),
              Option("max_lag", "max lag", _default("memory", "max_lag", lambda r: 40),
                     high=lambda r: max(1, r.trace.n_steps - 1),
                     tip="the longest lag the memory curve reaches")),
     part_option="parts", prepare=_memory_inputs))
+
+
+def _draw_task_memory(result, axes, view, run, deps):
+    if view.extra.get("show", "curve") == "cross_temporal":
+        if result.cross_temporal is not None:
+            result.plot(ax=axes[0], kind="cross_temporal")
+            return
+        axes[0].text(0.5, 0.5, "no cross-temporal matrix: set 'cross-temporal' to 'on'",
+                     ha="center", va="center", transform=axes[0].transAxes)
+        axes[0].set_axis_off()
+        return
+    result.plot(ax=axes[0])
+
+
+def _task_lag_default(run: Run) -> int:
+    spec = analysis_spec("task_memory")
+    return int(budget_of(spec, run.system, run.trace, run.seed, run.context).get("max_lag", 1))
+
+
+def _task_lag_high(run: Run) -> int:
+    # per sequence, later lags have no rows; per step, onset + max_lag must stay in the steps
+    onsets = run.context.get("onsets")
+    latest = int(np.max(onsets)) if onsets is not None and len(onsets) else 0
+    return max(0, run.trace.n_steps - 1 - latest)
+
+
+register(Analysis(
+    "task_memory", "Task memory", _draw_task_memory,
+    options=(Option("max_lag", "max lag",
+                    lambda r: min(_task_lag_default(r), _task_lag_high(r)), low=0,
+                    high=_task_lag_high, tip="the longest lag after the onset decoded"),
+             Option("cross_temporal", "cross-temporal", lambda r: False,
+                    choices=lambda r: [("off", False), ("on", True)],
+                    tip="also score each lag's decoder at every other lag")),
+    views=(Option("show", "show", lambda r: "curve",
+                  choices=lambda r: [("score over lag", "curve"),
+                                     ("cross-temporal matrix", "cross_temporal")],
+                  tip="the decoding curve with its chance band, or the train-lag x test-lag "
+                      "matrix"),),
+    part_option="parts", per_run=True, run_title=lambda r: f"span {r.span}"))
