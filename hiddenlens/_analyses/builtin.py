@@ -355,7 +355,7 @@ def _arrays_gradient_flow(r: Any) -> dict[str, Any]:
 
 def _arrays_pca(r: Any) -> dict[str, Any]:
     out: dict[str, Any] = {"explained_variance_ratio": floats(r.explained_variance_ratio),
-                           "fit_steps": r.fit_description}
+                           "fit_steps": getattr(r, "fit_description", "all steps")}
     if r.condition_means is not None:
         out["conditions"] = list(r.condition_names)
         out["condition_steps"] = [int(t) for t in r.condition_steps]

@@ -420,7 +420,7 @@ def _dense_top(J: torch.Tensor, k: int, method: str, tol: float,
 
     def in64(rows: torch.Tensor) -> torch.Tensor:
         if high is not None:
-            return high(rows)
+            return high(rows).to(torch.float64)  # a generic step function may answer in float32
         return (J if rows.numel() == N else J[rows]).to(torch.float64)
 
     if method == "svd":
