@@ -82,7 +82,8 @@ def against_sklearn(system, rng) -> None:
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
 
-    from hiddenlens._analyses.memory import DEFAULT_ALPHAS, _folds, _ridge_cv, _Targets
+    from hiddenlens._analyses.memory import DEFAULT_ALPHAS
+    from hiddenlens._analyses.memory_decoding import _folds, _ridge_cv, _Targets
 
     x = rng.standard_normal((1, T, I)).astype(np.float32)
     trace = hiddenlens.record(system, x)

@@ -198,6 +198,13 @@ def _few_lags():
     assert r.metadata["counted_lags"] == 14
 
 
+def _probes_out_of_range():
+    rnn = torch.nn.RNN(3, 8, batch_first=True)
+    small = 0.01 * np.random.default_rng(0).standard_normal((4, 50, 3)).astype(np.float32)
+    hl.memory_curve(rnn, None, max_lag=5, reference=hl.record(rnn, small), n_steps=300,
+                    n_sequences=2)
+
+
 def _few_counted_steps():
     r = hl.lyapunov_spectrum(gru(), trace(), warmup=7)
     assert r.n_steps == 23
@@ -389,6 +396,9 @@ CASES = {
         lambda: hl.lyapunov_spectrum(lambda s: 0.1 * s, 400, state_size=2, dtype=torch.float64,
                                      h0=np.ones((1, 2))),
     ("`lyapunov_spectrum`", "23 counted steps"): _few_counted_steps,
+    ("`memory_curve` (`MemoryRangeWarning`)",
+     "probes far larger than the model's own inputs (`reference=` their trace)"):
+        _probes_out_of_range,
     ("`lyapunov_spectrum`", "states growing x3 per step, still finite"): _growth_not_chaos,
     ("`lyapunov_spectrum`", "a number of steps for a driven system"):
         lambda: hl.lyapunov_spectrum(gru(), 20),
@@ -541,7 +551,8 @@ CASES = {
 # ---------------------------------------------------------------------------- the checks
 _KINDS = {"OptionError": OptionError,
           "NonFiniteStateWarning": hl.NonFiniteStateWarning,
-          "StationaryTrajectoryWarning": hl.StationaryTrajectoryWarning}
+          "StationaryTrajectoryWarning": hl.StationaryTrajectoryWarning,
+          "MemoryRangeWarning": hl.MemoryRangeWarning}
 
 
 def _expected(message: str):

@@ -17,7 +17,8 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
 import hiddenlens
-from hiddenlens._analyses.memory import MemoryCurve, _folds, memory_curve
+from hiddenlens._analyses.memory import MemoryCurve, memory_curve
+from hiddenlens._analyses.memory_decoding import _folds
 from hiddenlens._core.record import as_system
 
 F64 = torch.float64
