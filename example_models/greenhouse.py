@@ -219,8 +219,8 @@ def make_days(
     -------
     WeatherDays
     """
-    n_seq = check_count("n_sequences", n_sequences, 96)
-    n_t = check_count("n_steps", n_steps, 300)
+    n_seq = check_count("n_sequences", n_sequences, 1, 96, "a positive integer")
+    n_t = check_count("n_steps", n_steps, 1, 300, "a positive integer")
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
     lo, hi = int(first_sunrise), int(last_sunrise)

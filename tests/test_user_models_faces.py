@@ -153,6 +153,10 @@ def _own_states(kind, model, x):
         return model(xt)[0].numpy()
 
 
+# Models behind a front end get probe-mode memory on their recurrent part, and untrained probes
+# may leave the states' recorded range: that warning is the library's claim, not this test's
+# subject (tests/test_memory.py checks it).
+@pytest.mark.filterwarnings("ignore::hiddenlens.MemoryRangeWarning")
 @pytest.mark.parametrize("kind", list(KINDS))
 def test_user_model_through_every_face(kind, tmp_path, monkeypatch, capsys):
     factory, wrap_opts, flags, ids = KINDS[kind]

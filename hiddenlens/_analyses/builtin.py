@@ -356,7 +356,7 @@ def _arrays_gradient_flow(r: Any) -> dict[str, Any]:
 def _arrays_pca(r: Any) -> dict[str, Any]:
     out: dict[str, Any] = {"explained_variance_ratio": floats(r.explained_variance_ratio),
                            "fit_steps": getattr(r, "fit_description", "all steps")}
-    if r.condition_means is not None:
+    if getattr(r, "condition_means", None) is not None:
         out["conditions"] = list(r.condition_names)
         out["condition_steps"] = [int(t) for t in r.condition_steps]
     return out
@@ -511,7 +511,7 @@ def _setting_fixed_points(results: Mapping[str, Any]) -> str:
 def _setting_pca(results: Mapping[str, Any]) -> str:
     r = _first(results)
     words = [f"Axes fitted on {r.fit_description} of the recorded states"]
-    if r.condition_means is not None:
+    if getattr(r, "condition_means", None) is not None:
         what = ", ".join(r.condition_names[:8]) + (", ..." if len(r.conditions) > 8 else "")
         aligned = " aligned to each sequence's onset" if r.onsets is not None else ""
         words.append(f"lines are the mean trajectories of {len(r.conditions)} conditions "
