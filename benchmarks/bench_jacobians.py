@@ -31,7 +31,6 @@ import argparse
 import os
 import time
 
-import bench_spectra  # a sibling script: benchmarks/ is on sys.path when run
 import numpy as np
 import torch
 from torch import nn
@@ -40,14 +39,22 @@ from torch.func import jacrev, vmap
 import hiddenlens as hl
 
 H, T = 256, 200
-B, I = bench_spectra.B, bench_spectra.I  # 8, 16: one seeded model builder for both
+B, I = 8, 16
 NAIVE_CALLS = 3
 TARGETS = {"naive": 100.0, "vmap": 5.0, "floor": 3.0}
 
 
-def build(cls):
-    # the same seeded model and trace as the spectra benchmark
-    return bench_spectra.build(cls, H, T)
+def build(cls, seed: int = 0):
+    """A seeded model of class ``cls`` (torch's init range, from a local generator) and its
+    trace on seeded inputs."""
+    gen = torch.Generator().manual_seed(seed)
+    with torch.random.fork_rng(devices=[]):
+        model = cls(I, H, batch_first=True).eval()
+    with torch.no_grad():
+        for p in model.parameters():
+            p.copy_((torch.rand(p.shape, generator=gen) * 2 - 1) / H**0.5)
+    x = torch.randn(B, T, I, generator=gen)
+    return model, hl.record(model, x)
 
 
 def timed(fn):
