@@ -221,8 +221,7 @@ def make_days(
     """
     n_seq = check_count("n_sequences", n_sequences, 1, 96, "a positive integer")
     n_t = check_count("n_steps", n_steps, 1, 300, "a positive integer")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise TypeError(f"seed={seed!r} is not a non-negative integer; pass e.g. seed=0")
+    seed = check_seed(seed)
     lo, hi = int(first_sunrise), int(last_sunrise)
     if not 0 <= lo <= hi:
         raise ValueError(f"first_sunrise={first_sunrise!r} and last_sunrise={last_sunrise!r} "
@@ -230,7 +229,7 @@ def make_days(
     if hi + _DAY // 2 >= n_t:
         raise ValueError(f"n_steps={n_t} ends before the latest sunset (step {hi + _DAY // 2});"
                          f" pass n_steps > {hi + _DAY // 2} or an earlier last_sunrise")
-    rng = np.random.default_rng(int(seed))
+    rng = np.random.default_rng(seed)
     weather = rng.integers(len(WEATHER), size=n_seq)  # (B,)
     sunrise = rng.integers(lo, hi + 1, size=n_seq)  # (B,)
     steps = np.arange(n_t)[None, :]  # (1, T)

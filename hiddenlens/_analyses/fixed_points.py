@@ -654,42 +654,54 @@ def _starts(trace, starts, system, n_starts, noise, seed, dt) -> torch.Tensor:
         raise ValueError(f"noise must be a number >= 0 (a standard deviation), got {noise!r}")
     gen = torch.Generator().manual_seed(int(seed))
     if starts is not None:
-        if isinstance(starts, (list, tuple)):
-            starts = np.asarray(starts, dtype=np.float64)
-        s0 = as_float_tensor(starts, "starts", torch.float64)
-        if s0.ndim == 1 and s0.shape[0] == S:
-            s0 = s0.unsqueeze(0)
-        if s0.ndim != 2 or s0.shape[1] != S or s0.shape[0] == 0:
-            raise ValueError(f"starts must have shape (n_starts, {S}), got {describe(starts)}")
-        check_finite(s0, "starts", "pass finite start states")
+        s0 = _given_starts(starts, S)
     else:
-        if not isinstance(trace, Trace):
-            raise TypeError(f"trace must be a hiddenlens Trace of this system to sample starts "
-                            f"from, got {type(trace).__name__}; record one with "
-                            "hiddenlens.record(model, inputs), or pass starts=")
-        if trace.state_size != S:
-            raise ValueError(f"the trace has states of size {trace.state_size} but the "
-                             f"{system.source} system has {S}; record the trace from this "
-                             "system")
-        if isinstance(n_starts, bool) or not isinstance(n_starts, (int, np.integer)) \
-                or n_starts < 1:
-            raise ValueError(f"n_starts must be an integer >= 1, got {n_starts!r}")
-        flat = trace.states.reshape(-1, S)  # (B*T, S), a view
-        usable = np.isfinite(flat).all(axis=1)  # exploded states cannot start
-        real = _real_rows(trace)
-        if real is not None:
-            usable &= real  # nor padded ones
-        finite = np.nonzero(usable)[0]
-        N = finite.size
-        if N == 0:
-            raise ValueError("the trace has no finite state to start from; record a trace "
-                             "whose dynamics do not explode or pass starts=")
-        idx = torch.randperm(N, generator=gen)[:n_starts] if n_starts <= N else \
-            torch.randint(N, (int(n_starts),), generator=gen)
-        s0 = torch.from_numpy(np.array(flat[finite[idx.numpy()]], dtype=np.float64))  # (n, S)
+        s0 = _sampled_starts(trace, system, n_starts, gen)
     if noise > 0:
         s0 = s0 + noise * torch.randn(s0.shape, generator=gen, dtype=torch.float64)
     return s0.to(dt)
+
+
+def _given_starts(starts, S: int) -> torch.Tensor:
+    """The user's start states checked, as float64 (n, S)."""
+    if isinstance(starts, (list, tuple)):
+        starts = np.asarray(starts, dtype=np.float64)
+    s0 = as_float_tensor(starts, "starts", torch.float64)
+    if s0.ndim == 1 and s0.shape[0] == S:
+        s0 = s0.unsqueeze(0)
+    if s0.ndim != 2 or s0.shape[1] != S or s0.shape[0] == 0:
+        raise ValueError(f"starts must have shape (n_starts, {S}), got {describe(starts)}")
+    check_finite(s0, "starts", "pass finite start states")
+    return s0
+
+
+def _sampled_starts(trace, system, n_starts, gen: torch.Generator) -> torch.Tensor:
+    """n_starts finite, real states of the trace drawn with gen, as float64 (n, S)."""
+    S = system.state_size
+    if not isinstance(trace, Trace):
+        raise TypeError(f"trace must be a hiddenlens Trace of this system to sample starts "
+                        f"from, got {type(trace).__name__}; record one with "
+                        "hiddenlens.record(model, inputs), or pass starts=")
+    if trace.state_size != S:
+        raise ValueError(f"the trace has states of size {trace.state_size} but the "
+                         f"{system.source} system has {S}; record the trace from this "
+                         "system")
+    if isinstance(n_starts, bool) or not isinstance(n_starts, (int, np.integer)) \
+            or n_starts < 1:
+        raise ValueError(f"n_starts must be an integer >= 1, got {n_starts!r}")
+    flat = trace.states.reshape(-1, S)  # (B*T, S), a view
+    usable = np.isfinite(flat).all(axis=1)  # exploded states cannot start
+    real = _real_rows(trace)
+    if real is not None:
+        usable &= real  # nor padded ones
+    finite = np.nonzero(usable)[0]
+    N = finite.size
+    if N == 0:
+        raise ValueError("the trace has no finite state to start from; record a trace "
+                         "whose dynamics do not explode or pass starts=")
+    idx = torch.randperm(N, generator=gen)[:n_starts] if n_starts <= N else \
+        torch.randint(N, (int(n_starts),), generator=gen)
+    return torch.from_numpy(np.array(flat[finite[idx.numpy()]], dtype=np.float64))  # (n, S)
 
 
 def _check_options(**opts: Any) -> None:

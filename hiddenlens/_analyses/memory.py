@@ -345,17 +345,10 @@ def memory_curve(
     check_options("memory_curve", locals())
     seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
     system = as_system(model_or_system, **wrap_options)
-    if inputs is not None:  # the 0.1 keyword form memory_curve(system, inputs=x)
-        if trace is not None:
-            raise TypeError("memory_curve got both a trace and inputs; pass only the trace")
-        trace = inputs
+    trace = _trace_or_inputs(trace, inputs)
     inputs = trace
     if isinstance(trace, Trace):
-        check_trace_fits(system, trace, "memory_curve")
-        check_trace_finite(trace, "memory_curve", ("inputs",))  # the decoded sources
-        if h0 is not None:
-            raise ValueError("h0 was given with a trace, which holds its own initial states; "
-                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+        _check_given_trace(system, trace, h0)
     elif trace is not None:
         warnings.warn(
             "memory_curve(system, inputs) is deprecated; record first and pass the trace: "
@@ -370,13 +363,7 @@ def memory_curve(
     if isinstance(trace, Trace) and opts["method"] != "decoding":
         check_trace_finite(trace, "memory_curve", ("initial",))  # the steps start there
         refuse_random_steps(system, trace.initial[:1], trace.inputs[:1, 0])  # before any draw
-    if reference is not None:
-        if not isinstance(reference, Trace):
-            raise TypeError(f"reference must be a Trace recorded on the model's own inputs, got "
-                            f"{type(reference).__name__}; pass hiddenlens.record(model, inputs)")
-        if reference.state_size != system.state_size:
-            raise ValueError(f"reference has {reference.state_size} states but the system has "
-                             f"{system.state_size}; record the reference with the same model")
+    _check_reference(system, reference)
     with grad_restored():
         trace, in_std = _get_trace(system, inputs, opts, h0, progress)
         cols = trace.columns(opts["parts"])
@@ -402,6 +389,34 @@ def memory_curve(
         # a module step function's parameters may require grad
         with torch.no_grad(), step_errors(system):
             return _sensitivity(system, trace, cols, in_std, opts, meta, progress)
+
+
+def _trace_or_inputs(trace: Any, inputs: Any) -> Any:
+    """The trace, or the inputs of the 0.1 keyword form memory_curve(system, inputs=x)."""
+    if inputs is not None:
+        if trace is not None:
+            raise TypeError("memory_curve got both a trace and inputs; pass only the trace")
+        return inputs
+    return trace
+
+
+def _check_given_trace(system: RecurrentSystem, trace: Trace, h0: Any) -> None:
+    check_trace_fits(system, trace, "memory_curve")
+    check_trace_finite(trace, "memory_curve", ("inputs",))  # the decoded sources
+    if h0 is not None:
+        raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                         "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+
+
+def _check_reference(system: RecurrentSystem, reference: Any) -> None:
+    if reference is None:
+        return
+    if not isinstance(reference, Trace):
+        raise TypeError(f"reference must be a Trace recorded on the model's own inputs, got "
+                        f"{type(reference).__name__}; pass hiddenlens.record(model, inputs)")
+    if reference.state_size != system.state_size:
+        raise ValueError(f"reference has {reference.state_size} states but the system has "
+                         f"{system.state_size}; record the reference with the same model")
 
 
 # ====================================================================== options and inputs

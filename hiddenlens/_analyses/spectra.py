@@ -264,16 +264,9 @@ def jacobian_spectra(
     form = work
     if method == "gram" and not want_radius and _slack(torch.float32, S) / 2 <= tol:
         form = torch.float32
-    # closed forms are thread-safe; a user's step function is never run on two threads at once
-    workers = 1
-    if system.layers and S < _THREADS_FROM_STATE:
-        workers = threads if threads is not None else usable_cores()
+    workers = _workers(system, S, threads)
     if chunk is None:
-        per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
-        chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
-        if workers > 1:  # enough chunks for every worker, none so small that overhead rules
-            least = max(1, _LEAST_ELEMENTS // max(per_state * B, 1))
-            chunk = max(least, min(chunk, -(-T // (_PIECES_PER_WORKER * workers))))
+        chunk = _default_chunk(method, want_radius, B, T, S, k, workers)
     from .._core.record import valid_steps
 
     real = valid_steps(trace)  # (B, T) or None: padded steps are left out (NaN rows)
@@ -312,22 +305,9 @@ def jacobian_spectra(
             low_out[:, t0:t1] = low.reshape(B, n).numpy()
 
     with progress_bar(progress, total=len(starts), label="spectra", auto=bool(show)) as bar:
-        if workers > 1:
-            parallel_map(one_chunk, starts, workers, done=lambda i: bar.update(1))
-        else:
-            # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
-            with single_thread(S < _THREADS_FROM_STATE):
-                for t0 in starts:
-                    one_chunk(t0)
-                    bar.update(1)
+        _run_chunks(one_chunk, starts, workers, bar, S)
     excluded = np.argwhere(~finite)  # (n, 2): sample, step
-    if len(excluded):
-        b0, s0 = excluded[0]
-        warnings.warn(
-            f"jacobian_spectra: {len(excluded)} of {B * T} steps have non-finite states or "
-            f"Jacobians (first at sample {b0}, step {s0}); their singular values are NaN and "
-            "the quantiles and median are over the remaining steps (see result.excluded)",
-            RuntimeWarning, stacklevel=2)
+    _warn_excluded(excluded, B * T)
     q = _nanquantile(sv_out.reshape(B * T, k), levels)  # (Q, k)
     med = _nanquantile(sv_out.reshape(B * T, k), np.array([0.5]))[0]
     rq = None if rad_out is None else _nanquantile(rad_out.reshape(B * T, 1), levels)[:, 0]
@@ -341,6 +321,48 @@ def jacobian_spectra(
         radius_bounds=None if bounds is None else readonly(bounds),
         excluded=readonly(excluded.astype(np.int64)),
     )
+
+
+def _workers(system, S: int, threads: int | None) -> int:
+    """Threads that compute the chunks."""
+    # closed forms are thread-safe; a user's step function is never run on two threads at once
+    if system.layers and S < _THREADS_FROM_STATE:
+        return threads if threads is not None else usable_cores()
+    return 1
+
+
+def _default_chunk(method: str, want_radius: bool, B: int, T: int, S: int, k: int,
+                   workers: int) -> int:
+    """Steps per chunk when none was given."""
+    per_state = S * S if (method != "krylov" or want_radius) else S * min(S, 8 * k + 64)
+    chunk = max(1, _CHUNK_ELEMENTS // max(per_state * B, 1))
+    if workers > 1:  # enough chunks for every worker, none so small that overhead rules
+        least = max(1, _LEAST_ELEMENTS // max(per_state * B, 1))
+        chunk = max(least, min(chunk, -(-T // (_PIECES_PER_WORKER * workers))))
+    return chunk
+
+
+def _run_chunks(one_chunk: Callable[[int], None], starts: range, workers: int, bar: Any,
+                S: int) -> None:
+    if workers > 1:
+        parallel_map(one_chunk, starts, workers, done=lambda i: bar.update(1))
+    else:
+        # one torch thread for states below _THREADS_FROM_STATE: see _dense_top
+        with single_thread(S < _THREADS_FROM_STATE):
+            for t0 in starts:
+                one_chunk(t0)
+                bar.update(1)
+
+
+def _warn_excluded(excluded: np.ndarray, n_steps: int) -> None:
+    """Warn (at the caller of jacobian_spectra) about the excluded (sample, step) pairs."""
+    if len(excluded):
+        b0, s0 = excluded[0]
+        warnings.warn(
+            f"jacobian_spectra: {len(excluded)} of {n_steps} steps have non-finite states or "
+            f"Jacobians (first at sample {b0}, step {s0}); their singular values are NaN and "
+            "the quantiles and median are over the remaining steps (see result.excluded)",
+            RuntimeWarning, stacklevel=3)
 
 
 def _padding_note(real: np.ndarray | None) -> dict[str, Any]:
@@ -366,14 +388,7 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
     ok = torch.isfinite(lin.new_state).all(1)
     J = None
     if method != "krylov" or want_radius:
-        J = lin.dense()
-        if J.dtype != torch.float32 or exact is None:
-            J = J.to(work)  # (N, S, S)
-        # a sum is NaN or Inf whenever a term is (and overflows only past 1e300 per entry):
-        # the full elementwise test runs on those steps only
-        sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
-        if sus.numel():
-            ok[sus] &= torch.isfinite(J[sus]).all(2).all(1)
+        J = _dense_jacobians(lin, work, exact, ok)  # (N, S, S)
     if real is not None:
         ok |= ~real  # a padded step is never reported as non-finite
     sv = torch.full((N, k), float("nan"), dtype=torch.float64)
@@ -388,11 +403,7 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
     if method == "krylov":
         sub = top_singular_values(lin if full else lin.select(idx), k, tol=tol, generator=gen)
     else:
-        high = None
-        if exact is not None and J.dtype == torch.float32:
-            def high(rows: torch.Tensor) -> torch.Tensor:
-                return exact(idx[rows])
-        sub = _dense_top(J, k, method, tol, high)
+        sub = _dense_top(J, k, method, tol, _exact_rows(exact, J, idx))
     sv[idx] = sub.to(torch.float64)
     if low is not None:
         # |det J| = prod sigma_i = prod |lambda_i| <= rho^S
@@ -401,6 +412,33 @@ def _chunk_spectra(lin: StepLinearization, k: int, method: str, tol: float,
         with single_thread():  # one batched LAPACK call of small matrices: see _dense_top
             rad[idx] = torch.linalg.eigvals(J).abs().amax(-1).to(torch.float64)
     return sv, rad, low, ok
+
+
+def _dense_jacobians(lin: StepLinearization, work: torch.dtype,
+                     exact: Callable[[torch.Tensor], torch.Tensor] | None,
+                     ok: torch.Tensor) -> torch.Tensor:
+    """Dense Jacobians (N, S, S) of one chunk; clears ``ok`` (N,) in place where they are not
+    finite."""
+    J = lin.dense()
+    if J.dtype != torch.float32 or exact is None:
+        J = J.to(work)  # (N, S, S)
+    # a sum is NaN or Inf whenever a term is (and overflows only past 1e300 per entry):
+    # the full elementwise test runs on those steps only
+    sus = (~torch.isfinite(J.sum((1, 2)))).nonzero().squeeze(1)
+    if sus.numel():
+        ok[sus] &= torch.isfinite(J[sus]).all(2).all(1)
+    return J
+
+
+def _exact_rows(exact: Callable[[torch.Tensor], torch.Tensor] | None, J: torch.Tensor,
+                idx: torch.Tensor) -> Callable[[torch.Tensor], torch.Tensor] | None:
+    """float64 Jacobians of rows of the computed steps ``idx``, when J is in float32."""
+    if exact is None or J.dtype != torch.float32:
+        return None
+
+    def high(rows: torch.Tensor) -> torch.Tensor:
+        return exact(idx[rows])
+    return high
 
 
 # ---------------------------------------------------------------------- dense top-k

@@ -590,17 +590,38 @@ def _cmd_report(args: argparse.Namespace) -> int:
                            "front end turns into the recurrent part's inputs")
     # before the slow part
     inputs = load_inputs(args.inputs, raw=bool(args.front)) if args.inputs else None
-    over = None
-    if args.checkpoints is not None:
-        load_factory(args.model)  # a clear message for a bad --model before any work
-        if args.names is not None and len(args.names) != 1:
-            raise CommandError("--checkpoints is one run: give one name with --names")
-        over, inputs, last = _checkpoint_timeline(args, inputs)
-        weights = [last]
-        if args.names is None:
-            args.names = [Path(args.checkpoints).resolve().name or Path(last).stem]
-    else:
-        weights = list(args.weights)
+    over, inputs, weights = _report_weights(args, inputs)
+    names = _run_names(args, weights)
+    context = _context(args)
+    runs: dict[str, Any] = {}
+    for name, w in zip(names, weights, strict=True):
+        runs[name] = _user_run(args, w, quiet=args.quiet)
+    inputs, source = _report_inputs(args, inputs, over, _checked_input_size(runs))
+    options, trace = _user_options(args, runs, inputs)
+    path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
+                       keep_going=args.keep_going, quiet=args.quiet, title=args.title,
+                       source=source, options=options, trace=trace, context=context,
+                       timeline={names[0]: over} if over is not None else None)
+    print(path)
+    return 0
+
+
+def _report_weights(args: argparse.Namespace, inputs: Any) -> tuple[Any, Any, list]:
+    """The timeline over the checkpoints (or None), the inputs and the weights files to report;
+    names the run of ``--checkpoints`` when no ``--names`` were given."""
+    if args.checkpoints is None:
+        return None, inputs, list(args.weights)
+    load_factory(args.model)  # a clear message for a bad --model before any work
+    if args.names is not None and len(args.names) != 1:
+        raise CommandError("--checkpoints is one run: give one name with --names")
+    over, inputs, last = _checkpoint_timeline(args, inputs)
+    if args.names is None:
+        args.names = [Path(args.checkpoints).resolve().name or Path(last).stem]
+    return over, inputs, [last]
+
+
+def _run_names(args: argparse.Namespace, weights: list) -> list[str]:
+    """One distinct run name per weights file: ``--names`` or the files' stems."""
     if args.names is not None:
         if len(args.names) != len(weights):
             raise CommandError(f"--names has {len(args.names)} names for {len(weights)} weights "
@@ -610,19 +631,26 @@ def _cmd_report(args: argparse.Namespace) -> int:
         names = [Path(w).stem for w in weights]
     if len(set(names)) != len(names):
         raise CommandError(f"run names must be distinct, got {', '.join(names)}; pass --names")
-    context = _context(args)
-    runs: dict[str, Any] = {}
-    for name, w in zip(names, weights, strict=True):
-        runs[name] = _user_run(args, w, quiet=args.quiet)
+    return names
+
+
+def _checked_input_size(runs: dict[str, Any]) -> int | None:
+    """The input size the given inputs must have, or None when a front end of the user's
+    reads them."""
     from .._core.record import as_system
     from .._core.systems import LowerLayers
 
     first = as_system(next(iter(runs.values())))
-    input_size = first.input_size
     if isinstance(first.front, LowerLayers):  # one layer of a stack: the module's own inputs
-        input_size = first.front.stack.input_size
-    elif first.front is not None:
-        input_size = None  # a front end of the user's: its raw inputs are not checked here
+        return first.front.stack.input_size
+    if first.front is not None:
+        return None  # a front end of the user's: its raw inputs are not checked here
+    return first.input_size
+
+
+def _report_inputs(args: argparse.Namespace, inputs: Any, over: Any,
+                   input_size: int | None) -> tuple[Any, str]:
+    """The inputs of the report (a built-in probe when none were given) and their source."""
     if inputs is None or (over is not None and not args.inputs):
         n, t = args.probe or DEFAULT_PROBE
         if inputs is None:
@@ -635,13 +663,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
                 f"inputs in {args.inputs!r} have {inputs.shape[-1]} features but the model "
                 f"expects {input_size}; pass an array of shape (B, T, {input_size})")
         source = f"read from {args.inputs}"
-    options, trace = _user_options(args, runs, inputs)
-    path = _run_report(runs, inputs, out=out, which=which, seed=args.seed,
-                       keep_going=args.keep_going, quiet=args.quiet, title=args.title,
-                       source=source, options=options, trace=trace, context=context,
-                       timeline={names[0]: over} if over is not None else None)
-    print(path)
-    return 0
+    return inputs, source
 
 
 def demo_runs(task: str = "sorting_line") -> dict[str, Any]:

@@ -536,17 +536,9 @@ def _analysis_section(spec: AnalysisSpec, runs: Mapping[str, Mapping[str, Any]],
 
 def _check_timelines(timeline: Any, runs: Mapping[str, Any]) -> dict[str, Any]:
     """``timeline`` as run name -> Timeline (one Timeline, Monitor or table: the first run's)."""
-    from .._training.timeline import as_timeline
+    from .._training.timeline import timelines_by_run
 
-    if timeline is None:
-        return {}
-    if isinstance(timeline, Mapping):
-        unknown = [str(k) for k in timeline if k not in runs]
-        if unknown:
-            raise ValueError(f"timeline names runs that are not in the report: "
-                             f"{', '.join(unknown)}; the runs are {', '.join(runs)}")
-        return {str(k): as_timeline(v) for k, v in timeline.items() if v is not None}
-    return {next(iter(runs)): as_timeline(timeline)}
+    return timelines_by_run(timeline, runs, name="timeline", where="in the report")
 
 
 def _timeline_section(timelines: Mapping[str, Any], multi: bool) -> str:

@@ -221,7 +221,12 @@ def _trial_colouring(result, color_by: Any, rows: np.ndarray, cols: np.ndarray, 
         kind = "ordered" if lab.dtype.kind == "f" else "categorical"
         keys = None
     per_step = np.broadcast_to(lab[:, None], (B, T)) if lab.ndim == 1 else lab
-    sel = per_step[rows][:, cols]  # (b, t)
+    return ("labels", _label_codes(per_step[rows][:, cols], kind, keys))  # (b, t)
+
+
+def _label_codes(sel: np.ndarray, kind: str, keys):
+    """Per-step labels sel (b, t) as (colour values or codes (b, t), keys); codes of labels
+    outside the keys are -1."""
     if keys is None:
         if kind == "ordered":
             finite = sel[np.isfinite(sel)] if sel.dtype.kind == "f" else sel
@@ -231,11 +236,11 @@ def _trial_colouring(result, color_by: Any, rows: np.ndarray, cols: np.ndarray, 
         fake = type("Labels", (), {"conditions": uniq, "label_kind": kind})
         keys = _condition_keys(fake)
     if keys["kind"] == "ordered":
-        return ("labels", (np.asarray(sel, dtype=float), keys))
+        return (np.asarray(sel, dtype=float), keys)
     code = np.searchsorted(keys["values"], sel)
     code = np.where((code < len(keys["values"])) & (keys["values"][np.minimum(
         code, len(keys["values"]) - 1)] == sel), code, -1)
-    return ("labels", (code, keys))
+    return (code, keys)
 
 
 _TIME_PIECES = 128  # most colour bands drawn along one trajectory coloured by time
@@ -247,8 +252,6 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
     from matplotlib.collections import LineCollection
     from matplotlib.lines import Line2D
 
-    from .style import plain_text
-
     b, t, dims = P.shape
     kind, extra = colouring
     handles = []
@@ -256,50 +259,12 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
         handles.append(Line2D([], [], color=extra, ls=ls, label=label))
     if t < 2:
         return handles
-    per_sequence = False
-    if kind == "labels":
-        values, keys = extra
-        # one label per sequence: one piece per trajectory; per step: one piece per step
-        per_sequence = bool(np.all(values == values[:, :1]) or (
-            values.dtype.kind == "f" and np.all(np.isnan(values) | (values == values[:, :1]))))
-    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
-    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
-    # that matplotlib builds and strokes on every redraw).
-    if kind == "time":
-        m = -(-(t - 1) // _TIME_PIECES)
-    elif kind == "labels" and not per_sequence:
-        m = 1
-    else:
-        m = t - 1
+    per_sequence = kind == "labels" and _one_label_per_sequence(extra[0])
+    m = _piece_steps(kind, t, per_sequence)
     firsts = np.arange(0, t - 1, m)  # first step of each piece
     segs = [P[i, a:min(a + m, t - 1) + 1] for i in range(b) for a in firsts]  # (<= m+1, dims)
-    per_sample = firsts.size
     kw: dict[str, Any] = {"linewidths": 1.0, "linestyles": ls, "alpha": alpha}
-    if kind == "single":
-        kw["colors"] = extra
-    elif kind == "sample":
-        from .style import LINESTYLES, RUN_COLORS
-
-        names = np.arange(b) if extra is None else extra
-        if b <= len(RUN_COLORS):  # a colour and a line style each, named in the legend
-            kw["colors"] = [RUN_COLORS[i] for i in range(b)]
-            kw["linestyles"] = [LINESTYLES[i] for i in range(b)]
-            handles += [Line2D([], [], color=RUN_COLORS[i], ls=LINESTYLES[i],
-                               label=f"sample {names[i]}") for i in range(b)]
-        else:
-            from .style import time_colors
-
-            kw["colors"] = np.repeat(time_colors(b, "turbo"), per_sample, axis=0)
-    elif kind == "labels":
-        piece = values[:, firsts].reshape(-1)  # (b * pieces,) label at each piece's start
-        if keys["kind"] == "ordered":
-            kw["colors"] = [keys["cmap"](keys["norm"](v)) if np.isfinite(v) else (0.6,) * 3
-                            + (1.0,) for v in piece]
-        else:
-            grey = "#999999"
-            kw["colors"] = [keys["colors"][c] if c >= 0 else grey for c in piece]
-            if per_sequence:
-                kw["linestyles"] = [keys["styles"][c] if c >= 0 else "-" for c in piece]
+    handles += _trial_styles(kw, kind, extra, b, firsts, per_sequence)
     if dims == 3:
         from mpl_toolkits.mplot3d.art3d import Line3DCollection as Collection
     else:
@@ -309,6 +274,73 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
         coll.set_array(np.tile(steps[firsts], b).astype(float))
         coll.set_cmap("viridis")
     ax.add_collection(coll)
+    return handles + _trial_keys(ax, coll, kind, extra, b, dims, per_sequence, key)
+
+
+def _one_label_per_sequence(values: np.ndarray) -> bool:
+    """Whether per-step labels (b, t) hold one label per sequence (NaN steps aside)."""
+    return bool(np.all(values == values[:, :1]) or (
+        values.dtype.kind == "f" and np.all(np.isnan(values) | (values == values[:, :1]))))
+
+
+def _piece_steps(kind: str, t: int, per_sequence: bool) -> int:
+    """Steps per drawn piece of a trajectory of t steps."""
+    # One polyline per piece of m steps: a sample's own colour needs one piece, a colour over time
+    # at most _TIME_PIECES pieces (finer colour bands are invisible, and each piece is a Path
+    # that matplotlib builds and strokes on every redraw).
+    if kind == "time":
+        return -(-(t - 1) // _TIME_PIECES)
+    if kind == "labels" and not per_sequence:
+        return 1
+    return t - 1
+
+
+def _sample_names(extra, b: int) -> np.ndarray:
+    return np.arange(b) if extra is None else extra
+
+
+def _trial_styles(kw: dict[str, Any], kind: str, extra, b: int, firsts: np.ndarray,
+                  per_sequence: bool) -> list:
+    """Fill kw with the colours (and line styles) of the pieces; return legend handles."""
+    from matplotlib.lines import Line2D
+
+    handles = []
+    if kind == "single":
+        kw["colors"] = extra
+    elif kind == "sample":
+        from .style import LINESTYLES, RUN_COLORS
+
+        names = _sample_names(extra, b)
+        if b <= len(RUN_COLORS):  # a colour and a line style each, named in the legend
+            kw["colors"] = [RUN_COLORS[i] for i in range(b)]
+            kw["linestyles"] = [LINESTYLES[i] for i in range(b)]
+            handles += [Line2D([], [], color=RUN_COLORS[i], ls=LINESTYLES[i],
+                               label=f"sample {names[i]}") for i in range(b)]
+        else:
+            from .style import time_colors
+
+            kw["colors"] = np.repeat(time_colors(b, "turbo"), firsts.size, axis=0)
+    elif kind == "labels":
+        values, keys = extra
+        piece = values[:, firsts].reshape(-1)  # (b * pieces,) label at each piece's start
+        if keys["kind"] == "ordered":
+            kw["colors"] = [keys["cmap"](keys["norm"](v)) if np.isfinite(v) else (0.6,) * 3
+                            + (1.0,) for v in piece]
+        else:
+            grey = "#999999"
+            kw["colors"] = [keys["colors"][c] if c >= 0 else grey for c in piece]
+            if per_sequence:
+                kw["linestyles"] = [keys["styles"][c] if c >= 0 else "-" for c in piece]
+    return handles
+
+
+def _trial_keys(ax, coll, kind: str, extra, b: int, dims: int, per_sequence: bool,
+                key: bool) -> list:
+    """Draw the colour bar of the trajectories, or return their legend handles."""
+    from matplotlib.lines import Line2D
+
+    from .style import plain_text
+
     if kind == "time":
         ax.figure.colorbar(coll, ax=ax, label="step", shrink=0.8, pad=0.12 if dims == 3 else 0.04)
     elif kind == "sample" and b > 8:
@@ -316,18 +348,20 @@ def _draw_trials(ax, P: np.ndarray, colouring, steps, *, label: str | None = Non
         from matplotlib.cm import ScalarMappable
         from matplotlib.colors import Normalize
 
+        names = _sample_names(extra, b)
         sm = ScalarMappable(norm=Normalize(float(names[0]), float(names[-1]) or 1.0),
                             cmap=matplotlib.colormaps["turbo"])
         ax.figure.colorbar(sm, ax=ax, label="sample", shrink=0.8,
                            pad=0.12 if dims == 3 else 0.04)
     elif kind == "labels" and key:
+        keys = extra[1]
         if keys["kind"] == "ordered":
             _colorbar(ax, keys)
         else:
-            handles += [Line2D([], [], color=keys["colors"][i], ls=keys["styles"][i]
-                               if per_sequence else "-", label=plain_text(_name(keys, i)))
-                        for i in range(len(keys["values"]))]
-    return handles
+            return [Line2D([], [], color=keys["colors"][i], ls=keys["styles"][i]
+                           if per_sequence else "-", label=plain_text(_name(keys, i)))
+                    for i in range(len(keys["values"]))]
+    return []
 
 
 def _title(result, what: str, shown: np.ndarray, stride: int, *, aligned: bool) -> str:

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 import os
 import re
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Collection, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -149,6 +149,22 @@ def as_timeline(source: Any, *, level: float | None = None) -> Timeline:
     return Timeline(checkpoints=tuple(names), steps=np.array(steps), epochs=epochs,
                     figures=figures, values=vals, low=lows, high=highs, errors=(None,) * C,
                     level=0.9 if level is None else float(level))
+
+
+def timelines_by_run(timelines: Any, runs: Collection[str], *, name: str,
+                     where: str) -> dict[str, Timeline]:
+    """Run name -> Timeline from a mapping of runs' timelines, or from one Timeline, Monitor or
+    table (the first run's); ``name`` is the option and ``where`` the runs' place, for the error
+    about unknown runs. None gives {}; a mapping's None values are left out."""
+    if timelines is None:
+        return {}
+    if isinstance(timelines, Mapping):
+        unknown = [str(k) for k in timelines if k not in runs]
+        if unknown:
+            raise ValueError(f"{name} names runs that are not {where}: {', '.join(unknown)}; "
+                             f"the runs are {', '.join(runs)}")
+        return {str(k): as_timeline(v) for k, v in timelines.items() if v is not None}
+    return {next(iter(runs)): as_timeline(timelines)}
 
 
 # ---------------------------------------------------------------------- ordering

@@ -217,6 +217,22 @@ def row(children: Sequence[widgets.Widget], space: str = "16px") -> widgets.HBox
                                                      align_items="center"))
 
 
+def sample_and_window(B: int, T: int, width: str) -> tuple[widgets.Dropdown,
+                                                            widgets.IntRangeSlider]:
+    """The redraw-only controls of a trajectory view: one sequence of B (or all of them) and
+    the steps [first, last) of T drawn, the slider ``width`` wide."""
+    sample = widgets.Dropdown(
+        options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
+        description="sample", layout=widgets.Layout(width="90px"),
+        tooltip="one sequence, or all of them (redraws only)",
+        style={"description_width": "initial"})
+    window = widgets.IntRangeSlider(
+        value=(0, T), min=0, max=T, step=1, description="steps", continuous_update=False,
+        tooltip="the steps drawn, [first, last) (redraws only)",
+        style={"description_width": "initial"}, layout=widgets.Layout(width=width))
+    return sample, window
+
+
 def make_control(option: Option, run: Run) -> widgets.Widget:
     return _dropdown(option, run) if option.choices is not None else _int_box(option, run)
 

@@ -24,7 +24,7 @@ from ..._core.record import record
 from ..._core.validation import as_sequences
 from ..._plotting.style import RUN_COLORS, legend_outside, thin_ticks, wrap_titles
 from . import render as _render
-from .board import _ALL, Board, Panel, check_analyses, row, task_context
+from .board import _ALL, Board, Panel, check_analyses, row, sample_and_window, task_context
 from .jobs import Step
 from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
@@ -88,15 +88,7 @@ class Comparison(Board):
                                            layout=widgets.Layout(width="max-content"))
                        for n in names}
         shown_box = row([widgets.Label("runs:"), *self._shown.values()], space="8px")
-        self._sample = widgets.Dropdown(
-            options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="90px"),
-            tooltip="one sequence, or all of them (redraws only)",
-            style={"description_width": "initial"})
-        self._window = widgets.IntRangeSlider(
-            value=(0, T), min=0, max=T, description="steps", continuous_update=False,
-            tooltip="the steps drawn, [first, last) (redraws only)",
-            style={"description_width": "initial"}, layout=widgets.Layout(width="300px"))
+        self._sample, self._window = sample_and_window(B, T, "300px")
         common = set.intersection(*(set(r.trace.parts) for r in self._runs.values()))
         parts = [("whole state", _ALL), ("top-layer h", _OUTPUT)] + [
             (p, p) for p in first.parts if p in common and len(common) > 1]

@@ -16,7 +16,7 @@ from ..._core.validation import as_sequences
 from ..._plotting.style import legend_outside, name_titles, wrap_titles
 from ..summary import key_figures, summary_sentence
 from . import render as _render
-from .board import _ALL, Board, Panel, check_analyses, task_context
+from .board import _ALL, Board, Panel, check_analyses, sample_and_window, task_context
 from .over_training import TAB_TITLE, OverTraining, check_timelines
 from .panels import Run, View, tab
 
@@ -79,15 +79,7 @@ class Explorer(Board):
         self.trace = trace
         B, T, S = trace.states.shape
 
-        self._sample = widgets.Dropdown(
-            options=[("all", "all")] + [(str(b), b) for b in range(B)], value="all",
-            description="sample", layout=widgets.Layout(width="90px"),
-            tooltip="one sequence, or all of them (redraws only)",
-            style={"description_width": "initial"})
-        self._window = widgets.IntRangeSlider(
-            value=(0, T), min=0, max=T, step=1, description="steps", continuous_update=False,
-            tooltip="the steps drawn, [first, last) (redraws only)",
-            style={"description_width": "initial"}, layout=widgets.Layout(width="340px"))
+        self._sample, self._window = sample_and_window(B, T, "340px")
         parts = [("whole state", _ALL)] + [(p, p) for p in trace.parts] if len(trace.parts) > 1 \
             else [("whole state", _ALL)]
         self._part = widgets.Dropdown(options=parts, value=_ALL, description="part",

@@ -11,7 +11,7 @@ from typing import Any
 
 import ipywidgets as widgets
 
-from ..._training.timeline import as_timeline
+from ..._training.timeline import timelines_by_run
 from ..summary import FIGURES
 from . import render as _render
 
@@ -25,14 +25,7 @@ def check_timelines(timelines: Any, runs: list[str]) -> dict[str, Any]:
     """Run name -> Timeline; one Timeline, Monitor or table belongs to the first run."""
     if timelines is None:
         return {}
-    if isinstance(timelines, Mapping):
-        unknown = [str(k) for k in timelines if k not in runs]
-        if unknown:
-            raise ValueError(f"timelines names runs that are not shown: {', '.join(unknown)}; "
-                             f"the runs are {', '.join(runs)}")
-        out = {str(k): as_timeline(v) for k, v in timelines.items() if v is not None}
-    else:
-        out = {runs[0]: as_timeline(timelines)}
+    out = timelines_by_run(timelines, runs, name="timelines", where="shown")
     if not out:
         raise ValueError("timelines holds no timeline; pass a Timeline, a Monitor or a "
                          "timeline table per run")
