@@ -110,6 +110,18 @@ def gaussian_inputs(shape: tuple[int, ...], seed: int = 0) -> np.ndarray:
     return np.random.default_rng(seed).standard_normal(shape).astype(np.float32)
 
 
+def cue_sequences(B: int, T: int, last_onset: int, seed: int = 0
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Noisy one-channel sequences (B, T, 1) with a cue of class 0, 1 or 2 (amplitude -2, 0, +2)
+    at a random onset before ``last_onset``: the inputs, the classes (B,) and the onsets (B,)."""
+    rng = np.random.default_rng(seed)
+    cls = rng.integers(3, size=B)
+    on = rng.integers(0, last_onset, size=B)
+    x = 0.3 * rng.standard_normal((B, T, 1))
+    x[np.arange(B), on, 0] += (cls - 1) * 2.0
+    return x, cls, on
+
+
 def heavy_modules_after(imports: str, heavy: tuple[str, ...]) -> str:
     """Which of ``heavy`` a fresh interpreter holds after ``import <imports>``, as the printed
     sorted list (``"[]"`` when none)."""

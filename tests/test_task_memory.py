@@ -17,6 +17,7 @@ from hiddenlens._analyses.task_memory import (
     task_memory_analysis,
     task_memory_key_figures,
 )
+from tests.conftest import cue_sequences
 
 N_DELAY = 6
 
@@ -33,12 +34,7 @@ def shift_register(n):
 
 @pytest.fixture(scope="module")
 def cue_data():
-    rng = np.random.default_rng(0)
-    B, T = 90, 24
-    cls = rng.integers(3, size=B)
-    on = rng.integers(0, 8, size=B)
-    x = 0.3 * rng.standard_normal((B, T, 1))
-    x[np.arange(B), on, 0] += (cls - 1) * 2.0
+    x, cls, on = cue_sequences(90, 24, 8)
     trace = hiddenlens.record(shift_register(N_DELAY), x)
     return trace, cls, on
 

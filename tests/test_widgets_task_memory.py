@@ -10,6 +10,7 @@ pytest.importorskip("ipywidgets")
 
 import hiddenlens  # noqa: E402
 from hiddenlens.widgets import compare, explore  # noqa: E402
+from tests.conftest import cue_sequences  # noqa: E402
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
 N_DELAY = 5
@@ -34,13 +35,7 @@ def leaky(a):
 
 @pytest.fixture(scope="module")
 def cues():
-    rng = np.random.default_rng(0)
-    B, T = 60, 20
-    colour = rng.integers(3, size=B)
-    onset = rng.integers(0, 5, size=B)
-    x = 0.3 * rng.standard_normal((B, T, 1))
-    x[np.arange(B), onset, 0] += (colour - 1) * 2.0
-    return x, colour, onset
+    return cue_sequences(60, 20, 5)
 
 
 def test_targets_add_the_task_memory_tab(cues):
