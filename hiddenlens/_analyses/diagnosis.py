@@ -137,60 +137,108 @@ def describe_figure(key: str, value: Any, interval: Sequence[float] | None = Non
     iv = _interval_words(interval)
     if math.isnan(v):
         return f"{term}: could not be measured (no finite value)"
-    if key == "gradient_rate":
-        if v == -math.inf:
-            return f"{term}: gradients vanish within one step"
-        if v == math.inf:
-            return f"{term}: gradients overflow within one step"
-        every = math.log(10.0) / abs(v) if v != 0 else math.inf
-        if every > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        word = "fall" if v < 0 else "grow"
-        return f"{term}: gradients {word} 10x every {_steps(every)} steps{iv}"
-    if key == "gradient_half_life":
-        if v == math.inf or v > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        if v <= 0:
-            return f"{term}: gradients vanish within one step"
-        return f"{term}: gradients halve every {_steps(v)} steps{iv}"
-    if key in ("memory_span", "task_memory_span"):
-        if v < 0:
-            return f"{term}: nothing decodable, even the current input"
-        if limit is not None and math.isfinite(limit) and v >= limit:
-            return f"{term}: at least {v:.0f} steps (the longest lag tried)"
-        if v == 0:
-            return f"{term}: only the current input is decodable (no step back)"
-        return f"{term}: {v:.0f} {_plural(v, 'step')}{iv}"
-    if key == "memory_max_lag":
-        return f"{term}: {v:.0f} {_plural(v, 'step')}"
-    if key == "kaplan_yorke_dimension":
-        if v == 0:
-            return f"{term}: no expanding direction (every exponent is negative)"
-        return f"{term}: {_num(v)}{iv}"
-    if key == "lyapunov_max":
-        if math.isinf(v):
-            return f"{term}: states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
-        kind = ("chaotic on these inputs" if v > _EDGE else
-                "near the edge of chaos" if v > -_EDGE else "contracting")
-        return f"{term}: {v:+.3g} per step, {kind}{iv}"
-    if key.startswith("fixed_points_"):
-        n = int(v)
-        return f"{term}: none found" if n == 0 else f"{term}: {n}"
-    if key == "fixed_point_norm":
-        if v == 0:
-            return f"{term}: at the origin"
-        return f"{term}: {_num(v)} from the origin"
-    if key == "participation_ratio":
-        return f"{term}: {v:.3g}{iv}"
-    if key == "top_singular_value_median":
-        if math.isinf(v):
-            return f"{term}: states overflow"
-        return f"{term}: one step stretches states by up to {_num(v)}x{iv}"
-    if key == "accuracy":
-        return f"{term}: {_percent(v)}{_interval_words(interval, _percent)}"
+    describe = _DESCRIBERS.get(key)
+    if describe is None and key.startswith("fixed_points_"):
+        describe = _fixed_point_count
+    if describe is None:
+        describe = _plain_figure
+    return describe(term, v, iv, interval, limit)
+
+
+# One describer per figure key: (term, finite-or-infinite value, interval words, interval,
+# limit) -> phrase. NaN, None and str values are handled before these are called.
+def _gradient_rate(term, v, iv, interval, limit):
+    if v == -math.inf:
+        return f"{term}: gradients vanish within one step"
+    if v == math.inf:
+        return f"{term}: gradients overflow within one step"
+    every = math.log(10.0) / abs(v) if v != 0 else math.inf
+    if every > _FLAT_STEPS:
+        return f"{term}: no decay over the lags seen"
+    word = "fall" if v < 0 else "grow"
+    return f"{term}: gradients {word} 10x every {_steps(every)} steps{iv}"
+
+
+def _gradient_half_life(term, v, iv, interval, limit):
+    if v == math.inf or v > _FLAT_STEPS:
+        return f"{term}: no decay over the lags seen"
+    if v <= 0:
+        return f"{term}: gradients vanish within one step"
+    return f"{term}: gradients halve every {_steps(v)} steps{iv}"
+
+
+def _memory_span(term, v, iv, interval, limit):
+    if v < 0:
+        return f"{term}: nothing decodable, even the current input"
+    if limit is not None and math.isfinite(limit) and v >= limit:
+        return f"{term}: at least {v:.0f} steps (the longest lag tried)"
+    if v == 0:
+        return f"{term}: only the current input is decodable (no step back)"
+    return f"{term}: {v:.0f} {_plural(v, 'step')}{iv}"
+
+
+def _memory_max_lag(term, v, iv, interval, limit):
+    return f"{term}: {v:.0f} {_plural(v, 'step')}"
+
+
+def _kaplan_yorke(term, v, iv, interval, limit):
+    if v == 0:
+        return f"{term}: no expanding direction (every exponent is negative)"
+    return f"{term}: {_num(v)}{iv}"
+
+
+def _lyapunov_max(term, v, iv, interval, limit):
+    if math.isinf(v):
+        return f"{term}: states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
+    kind = ("chaotic on these inputs" if v > _EDGE else
+            "near the edge of chaos" if v > -_EDGE else "contracting")
+    return f"{term}: {v:+.3g} per step, {kind}{iv}"
+
+
+def _fixed_point_count(term, v, iv, interval, limit):
+    n = int(v)
+    return f"{term}: none found" if n == 0 else f"{term}: {n}"
+
+
+def _fixed_point_norm(term, v, iv, interval, limit):
+    if v == 0:
+        return f"{term}: at the origin"
+    return f"{term}: {_num(v)} from the origin"
+
+
+def _participation_ratio(term, v, iv, interval, limit):
+    return f"{term}: {v:.3g}{iv}"
+
+
+def _top_singular_value(term, v, iv, interval, limit):
+    if math.isinf(v):
+        return f"{term}: states overflow"
+    return f"{term}: one step stretches states by up to {_num(v)}x{iv}"
+
+
+def _accuracy(term, v, iv, interval, limit):
+    return f"{term}: {_percent(v)}{_interval_words(interval, _percent)}"
+
+
+def _plain_figure(term, v, iv, interval, limit):
     if math.isinf(v):
         return f"{term}: {'beyond any finite value' if v > 0 else 'below any finite value'}"
     return f"{term}: {_num(v)}{iv}"
+
+
+_DESCRIBERS = {
+    "gradient_rate": _gradient_rate,
+    "gradient_half_life": _gradient_half_life,
+    "memory_span": _memory_span,
+    "task_memory_span": _memory_span,
+    "memory_max_lag": _memory_max_lag,
+    "kaplan_yorke_dimension": _kaplan_yorke,
+    "lyapunov_max": _lyapunov_max,
+    "fixed_point_norm": _fixed_point_norm,
+    "participation_ratio": _participation_ratio,
+    "top_singular_value_median": _top_singular_value,
+    "accuracy": _accuracy,
+}
 
 
 # ---------------------------------------------------------------------- noise
