@@ -620,6 +620,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     dt = states.dtype
     n_counted = T - warmup
     last_steps: set[int] = set()
+    n_b = counts_b = carry_b = None
     if lengths is not None:
         n_counted = int(lengths.max()) - warmup
         last_steps = {int(n) - 1 for n in lengths}
@@ -633,11 +634,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
 
     Q = torch.linalg.qr(_random_frame(seed, B, S, k)).Q.to(dt)  # (B, S, k)
 
-    if method == "jacobian":
-        chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
-    else:
-        chunk = min(_MAX_CHUNK_STEPS, 64)
-    chunk = min(chunk, T)
+    chunk = _chunk_steps(method, B, S, T)
     points = _curve_points(n_counted, qr_every)  # counted-step numbers, 1-based
     running = np.empty((points.shape[0], k))
     p_next = 0
@@ -657,25 +654,12 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
         for t0 in range(0, T, chunk):
             t1 = min(T, t0 + chunk)
             C = t1 - t0
-            if method == "jacobian":
-                J = _chunk_jacobians(system, prev[t0:t1], xt[t0:t1])  # (C, B, S, S)
+            J = _chunk_jacobians(system, prev[t0:t1], xt[t0:t1]) if method == "jacobian" \
+                else None  # (C, B, S, S)
             diag.fill_(1.0)  # steps without a QR add log 1 = 0
-            for j in range(C):
-                t = t0 + j
-                if reflectors is not None:
-                    Q = torch.ormqr(*reflectors, J[j], left=False)  # J @ Q, (B, S, S)
-                    reflectors = None
-                elif method == "jacobian":
-                    Q = torch.matmul(J[j], Q)  # (B, S, k)
-                else:
-                    Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
-                if _qr_due(t, warmup, qr_every, T) or t in last_steps:
-                    if householder:
-                        reflectors = torch.geqrf(Q)  # R on and above the diagonal of A
-                        diag[j] = reflectors[0].diagonal(dim1=-2, dim2=-1)
-                    else:
-                        Q, R = torch.linalg.qr(Q)
-                        diag[j] = R.diagonal(dim1=-2, dim2=-1)
+            Q, reflectors = _carry_frame(system, method, Q, reflectors, J, prev, xt, diag,
+                                         t0, C, (warmup, qr_every, T, last_steps),
+                                         householder)
             logs = diag[:C].to(torch.float64).abs_().log_()  # (C, B, k)
             if lengths is not None:  # padded steps count nothing (their frame is not used)
                 pad = torch.arange(t0, t1)[:, None] >= n_b[None, :]  # (C, B)
@@ -685,23 +669,68 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
             if c0 < t1:
                 counted = logs[c0 - t0:]  # (Cc, B, k)
                 sums += counted.sum(dim=0)
-                n_lo, n_hi = c0 - warmup + 1, t1 - warmup  # counted-step numbers in chunk
-                if lengths is None:
-                    csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
-                    carry = csum[-1].clone()
-                else:  # each sequence's running mean over its own counted steps so far
-                    csum_b = counted.cumsum(dim=0) + carry_b  # (Cc, B, k)
-                    carry_b = csum_b[-1].clone()
-                while p_next < points.shape[0] and points[p_next] <= n_hi:
-                    n = int(points[p_next])
-                    if lengths is None:
-                        running[p_next] = (csum[n - n_lo] / n).numpy()
-                    else:
-                        per = csum_b[n - n_lo] / counts_b.clamp(max=n)[:, None]  # (B, k)
-                        running[p_next] = per.mean(dim=0).numpy()
-                    p_next += 1
+                carry, carry_b, p_next = _keep_running(
+                    running, points, p_next, counted, c0 - warmup + 1, t1 - warmup,
+                    carry, carry_b, counts_b)
             bar.update(C)
     return sums.numpy(), running, points
+
+
+def _chunk_steps(method: str, B: int, S: int, T: int) -> int:
+    """Steps per chunk: the explicit route holds one chunk's Jacobians (B S S each)."""
+    if method == "jacobian":
+        chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
+    else:
+        chunk = min(_MAX_CHUNK_STEPS, 64)
+    return min(chunk, T)
+
+
+def _carry_frame(system, method, Q, reflectors, J, prev, xt, diag, t0, C, schedule,
+                 householder):
+    """Carry the frame over the C steps of one chunk from step t0; the diagonals of the QRs
+    done go into ``diag`` (C, B, k). ``schedule`` is (warmup, qr_every, T, last steps of
+    padded sequences). Returns the frame: (Q, None), or (None, reflectors) when held as
+    Householder reflectors."""
+    warmup, qr_every, T, last_steps = schedule
+    for j in range(C):
+        t = t0 + j
+        if reflectors is not None:
+            Q = torch.ormqr(*reflectors, J[j], left=False)  # J @ Q, (B, S, S)
+            reflectors = None
+        elif method == "jacobian":
+            Q = torch.matmul(J[j], Q)  # (B, S, k)
+        else:
+            Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
+        if _qr_due(t, warmup, qr_every, T) or t in last_steps:
+            if householder:
+                reflectors = torch.geqrf(Q)  # R on and above the diagonal of A
+                diag[j] = reflectors[0].diagonal(dim1=-2, dim2=-1)
+            else:
+                Q, R = torch.linalg.qr(Q)
+                diag[j] = R.diagonal(dim1=-2, dim2=-1)
+    return Q, reflectors
+
+
+def _keep_running(running, points, p_next, counted, n_lo, n_hi, carry, carry_b, counts_b):
+    """Store the running estimate at the curve points among counted steps n_lo..n_hi
+    (1-based) of one chunk, from its counted logs (Cc, B, k). Without ``counts_b`` (each
+    padded sequence's counted steps) the mean over samples is summed (``carry``), else each
+    sequence's own sums (``carry_b``). Returns (carry, carry_b, next point)."""
+    if counts_b is None:
+        csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
+        carry = csum[-1].clone()
+    else:  # each sequence's running mean over its own counted steps so far
+        csum_b = counted.cumsum(dim=0) + carry_b  # (Cc, B, k)
+        carry_b = csum_b[-1].clone()
+    while p_next < points.shape[0] and points[p_next] <= n_hi:
+        n = int(points[p_next])
+        if counts_b is None:
+            running[p_next] = (csum[n - n_lo] / n).numpy()
+        else:
+            per = csum_b[n - n_lo] / counts_b.clamp(max=n)[:, None]  # (B, k)
+            running[p_next] = per.mean(dim=0).numpy()
+        p_next += 1
+    return carry, carry_b, p_next
 
 
 def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
