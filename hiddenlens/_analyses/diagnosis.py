@@ -137,60 +137,108 @@ def describe_figure(key: str, value: Any, interval: Sequence[float] | None = Non
     iv = _interval_words(interval)
     if math.isnan(v):
         return f"{term}: could not be measured (no finite value)"
-    if key == "gradient_rate":
-        if v == -math.inf:
-            return f"{term}: gradients vanish within one step"
-        if v == math.inf:
-            return f"{term}: gradients overflow within one step"
-        every = math.log(10.0) / abs(v) if v != 0 else math.inf
-        if every > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        word = "fall" if v < 0 else "grow"
-        return f"{term}: gradients {word} 10x every {_steps(every)} steps{iv}"
-    if key == "gradient_half_life":
-        if v == math.inf or v > _FLAT_STEPS:
-            return f"{term}: no decay over the lags seen"
-        if v <= 0:
-            return f"{term}: gradients vanish within one step"
-        return f"{term}: gradients halve every {_steps(v)} steps{iv}"
-    if key in ("memory_span", "task_memory_span"):
-        if v < 0:
-            return f"{term}: nothing decodable, even the current input"
-        if limit is not None and math.isfinite(limit) and v >= limit:
-            return f"{term}: at least {v:.0f} steps (the longest lag tried)"
-        if v == 0:
-            return f"{term}: only the current input is decodable (no step back)"
-        return f"{term}: {v:.0f} {_plural(v, 'step')}{iv}"
-    if key == "memory_max_lag":
-        return f"{term}: {v:.0f} {_plural(v, 'step')}"
-    if key == "kaplan_yorke_dimension":
-        if v == 0:
-            return f"{term}: no expanding direction (every exponent is negative)"
-        return f"{term}: {_num(v)}{iv}"
-    if key == "lyapunov_max":
-        if math.isinf(v):
-            return f"{term}: states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
-        kind = ("chaotic on these inputs" if v > _EDGE else
-                "near the edge of chaos" if v > -_EDGE else "contracting")
-        return f"{term}: {v:+.3g} per step, {kind}{iv}"
-    if key.startswith("fixed_points_"):
-        n = int(v)
-        return f"{term}: none found" if n == 0 else f"{term}: {n}"
-    if key == "fixed_point_norm":
-        if v == 0:
-            return f"{term}: at the origin"
-        return f"{term}: {_num(v)} from the origin"
-    if key == "participation_ratio":
-        return f"{term}: {v:.3g}{iv}"
-    if key == "top_singular_value_median":
-        if math.isinf(v):
-            return f"{term}: states overflow"
-        return f"{term}: one step stretches states by up to {_num(v)}x{iv}"
-    if key == "accuracy":
-        return f"{term}: {_percent(v)}{_interval_words(interval, _percent)}"
+    describe = _DESCRIBERS.get(key)
+    if describe is None and key.startswith("fixed_points_"):
+        describe = _fixed_point_count
+    if describe is None:
+        describe = _plain_figure
+    return describe(term, v, iv, interval, limit)
+
+
+# One describer per figure key: (term, finite-or-infinite value, interval words, interval,
+# limit) -> phrase. NaN, None and str values are handled before these are called.
+def _gradient_rate(term, v, iv, interval, limit):
+    if v == -math.inf:
+        return f"{term}: gradients vanish within one step"
+    if v == math.inf:
+        return f"{term}: gradients overflow within one step"
+    every = math.log(10.0) / abs(v) if v != 0 else math.inf
+    if every > _FLAT_STEPS:
+        return f"{term}: no decay over the lags seen"
+    word = "fall" if v < 0 else "grow"
+    return f"{term}: gradients {word} 10x every {_steps(every)} steps{iv}"
+
+
+def _gradient_half_life(term, v, iv, interval, limit):
+    if v == math.inf or v > _FLAT_STEPS:
+        return f"{term}: no decay over the lags seen"
+    if v <= 0:
+        return f"{term}: gradients vanish within one step"
+    return f"{term}: gradients halve every {_steps(v)} steps{iv}"
+
+
+def _memory_span(term, v, iv, interval, limit):
+    if v < 0:
+        return f"{term}: nothing decodable, even the current input"
+    if limit is not None and math.isfinite(limit) and v >= limit:
+        return f"{term}: at least {v:.0f} steps (the longest lag tried)"
+    if v == 0:
+        return f"{term}: only the current input is decodable (no step back)"
+    return f"{term}: {v:.0f} {_plural(v, 'step')}{iv}"
+
+
+def _memory_max_lag(term, v, iv, interval, limit):
+    return f"{term}: {v:.0f} {_plural(v, 'step')}"
+
+
+def _kaplan_yorke(term, v, iv, interval, limit):
+    if v == 0:
+        return f"{term}: no expanding direction (every exponent is negative)"
+    return f"{term}: {_num(v)}{iv}"
+
+
+def _lyapunov_max(term, v, iv, interval, limit):
+    if math.isinf(v):
+        return f"{term}: states {'overflow' if v > 0 else 'collapse'} (no finite exponent)"
+    kind = ("chaotic on these inputs" if v > _EDGE else
+            "near the edge of chaos" if v > -_EDGE else "contracting")
+    return f"{term}: {v:+.3g} per step, {kind}{iv}"
+
+
+def _fixed_point_count(term, v, iv, interval, limit):
+    n = int(v)
+    return f"{term}: none found" if n == 0 else f"{term}: {n}"
+
+
+def _fixed_point_norm(term, v, iv, interval, limit):
+    if v == 0:
+        return f"{term}: at the origin"
+    return f"{term}: {_num(v)} from the origin"
+
+
+def _participation_ratio(term, v, iv, interval, limit):
+    return f"{term}: {v:.3g}{iv}"
+
+
+def _top_singular_value(term, v, iv, interval, limit):
+    if math.isinf(v):
+        return f"{term}: states overflow"
+    return f"{term}: one step stretches states by up to {_num(v)}x{iv}"
+
+
+def _accuracy(term, v, iv, interval, limit):
+    return f"{term}: {_percent(v)}{_interval_words(interval, _percent)}"
+
+
+def _plain_figure(term, v, iv, interval, limit):
     if math.isinf(v):
         return f"{term}: {'beyond any finite value' if v > 0 else 'below any finite value'}"
     return f"{term}: {_num(v)}{iv}"
+
+
+_DESCRIBERS = {
+    "gradient_rate": _gradient_rate,
+    "gradient_half_life": _gradient_half_life,
+    "memory_span": _memory_span,
+    "task_memory_span": _memory_span,
+    "memory_max_lag": _memory_max_lag,
+    "kaplan_yorke_dimension": _kaplan_yorke,
+    "lyapunov_max": _lyapunov_max,
+    "fixed_point_norm": _fixed_point_norm,
+    "participation_ratio": _participation_ratio,
+    "top_singular_value_median": _top_singular_value,
+    "accuracy": _accuracy,
+}
 
 
 # ---------------------------------------------------------------------- noise
@@ -427,98 +475,33 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
         raise TypeError("figures must be a mapping of key figures (from key_figures()), got "
                         f"{type(figures).__name__}")
     t = _check_task(task)
-    if horizon is None:
-        horizon = t.get("horizon")
-    if horizon is not None:
-        if isinstance(horizon, bool) or not isinstance(horizon, numbers.Real) \
-                or not math.isfinite(horizon) or horizon <= 0:
-            raise ValueError(f"horizon must be a positive number of steps, got {horizon!r}; "
-                             "pass e.g. the task's longest delay")
-        horizon = float(horizon)
+    horizon = _check_horizon(t.get("horizon") if horizon is None else horizon)
     if name is not None and not isinstance(name, str):
         raise TypeError(f"name must be a str, got {type(name).__name__}")
-    if settings is not None and not (isinstance(settings, Mapping) and all(
-            isinstance(v, Mapping) for v in settings.values())):
-        raise TypeError("settings must be a mapping analysis name -> options used (e.g. "
-                        "{'lyapunov': {'warmup': 50}}), got "
-                        f"{type(settings).__name__}")
-    settings = dict(settings or {})
+    settings = _check_settings(settings)
 
     task_level, score, interval, task_words = _task_outcome(t)
     g_level, g_clause, g_dir = _gradient_clause(figures, horizon)
+    lam, unbounded, dynamics_words = _dynamics_reading(figures)
+    chaotic = lam is not None and lam > _EDGE
+    span_key, span, limit = _span_reading(figures)
+    solved = task_level == "ok"
 
-    reasons: list[str] = []
-    warnings: list[str] = []
-    suggestions: list[str] = []
-    if task_words:
-        reasons.append(task_words)
-    if g_clause:
-        reasons.append(g_clause)
-
-    lam = _finite(figures.get("lyapunov_max"))
-    growth = _finite(figures.get("lyapunov_state_growth"))
-    from .lyapunov import is_unbounded
-
-    unbounded = lam is not None and is_unbounded(growth, figures.get("lyapunov_steps"))
-    if unbounded:
-        # chaos needs a bounded trajectory; a positive exponent along growing states is not it
-        reasons.append(f"the states grow without bound along these inputs (~x"
-                       f"{math.exp(growth):.3g} per step; largest Lyapunov exponent "
-                       f"{lam:+.3g} per step: divergence, not chaos)")
-        lam = None  # no "chaotic" reading below
-    if lam is not None and lam > _EDGE:
-        reasons.append(f"chaotic on these inputs (largest Lyapunov exponent {lam:+.3g} per step)")
-
-    limit = _finite(figures.get("memory_max_lag"))
-    span_key = "task_memory_span" if figures.get("task_memory_span") is not None \
-        else "memory_span"
-    span = _finite(figures.get(span_key))
+    reasons = [r for r in (task_words, g_clause, dynamics_words) if r]
     if span is not None:
         reasons.append(describe_figure(span_key, span, limit=limit))
-
-    solved = task_level == "ok"
-    failed = task_level == "failing"
-    if solved and span_key == "memory_span" and span is not None and horizon is not None \
-            and span < horizon and (limit is None or span < limit):
-        warnings.append(
-            f"the memory span ({span:.0f} {_plural(span, 'step')} on i.i.d. probe inputs) is "
-            f"below the "
-            f"task's {horizon:.0f} steps although the task is solved: the probe-based span "
-            "does not measure the variable this task stores; use task_memory on the task's "
-            "own inputs and target for a span that does")
-    if solved and g_level == "failing":
-        warnings.append(
-            "the gradient reading says failing, yet the task is solved: the rate is a "
-            "straight-line fit along these recorded inputs and may miss the few directions "
-            "that carry the task's variable (gated cells keep them apart); read it as a "
-            "statement about these trajectories, not about training")
-    if solved and lam is not None and lam > _EDGE:
-        warnings.append("chaotic on these inputs, yet the task is solved: the exponent is an "
-                        "average along the recorded inputs and need not bear on the readout")
-    if failed and g_level == "ok" and not unbounded and (lam is None or lam <= _EDGE):
-        warnings.append("the dynamics figures do not explain the failure; the readout, the "
-                        "training length or the learning rate may be the limit")
     if span_key == "task_memory_span" and span is not None and horizon is not None \
             and span < horizon and not solved:
         reasons.append(f"the state holds the task's variable for {span:.0f} of the "
                        f"{horizon:.0f} steps the task needs")
+    short_span = span_key == "memory_span" and span is not None and horizon is not None \
+        and span < horizon and (limit is None or span < limit)
+    warnings = _contradictions(task_level, g_level, chaotic, unbounded,
+                               span if short_span else None, horizon)
     warnings.extend(_degenerate(figures, settings, horizon))
 
     level = task_level or g_level or "unknown"
-    if task_level is None and g_level == "unknown":
-        level = "unknown"
-
-    if level in ("marginal", "failing"):
-        if g_dir == "down" and g_level in ("marginal", "failing"):
-            suggestions.append("a gated cell (GRU or LSTM), or an initial recurrent gain nearer "
-                               "1, may let gradients reach further back")
-        if g_dir == "up" or (lam is not None and lam > _EDGE):
-            suggestions.append("a lower initial recurrent gain, gradient-norm clipping or a "
-                               "gated cell may calm the expanding dynamics")
-        if not suggestions and horizon is not None:
-            suggestions.append("training on short delays first and lengthening them may help")
-        if suggestions:
-            suggestions.append("change one thing at a time and compare the runs")
+    suggestions = _suggestions(level, g_level, g_dir, chaotic, horizon)
 
     head = f"{name}: {level}" if name else level
     text = head + (": " + "; ".join(reasons) if reasons else ": no task metrics or figures")
@@ -529,6 +512,105 @@ def diagnose(figures: Mapping[str, Any], *, task: Mapping[str, Any] | None = Non
         suggestions=tuple(suggestions), score=score, interval=interval,
         figures=frozen_mapping(dict(figures)), task=frozen_mapping(t),
     )
+
+
+def _check_horizon(horizon: Any) -> float | None:
+    """The task's horizon as a float, or a ValueError saying what a horizon is."""
+    if horizon is None:
+        return None
+    if isinstance(horizon, bool) or not isinstance(horizon, numbers.Real) \
+            or not math.isfinite(horizon) or horizon <= 0:
+        raise ValueError(f"horizon must be a positive number of steps, got {horizon!r}; "
+                         "pass e.g. the task's longest delay")
+    return float(horizon)
+
+
+def _check_settings(settings: Any) -> dict[str, Mapping[str, Any]]:
+    """A plain dict of the per-analysis options, or a TypeError saying what is expected."""
+    if settings is not None and not (isinstance(settings, Mapping) and all(
+            isinstance(v, Mapping) for v in settings.values())):
+        raise TypeError("settings must be a mapping analysis name -> options used (e.g. "
+                        "{'lyapunov': {'warmup': 50}}), got "
+                        f"{type(settings).__name__}")
+    return dict(settings or {})
+
+
+def _dynamics_reading(figures: Mapping[str, Any]) -> tuple[float | None, bool, str | None]:
+    """(largest exponent or None, unbounded growth?, clause) of the Lyapunov figures.
+
+    Along states that grow without bound a positive exponent is divergence, not chaos: the
+    exponent is then returned as None so that nothing reads it as chaotic.
+    """
+    lam = _finite(figures.get("lyapunov_max"))
+    growth = _finite(figures.get("lyapunov_state_growth"))
+    from .lyapunov import is_unbounded
+
+    if lam is not None and is_unbounded(growth, figures.get("lyapunov_steps")):
+        return None, True, (f"the states grow without bound along these inputs (~x"
+                            f"{math.exp(growth):.3g} per step; largest Lyapunov exponent "
+                            f"{lam:+.3g} per step: divergence, not chaos)")
+    if lam is not None and lam > _EDGE:
+        return lam, False, (f"chaotic on these inputs (largest Lyapunov exponent {lam:+.3g} "
+                            "per step)")
+    return lam, False, None
+
+
+def _span_reading(figures: Mapping[str, Any]) -> tuple[str, float | None, float | None]:
+    """(key of the span used, span, longest lag tried): the task's own span when present."""
+    limit = _finite(figures.get("memory_max_lag"))
+    span_key = "task_memory_span" if figures.get("task_memory_span") is not None \
+        else "memory_span"
+    return span_key, _finite(figures.get(span_key)), limit
+
+
+def _contradictions(task_level: str | None, g_level: str | None, chaotic: bool,
+                    unbounded: bool, short_span: float | None, horizon: float | None
+                    ) -> list[str]:
+    """Cautions where the figures and the task outcome disagree.
+
+    ``short_span`` is the probe-input memory span where it falls short of the horizon (and of
+    the longest lag tried), else None.
+    """
+    out: list[str] = []
+    solved = task_level == "ok"
+    if solved and short_span is not None:
+        out.append(
+            f"the memory span ({short_span:.0f} {_plural(short_span, 'step')} on i.i.d. probe "
+            f"inputs) is below the task's {horizon:.0f} steps although the task is solved: the "
+            "probe-based span does not measure the variable this task stores; use task_memory "
+            "on the task's own inputs and target for a span that does")
+    if solved and g_level == "failing":
+        out.append(
+            "the gradient reading says failing, yet the task is solved: the rate is a "
+            "straight-line fit along these recorded inputs and may miss the few directions "
+            "that carry the task's variable (gated cells keep them apart); read it as a "
+            "statement about these trajectories, not about training")
+    if solved and chaotic:
+        out.append("chaotic on these inputs, yet the task is solved: the exponent is an "
+                   "average along the recorded inputs and need not bear on the readout")
+    if task_level == "failing" and g_level == "ok" and not unbounded and not chaotic:
+        out.append("the dynamics figures do not explain the failure; the readout, the "
+                   "training length or the learning rate may be the limit")
+    return out
+
+
+def _suggestions(level: str, g_level: str | None, g_dir: str | None, chaotic: bool,
+                 horizon: float | None) -> list[str]:
+    """What may be worth trying for a marginal or failing run (none for the others)."""
+    if level not in ("marginal", "failing"):
+        return []
+    out: list[str] = []
+    if g_dir == "down" and g_level in ("marginal", "failing"):
+        out.append("a gated cell (GRU or LSTM), or an initial recurrent gain nearer "
+                   "1, may let gradients reach further back")
+    if g_dir == "up" or chaotic:
+        out.append("a lower initial recurrent gain, gradient-norm clipping or a "
+                   "gated cell may calm the expanding dynamics")
+    if not out and horizon is not None:
+        out.append("training on short delays first and lengthening them may help")
+    if out:
+        out.append("change one thing at a time and compare the runs")
+    return out
 
 
 def rank_runs(diagnoses: Iterable[Diagnosis]) -> list[tuple[int | None, Diagnosis]]:

@@ -367,44 +367,9 @@ def lyapunov_spectrum(
     """
     check_options("lyapunov_spectrum", locals())
     seed = int_seed(seed)  # a numpy Generator gives one draw; local generators from here
-    if dtype is not None and not isinstance(system, RecurrentSystem):
-        wrap_options.setdefault("dtype", dtype)
-    if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
-            and wrap_options.get("input_size", 0) == 0 and state_only(system) is not None:
-        system, wrap_options = state_only(system), {**wrap_options, "input_size": 0}
-    system = as_system(system, **wrap_options)
-    if dtype is not None:
-        system = _with_dtype(system, as_dtype(dtype))
+    system = _system_of(system, dtype, wrap_options)
     dt = system.dtype
-    if inputs is not None:  # the 0.1 keyword form lyapunov_spectrum(system, inputs=x)
-        if trace is not None:
-            raise TypeError("lyapunov_spectrum got both a trace and inputs; pass only the trace")
-        trace = inputs
-    if steps is not None or (isinstance(trace, (int, np.integer))
-                             and not isinstance(trace, bool)):
-        # an autonomous map driven for a number of steps: recorded here, from h0
-        trace = record(system, _autonomous_inputs(system, trace, steps, h0, dt), h0)
-        h0 = None
-    if trace is None:
-        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
-                        "trace = hiddenlens.record(system, inputs)")
-    recorded = isinstance(trace, Trace)
-    if recorded:
-        check_trace_fits(system, trace, "lyapunov_spectrum")
-        check_trace_finite(trace, "lyapunov_spectrum")
-        if h0 is not None:
-            raise ValueError("h0 was given with a trace, which holds its own initial states; "
-                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
-        # the recorded trajectory is reused as it is (inputs already in the system's order)
-        x = torch.as_tensor(np.array(trace.inputs), dtype=dt)  # (B, T, I)
-    else:
-        warnings.warn(
-            "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
-            "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
-            DeprecationWarning, stacklevel=3)
-        x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
-        if system.time_reversed:
-            x = x.flip(1)
+    trace, recorded, x, h0 = _inputs_of(system, trace, inputs, steps, h0, dt)
     B, T, _ = x.shape
     S = system.state_size
     k = _check_k(k, S)
@@ -415,11 +380,7 @@ def lyapunov_spectrum(
     # padded sequences: each counts its own real steps after the shared warm-up
     warmup = _check_warmup(warmup, T if lengths is None else int(lengths.min()))
     qr_every = _check_positive_int(qr_every, "qr_every", "re-orthonormalise every step: 1")
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
-    chosen = _choose_method(system, k) if method == "auto" else method
+    chosen = _check_method_and_seed(system, k, method, seed)
     if recorded:
         s0 = torch.as_tensor(np.array(trace.initial), dtype=dt)  # (B, S)
     else:
@@ -452,25 +413,9 @@ def lyapunov_spectrum(
                             "fingerprint": system.fingerprint, "counted_steps": T - warmup}
     if lengths is not None:
         meta["counted_steps"] = counts.tolist()  # per sequence: its own length - warmup
-    cautions = []
-    still = _stationary(states, s0, warmup)
-    if still:
-        cautions.append(still)
-        warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
-                      "start from another h0 (e.g. a small random state) or drive the system",
-                      StationaryTrajectoryWarning, stacklevel=2)
-    growth = state_growth(states, warmup, lengths)
-    meta["state_growth"] = growth
-    fewest = int(counts.min())
-    if is_unbounded(growth, fewest):
-        cautions.append(f"the states grow without bound (about x{math.exp(growth):.3g} per "
-                        "step over the counted steps): the exponent measures divergence, not "
-                        "chaos")
-    if fewest < MIN_COUNTED_STEPS:
-        cautions.append(f"from only {fewest} counted step{'s' if fewest != 1 else ''} "
-                        f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
-    if cautions:
-        meta["caution"] = "; ".join(cautions)
+    meta["state_growth"], caution = _caution(states, s0, warmup, lengths, counts)
+    if caution:
+        meta["caution"] = caution
     # leaky RNNs built with dt: exponents per unit of the model's own time too
     meta["dt"] = system.dt
     meta["exponents_per_unit_time"] = (None if system.dt is None
@@ -489,6 +434,88 @@ def lyapunov_spectrum(
         dtype=str(dt).replace("torch.", ""),
         metadata=meta,
     )
+
+
+def _system_of(system: Any, dtype: Any, wrap_options: dict[str, Any]) -> RecurrentSystem:
+    """The system to analyse: wrapped with ``wrap_options`` where needed, in ``dtype``."""
+    if dtype is not None and not isinstance(system, RecurrentSystem):
+        wrap_options.setdefault("dtype", dtype)
+    if callable(system) and not isinstance(system, (RecurrentSystem, torch.nn.Module)) \
+            and wrap_options.get("input_size", 0) == 0 and state_only(system) is not None:
+        system, wrap_options = state_only(system), {**wrap_options, "input_size": 0}
+    system = as_system(system, **wrap_options)
+    if dtype is not None:
+        system = _with_dtype(system, as_dtype(dtype))
+    return system
+
+
+def _inputs_of(system: RecurrentSystem, trace: Any, inputs: Any, steps: Any, h0: Any,
+               dt: torch.dtype) -> tuple[Any, bool, torch.Tensor, Any]:
+    """(trace, recorded?, inputs (B, T, I) in the system's order, h0 still to use).
+
+    A number of steps of an autonomous map is recorded here; bare input sequences (the
+    deprecated form) are kept as inputs, to be run from ``h0``.
+    """
+    if inputs is not None:  # the 0.1 keyword form lyapunov_spectrum(system, inputs=x)
+        if trace is not None:
+            raise TypeError("lyapunov_spectrum got both a trace and inputs; pass only the trace")
+        trace = inputs
+    if steps is not None or (isinstance(trace, (int, np.integer))
+                             and not isinstance(trace, bool)):
+        # an autonomous map driven for a number of steps: recorded here, from h0
+        trace = record(system, _autonomous_inputs(system, trace, steps, h0, dt), h0)
+        h0 = None
+    if trace is None:
+        raise TypeError("lyapunov_spectrum needs a trace: lyapunov_spectrum(system, trace) with "
+                        "trace = hiddenlens.record(system, inputs)")
+    if isinstance(trace, Trace):
+        check_trace_fits(system, trace, "lyapunov_spectrum")
+        check_trace_finite(trace, "lyapunov_spectrum")
+        if h0 is not None:
+            raise ValueError("h0 was given with a trace, which holds its own initial states; "
+                             "drop h0, or record with hiddenlens.record(system, inputs, h0)")
+        # the recorded trajectory is reused as it is (inputs already in the system's order)
+        return trace, True, torch.as_tensor(np.array(trace.inputs), dtype=dt), h0  # (B, T, I)
+    warnings.warn(
+        "lyapunov_spectrum(system, inputs) is deprecated; record first and pass the trace: "
+        "lyapunov_spectrum(system, hiddenlens.record(system, inputs, h0))",
+        DeprecationWarning, stacklevel=4)
+    x = as_sequences(trace, system.input_size, dt, what=f"the {system.source} system")
+    if system.time_reversed:
+        x = x.flip(1)
+    return trace, False, x, h0
+
+
+def _check_method_and_seed(system: RecurrentSystem, k: int, method: Any, seed: Any) -> str:
+    """The method to use (``"auto"`` resolved), after checking ``method`` and ``seed``."""
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+    return _choose_method(system, k) if method == "auto" else method
+
+
+def _caution(states: torch.Tensor, s0: torch.Tensor, warmup: int, lengths: Any,
+             counts: np.ndarray) -> tuple[float, str | None]:
+    """(state growth, caution or None) of the run: a stationary trajectory (also warned
+    about), unbounded states, too few counted steps."""
+    cautions = []
+    still = _stationary(states, s0, warmup)
+    if still:
+        cautions.append(still)
+        warnings.warn(f"{still}; the exponents are those of that point, not of an attractor: "
+                      "start from another h0 (e.g. a small random state) or drive the system",
+                      StationaryTrajectoryWarning, stacklevel=3)
+    growth = state_growth(states, warmup, lengths)
+    fewest = int(counts.min())
+    if is_unbounded(growth, fewest):
+        cautions.append(f"the states grow without bound (about x{math.exp(growth):.3g} per "
+                        "step over the counted steps): the exponent measures divergence, not "
+                        "chaos")
+    if fewest < MIN_COUNTED_STEPS:
+        cautions.append(f"from only {fewest} counted step{'s' if fewest != 1 else ''} "
+                        f"(fewer than {MIN_COUNTED_STEPS}): not conclusive, run longer inputs")
+    return growth, "; ".join(cautions) if cautions else None
 
 
 #: Fewer counted steps than this mark the exponents as not conclusive (``metadata["caution"]``).
@@ -593,6 +620,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
     dt = states.dtype
     n_counted = T - warmup
     last_steps: set[int] = set()
+    n_b = counts_b = carry_b = None
     if lengths is not None:
         n_counted = int(lengths.max()) - warmup
         last_steps = {int(n) - 1 for n in lengths}
@@ -606,11 +634,7 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
 
     Q = torch.linalg.qr(_random_frame(seed, B, S, k)).Q.to(dt)  # (B, S, k)
 
-    if method == "jacobian":
-        chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
-    else:
-        chunk = min(_MAX_CHUNK_STEPS, 64)
-    chunk = min(chunk, T)
+    chunk = _chunk_steps(method, B, S, T)
     points = _curve_points(n_counted, qr_every)  # counted-step numbers, 1-based
     running = np.empty((points.shape[0], k))
     p_next = 0
@@ -630,25 +654,12 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
         for t0 in range(0, T, chunk):
             t1 = min(T, t0 + chunk)
             C = t1 - t0
-            if method == "jacobian":
-                J = _chunk_jacobians(system, prev[t0:t1], xt[t0:t1])  # (C, B, S, S)
+            J = _chunk_jacobians(system, prev[t0:t1], xt[t0:t1]) if method == "jacobian" \
+                else None  # (C, B, S, S)
             diag.fill_(1.0)  # steps without a QR add log 1 = 0
-            for j in range(C):
-                t = t0 + j
-                if reflectors is not None:
-                    Q = torch.ormqr(*reflectors, J[j], left=False)  # J @ Q, (B, S, S)
-                    reflectors = None
-                elif method == "jacobian":
-                    Q = torch.matmul(J[j], Q)  # (B, S, k)
-                else:
-                    Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
-                if _qr_due(t, warmup, qr_every, T) or t in last_steps:
-                    if householder:
-                        reflectors = torch.geqrf(Q)  # R on and above the diagonal of A
-                        diag[j] = reflectors[0].diagonal(dim1=-2, dim2=-1)
-                    else:
-                        Q, R = torch.linalg.qr(Q)
-                        diag[j] = R.diagonal(dim1=-2, dim2=-1)
+            Q, reflectors = _carry_frame(system, method, Q, reflectors, J, prev, xt, diag,
+                                         t0, C, (warmup, qr_every, T, last_steps),
+                                         householder)
             logs = diag[:C].to(torch.float64).abs_().log_()  # (C, B, k)
             if lengths is not None:  # padded steps count nothing (their frame is not used)
                 pad = torch.arange(t0, t1)[:, None] >= n_b[None, :]  # (C, B)
@@ -658,23 +669,68 @@ def _qr_sweep(system, x, s0, states, k, warmup, qr_every, method, seed, progress
             if c0 < t1:
                 counted = logs[c0 - t0:]  # (Cc, B, k)
                 sums += counted.sum(dim=0)
-                n_lo, n_hi = c0 - warmup + 1, t1 - warmup  # counted-step numbers in chunk
-                if lengths is None:
-                    csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
-                    carry = csum[-1].clone()
-                else:  # each sequence's running mean over its own counted steps so far
-                    csum_b = counted.cumsum(dim=0) + carry_b  # (Cc, B, k)
-                    carry_b = csum_b[-1].clone()
-                while p_next < points.shape[0] and points[p_next] <= n_hi:
-                    n = int(points[p_next])
-                    if lengths is None:
-                        running[p_next] = (csum[n - n_lo] / n).numpy()
-                    else:
-                        per = csum_b[n - n_lo] / counts_b.clamp(max=n)[:, None]  # (B, k)
-                        running[p_next] = per.mean(dim=0).numpy()
-                    p_next += 1
+                carry, carry_b, p_next = _keep_running(
+                    running, points, p_next, counted, c0 - warmup + 1, t1 - warmup,
+                    carry, carry_b, counts_b)
             bar.update(C)
     return sums.numpy(), running, points
+
+
+def _chunk_steps(method: str, B: int, S: int, T: int) -> int:
+    """Steps per chunk: the explicit route holds one chunk's Jacobians (B S S each)."""
+    if method == "jacobian":
+        chunk = max(1, min(_MAX_CHUNK_STEPS, _JACOBIAN_BUDGET // (B * S * S)))
+    else:
+        chunk = min(_MAX_CHUNK_STEPS, 64)
+    return min(chunk, T)
+
+
+def _carry_frame(system, method, Q, reflectors, J, prev, xt, diag, t0, C, schedule,
+                 householder):
+    """Carry the frame over the C steps of one chunk from step t0; the diagonals of the QRs
+    done go into ``diag`` (C, B, k). ``schedule`` is (warmup, qr_every, T, last steps of
+    padded sequences). Returns the frame: (Q, None), or (None, reflectors) when held as
+    Householder reflectors."""
+    warmup, qr_every, T, last_steps = schedule
+    for j in range(C):
+        t = t0 + j
+        if reflectors is not None:
+            Q = torch.ormqr(*reflectors, J[j], left=False)  # J @ Q, (B, S, S)
+            reflectors = None
+        elif method == "jacobian":
+            Q = torch.matmul(J[j], Q)  # (B, S, k)
+        else:
+            Q = step_jvp(system, prev[t], xt[t], Q)  # (B, S, k), J never formed
+        if _qr_due(t, warmup, qr_every, T) or t in last_steps:
+            if householder:
+                reflectors = torch.geqrf(Q)  # R on and above the diagonal of A
+                diag[j] = reflectors[0].diagonal(dim1=-2, dim2=-1)
+            else:
+                Q, R = torch.linalg.qr(Q)
+                diag[j] = R.diagonal(dim1=-2, dim2=-1)
+    return Q, reflectors
+
+
+def _keep_running(running, points, p_next, counted, n_lo, n_hi, carry, carry_b, counts_b):
+    """Store the running estimate at the curve points among counted steps n_lo..n_hi
+    (1-based) of one chunk, from its counted logs (Cc, B, k). Without ``counts_b`` (each
+    padded sequence's counted steps) the mean over samples is summed (``carry``), else each
+    sequence's own sums (``carry_b``). Returns (carry, carry_b, next point)."""
+    if counts_b is None:
+        csum = counted.mean(dim=1).cumsum(dim=0) + carry  # (Cc, k)
+        carry = csum[-1].clone()
+    else:  # each sequence's running mean over its own counted steps so far
+        csum_b = counted.cumsum(dim=0) + carry_b  # (Cc, B, k)
+        carry_b = csum_b[-1].clone()
+    while p_next < points.shape[0] and points[p_next] <= n_hi:
+        n = int(points[p_next])
+        if counts_b is None:
+            running[p_next] = (csum[n - n_lo] / n).numpy()
+        else:
+            per = csum_b[n - n_lo] / counts_b.clamp(max=n)[:, None]  # (B, k)
+            running[p_next] = per.mean(dim=0).numpy()
+        p_next += 1
+    return carry, carry_b, p_next
 
 
 def _random_frame(seed: int, B: int, S: int, k: int) -> torch.Tensor:
