@@ -416,11 +416,7 @@ class Board(widgets.VBox):
 
     # ------------------------------------------------------------------ show / draw
     def _on_tab(self) -> None:
-        name = self.current
-        if name:
-            self._show(self._panels[name])
-        else:
-            self._show_extra(self._tabs.selected_index - len(self._panels))
+        self._on_shared()
         self._update_shared_state()
 
     def _show_extra(self, index: int) -> None:
