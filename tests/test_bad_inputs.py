@@ -497,6 +497,10 @@ CASES = {
         gru(), inputs(), which=["pca"], options={"pca": {"k": "2"}}),
     ("`run_analyses`", "`options={\"pca\": {\"zzz\": 1}}`"): lambda: hl.run_analyses(
         gru(), inputs(), which=["pca"], options={"pca": {"zzz": 1}}),
+    ("`run_analyses`", "`options={\"task_memory\": {\"zzz\": 1}}` with task targets"):
+        lambda: hl.run_analyses(gru(), inputs(), which=["task_memory"],
+                                context={"targets": np.arange(len(inputs())) % 2},
+                                options={"task_memory": {"zzz": 1}}),
     ("`run_analyses`", "`on_error=\"x\"`"): lambda: hl.run_analyses(gru(), inputs(),
                                                                    on_error="x"),
     ("`key_figures`", "a list"): lambda: hl.key_figures([1]),

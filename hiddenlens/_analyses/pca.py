@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import inspect
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -12,6 +11,7 @@ import numpy as np
 import torch
 
 from .._core.options import analysis, check_options, int_seed, renamed
+from .._core.registry import wraps_analysis
 from .._core.results import Result, frozen_mapping, readonly
 from .._core.systems import RecurrentSystem
 from .._core.trace import Trace
@@ -437,6 +437,7 @@ def pca_trajectories(
     )
 
 
+@wraps_analysis(pca_trajectories, "targets", "onsets", "inputs")
 def pca_analysis(system: Any, trace: Trace, *, targets: Any = None, onsets: Any = None,
                  **options: Any) -> PCATrajectories:
     """:func:`pca_trajectories` in the analysis form, with the task context of
@@ -465,19 +466,6 @@ def pca_analysis(system: Any, trace: Trace, *, targets: Any = None, onsets: Any 
 
     return dataclasses.replace(res, metadata={**dict(res.metadata), "labels_note": note})
 
-
-def _analysis_signature() -> inspect.Signature:
-    """pca_trajectories' options plus the task context (and the inputs its adapter records),
-    so that the runner checks options against what pca_trajectories really takes."""
-    params = [p for p in inspect.signature(pca_trajectories).parameters.values()
-              if p.kind is not p.VAR_POSITIONAL]
-    extra = [inspect.Parameter(n, inspect.Parameter.KEYWORD_ONLY, default=None)
-             for n in ("targets", "onsets", "inputs") if n not in {p.name for p in params}]
-    return inspect.Signature(params + extra)
-
-
-pca_analysis.__signature__ = _analysis_signature()
-pca_analysis.__wrapped__ = pca_trajectories  # the function users know, named in messages
 
 
 # ---------------------------------------------------------------------- computing

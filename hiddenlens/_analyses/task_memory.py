@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 import torch
 
+from .._core.registry import wraps_analysis
 from .._core.results import frozen_mapping, readonly
 from .._core.threads import single_thread
 from .._core.trace import Trace
@@ -346,6 +347,7 @@ def task_memory(
     )
 
 
+@wraps_analysis(task_memory, "inputs")
 def task_memory_analysis(system: Any, trace: Trace, *, targets: Any, onsets: Any = None,
                          **options: Any) -> TaskMemory:
     """:func:`task_memory` in the analysis form ``function(system, trace, **options)``.

@@ -187,6 +187,26 @@ _BUILTINS = "hiddenlens._analyses.builtin"
 _builtins_loaded = False
 
 
+def wraps_analysis(wrapped: Callable[..., Any], *extra: str) -> Callable[[Callable], Callable]:
+    """Mark ``function(system, trace, **options)`` as the analysis form of ``wrapped``.
+
+    The form gets ``wrapped``'s options (plus the keyword-only ``extra`` names: context keys, or
+    options an adapter consumes) as its signature, so the runner refuses an unknown option by
+    name and messages name the function users know.
+    """
+    def mark(form: Callable) -> Callable:
+        params = [p for p in inspect.signature(wrapped).parameters.values()
+                  if p.kind is not p.VAR_POSITIONAL]
+        have = {p.name for p in params}
+        params += [inspect.Parameter(n, inspect.Parameter.KEYWORD_ONLY, default=None)
+                   for n in extra if n not in have]
+        form.__signature__ = inspect.Signature(params)
+        form.__wrapped__ = wrapped
+        return form
+
+    return mark
+
+
 def _ensure_builtins() -> None:
     global _builtins_loaded
     if not _builtins_loaded:
