@@ -144,3 +144,24 @@ def test_no_mathtext_keeps_the_log_tick_labels_and_names_plain():
     assert not ax.title.get_parse_math()
     # drawn as the user wrote them: escaped dollars (matplotlib's mathtext docs: "\\$")
     assert [t.get_text() for t in names.get_xticklabels()] == ["\\$\\foo\\$", "b_\\$x"]
+
+
+def test_spectra_draw_every_kept_index_or_say_how_many():
+    # A top k above ten is drawn whole; a cap on the lines is stated in the title.
+    import torch
+
+    import hiddenlens as hl
+
+    gen = torch.Generator().manual_seed(0)
+    rnn = torch.nn.RNN(3, 32, batch_first=True)
+    x = torch.randn(2, 20, 3, generator=gen)
+    result = hl.jacobian_spectra(rnn, hl.record(rnn, x), k=16)
+    fig = Figure()
+    ax = result.plot(ax=fig.add_subplot())
+    singular = [line for line in ax.lines if line.get_linestyle() == "-"]
+    assert len(singular) == 16
+    assert "drawn" not in ax.get_title()
+    fig = Figure()
+    ax = result.plot(ax=fig.add_subplot(), max_lines=5)
+    assert len([line for line in ax.lines if line.get_linestyle() == "-"]) == 5
+    assert "σ1–σ5 of 16 drawn" in ax.get_title()

@@ -572,7 +572,7 @@ _spec(
     overlay=_overlay_lyapunov, drawings=_draw_lyapunov, setting=_setting_lyapunov)
 _spec(
     "pca", "hiddenlens._analyses.pca:pca_analysis",
-    title="PCA trajectories and effective dimension",
+    title="PCA trajectories and participation ratio",
     key_figures=_figures_pca,
     figures={"participation_ratio": Figure("participation ratio")},
     caution="PCA axes are fitted to each run separately: axes of two runs are comparable only "

@@ -1,4 +1,4 @@
-"""PCA of recorded hidden states: low-dimensional trajectories and the effective dimension."""
+"""PCA of recorded hidden states: low-dimensional trajectories and the participation ratio."""
 
 from __future__ import annotations
 
@@ -44,7 +44,7 @@ class PCATrajectories(Result):
     cumulative : ndarray of shape (D,)
         Cumulative fraction of variance of the first 1, 2, ..., D components.
     participation_ratio : float
-        Effective dimension ``(sum(spectrum))**2 / sum(spectrum**2)``, between 1 and D.
+        Participation ratio ``(sum(spectrum))**2 / sum(spectrum**2)``, between 1 and D.
     n_components_90, n_components_95 : int
         Fewest components that explain at least 90% / 95% of the variance.
     columns : ndarray of shape (D,)

@@ -126,12 +126,12 @@ class JacobianSpectra(Result):
         """The number of singular values kept per step."""
         return int(self.singular_values.shape[2])
 
-    def plot(self, ax: Any = None, *, sample: int | None = None, max_lines: int = 10,
+    def plot(self, ax: Any = None, *, sample: int | None = None, max_lines: int | None = None,
              **kw: Any):
         """Singular values over time on a log axis (median over samples, or one ``sample``).
 
-        The first ``max_lines`` indices are drawn, coloured from the largest (dark) to the
-        smallest; the spectral radius, when computed, is the dashed black line; the dotted line
+        All ``k`` indices are drawn (or the first ``max_lines``, and the title then says how
+        many of ``k``), coloured from the largest (dark) to the smallest; the spectral radius, when computed, is the dashed black line; the dotted line
         marks 1, where a step neither stretches nor shrinks.
         """
         from .._plotting.spectra import draw_spectra

@@ -7,11 +7,12 @@ from typing import Any
 import numpy as np
 
 
-def draw_spectra(result, ax: Any = None, *, sample: int | None = None, max_lines: int = 10,
+def draw_spectra(result, ax: Any = None, *, sample: int | None = None, max_lines: int | None = None,
                  **kw: Any):
     """Singular values over time on a log axis (median over samples, or one ``sample``).
 
-    The first ``max_lines`` indices are drawn, coloured from the largest (dark) to the
+    All ``k`` indices are drawn (or the first ``max_lines``; the title then says how many of
+    ``k``), coloured from the largest (dark) to the
     smallest; the spectral radius, when computed, is the dashed black line; the dotted line
     marks 1, where a step neither stretches nor shrinks.
     """
@@ -23,7 +24,7 @@ def draw_spectra(result, ax: Any = None, *, sample: int | None = None, max_lines
     curve = sample_or_median(sv, sample, np.nanmedian)  # (T, k)
     label = (f"median over {B} samples" if B > 1 else "sample 0") if sample is None \
         else f"sample {sample}"
-    n = min(k, max_lines)
+    n = k if max_lines is None else max(1, min(k, int(max_lines)))
     colors = time_colors(n)
     steps = np.arange(T)
     for i in range(n):
@@ -37,4 +38,5 @@ def draw_spectra(result, ax: Any = None, *, sample: int | None = None, max_lines
     ax.axhline(1.0, color="0.6", lw=0.8, ls=":")
     return finish_step_axes(
         ax, np.concatenate([d.ravel() for d in drawn]), "singular value of J_t",
-        f"{result.metadata.get('model_class', 'system')}: Jacobian spectra ({label})")
+        f"{result.metadata.get('model_class', 'system')}: Jacobian spectra ({label}"
+        + (f"; σ1–σ{n} of {k} drawn)" if n < k else ")"))

@@ -368,7 +368,7 @@ register(Analysis(
     "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
     uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims, per_run=True,
     prepare=_pca_labels,
-    overlay_row=True, run_title=lambda r: f"PR {r.participation_ratio:.1f}"))
+    overlay_row=True, run_title=lambda r: f"participation ratio {r.participation_ratio:.1f}"))
 register(Analysis(
     "fixed_points", "Fixed points", _draw_fixed_points, views=(_DIMS,),
     options=(Option("n_starts", "starts", _default("fixed_points", "n_starts", lambda r: 64),
