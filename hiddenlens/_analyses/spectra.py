@@ -131,8 +131,9 @@ class JacobianSpectra(Result):
         """Singular values over time on a log axis (median over samples, or one ``sample``).
 
         All ``k`` indices are drawn (or the first ``max_lines``, and the title then says how
-        many of ``k``), coloured from the largest (dark) to the smallest; the spectral radius, when computed, is the dashed black line; the dotted line
-        marks 1, where a step neither stretches nor shrinks.
+        many of ``k``), coloured from the largest (dark) to the smallest; the spectral radius,
+        when computed, is the dashed black line; the dotted line marks 1, where a step neither
+        stretches nor shrinks.
         """
         from .._plotting.spectra import draw_spectra
 
