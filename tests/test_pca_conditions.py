@@ -279,3 +279,13 @@ def test_widget_draws_condition_means_by_default():
     assert view.images["pca"] != means
     control.value = "time"
     assert view.images["pca"] not in (means, b"")
+
+
+def test_fit_window_as_range_is_the_same_slice():
+    # A range of steps (hashable, as a widget's choice) fits on the same states as the slice.
+    tr = _correlated()
+    a = pca_trajectories(tr, k=3, fit_steps=slice(10, 30))
+    b = pca_trajectories(tr, k=3, fit_steps=range(10, 30))
+    np.testing.assert_array_equal(a.fit_mask, b.fit_mask)
+    np.testing.assert_allclose(a.projected, b.projected, atol=1e-12)
+    assert b.fit_description == "steps 10 to 29"

@@ -513,3 +513,21 @@ def test_interactive_canvas_where_ipympl_is_installed(model, inputs):
     assert len(live2) == 1 and live2[0] is not live[0]
     # the canvas holds the same figure: its Axes carry the PCA axis labels
     assert live2[0].figure.axes[0].get_xlabel().startswith("PC1")
+
+
+def test_pca_fit_window_control_refits_on_the_chosen_steps(model, inputs, calls):
+    T = inputs.shape[1]
+    onsets = np.array([4, 6, 5])
+    view = explore(model, inputs, analyses=["pca"], targets=np.array([0, 1, 0]),
+                   onsets=onsets, background=False)
+    fit = view._panels["pca"].options["fit_steps"]
+    labels = [label for label, _ in fit.options]
+    assert labels[0] == "all steps"
+    assert f"from the first onset (4-{T - 1})" in labels
+    before = view.images["pca"]
+    fit.value = range(T // 2, T)
+    assert calls == {"pca": 2}  # a compute option: fitted again
+    assert view.images["pca"] != before
+    fit.value = None  # back to all steps: from the cache
+    assert calls == {"pca": 2}
+    assert view.images["pca"] == before

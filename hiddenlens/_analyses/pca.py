@@ -567,6 +567,8 @@ def _fit_mask(fit_steps: Any, B: int, T: int) -> tuple[np.ndarray, str]:
     """The (B, T) mask of states to fit on, and the states in words."""
     if fit_steps is None:
         return np.ones((B, T), bool), "all steps"
+    if isinstance(fit_steps, range):  # a window of steps, hashable (a widget's choice)
+        fit_steps = slice(fit_steps.start, fit_steps.stop, fit_steps.step)
     if isinstance(fit_steps, slice):
         steps = np.arange(T)[fit_steps]
         if steps.size == 0:

@@ -364,8 +364,30 @@ register(Analysis(
                     high=lambda r: r.trace.n_steps - 1,
                     tip="leading steps that advance the frame without counting")),
     n_axes=lambda view: (2, None)))
+def _fit_windows(run: Run) -> list[tuple[str, Any]]:
+    """Windows of steps the PCA axes can be fitted on: all, halves, a task period."""
+    T = run.trace.n_steps
+    windows: list[tuple[str, Any]] = [("all steps", None)]
+    if T >= 4:
+        h = T // 2
+        windows += [(f"steps 0-{h - 1}", range(0, h)), (f"steps {h}-{T - 1}", range(h, T)),
+                    (f"last quarter ({T - T // 4}-{T - 1})", range(T - T // 4, T))]
+    onsets = (getattr(run, "context", None) or {}).get("onsets")
+    if onsets is not None:
+        first = int(np.min(np.asarray(onsets)))
+        if 2 <= first < T:
+            windows.append((f"before the first onset (0-{first - 1})", range(0, first)))
+        if first < T - 1:
+            windows.append((f"from the first onset ({first}-{T - 1})", range(first, T)))
+    return windows
+
+
+_FIT = Option("fit_steps", "fit axes on", lambda run: None, choices=_fit_windows,
+              tip="the steps whose states the PCA axes are fitted on; every state is "
+                  "projected on them (the title names the window)")
+
 register(Analysis(
-    "pca", "Trajectories", _draw_pca, views=(_DIMS, _COLOR),
+    "pca", "Trajectories", _draw_pca, options=(_FIT,), views=(_DIMS, _COLOR),
     uses=frozenset({"sample", "window"}), part_option="parts", n_axes=_dims, per_run=True,
     prepare=_pca_labels,
     overlay_row=True, run_title=lambda r: f"participation ratio {r.participation_ratio:.1f}"))
